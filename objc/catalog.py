@@ -1,0 +1,719 @@
+"""Every atom, named loss and norm objc knows, each declared once.
+
+The checker reads curvature, monotonicity, sign and smoothness from here; the cvxpy backend reads
+`cvxpy`; the NumPy backend copies the kernel functions named by `value`, `derivative`, `prox` and
+`conjugate` into the module it writes (by their source), so a loss's math lives only here.
+
+Kernel functions follow one rule: they use nothing but `np` and their own arguments (and other
+kernels named `_k_*`), so they can be copied into a standalone module unchanged.
+
+Conventions (stated once, used by the docs): `squared(r) = r^2 / 2`; `huber(r, d)` is r^2/2 inside
+|r| <= d and d(|r| - d/2) outside (the half-scaled form; some libraries use twice this);
+`l2sq(w) = ||w||^2` (no half: write `0.5 * l2sq(w)` for the usual ridge term).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Callable, Literal
+
+import numpy as np
+
+from objc.curvature import Curvature, Monotonicity, Sign
+
+INC, DEC, NONMONO = Monotonicity.INCREASING, Monotonicity.DECREASING, Monotonicity.NONE
+CONVEX, CONCAVE, AFFINE, UNKNOWN = Curvature.CONVEX, Curvature.CONCAVE, Curvature.AFFINE, Curvature.UNKNOWN
+
+
+# ---------------------------------------------------------------- kernels (copied into modules)
+
+def _k_hinge(m):
+    return np.maximum(0.0, 1.0 - m)
+
+
+def _k_hinge_d(m):
+    return np.where(m < 1.0, -1.0, 0.0)
+
+
+def _k_hinge_prox(v, g):
+    return np.where(v < 1.0 - g, v + g, np.where(v <= 1.0, 1.0, v))
+
+
+def _k_hinge_conj(u):
+    return np.where((u >= -1.0) & (u <= 0.0), u, np.inf)
+
+
+def _k_squared_hinge(m):
+    return np.maximum(0.0, 1.0 - m) ** 2
+
+
+def _k_squared_hinge_d(m):
+    return -2.0 * np.maximum(0.0, 1.0 - m)
+
+
+def _k_squared_hinge_prox(v, g):
+    return np.where(v >= 1.0, v, (v + 2.0 * g) / (1.0 + 2.0 * g))
+
+
+def _k_squared_hinge_conj(u):
+    return np.where(u <= 0.0, u + u * u / 4.0, np.inf)
+
+
+def _k_smooth_hinge(m, c=1.0):
+    z = 1.0 - m
+    return np.where(m >= 1.0, 0.0, np.where(z < c, z * z / (2.0 * c), z - c / 2.0))
+
+
+def _k_smooth_hinge_d(m, c=1.0):
+    z = 1.0 - m
+    return np.where(m >= 1.0, 0.0, np.where(z < c, -z / c, -1.0))
+
+
+def _k_smooth_hinge_prox(v, g, c=1.0):
+    return np.where(v + g <= 1.0 - c, v + g, np.where(v < 1.0, (c * v + g) / (c + g), v))
+
+
+def _k_smooth_hinge_conj(u, c=1.0):
+    return np.where((u >= -1.0) & (u <= 0.0), u + c * u * u / 2.0, np.inf)
+
+
+def _k_modified_huber(m):
+    return np.where(m >= -1.0, np.maximum(0.0, 1.0 - m) ** 2, -4.0 * m)
+
+
+def _k_modified_huber_d(m):
+    return np.where(m >= -1.0, -2.0 * np.maximum(0.0, 1.0 - m), -4.0)
+
+
+def _k_modified_huber_prox(v, g):
+    return np.where(v >= 1.0, v, np.where(v + 4.0 * g < -1.0, v + 4.0 * g, (v + 2.0 * g) / (1.0 + 2.0 * g)))
+
+
+def _k_modified_huber_conj(u):
+    return np.where((u >= -4.0) & (u <= 0.0), u + u * u / 4.0, np.inf)
+
+
+def _k_perceptron(m):
+    return np.maximum(0.0, -m)
+
+
+def _k_perceptron_d(m):
+    return np.where(m < 0.0, -1.0, 0.0)
+
+
+def _k_perceptron_prox(v, g):
+    return np.where(v < -g, v + g, np.where(v <= 0.0, 0.0, v))
+
+
+def _k_perceptron_conj(u):
+    return np.where((u >= -1.0) & (u <= 0.0), 0.0, np.inf)
+
+
+def _k_logistic(m):
+    return np.logaddexp(0.0, -m)
+
+
+def _k_logistic_d(m):
+    # -1/(1+e^m), written through logaddexp so it neither overflows nor loses the tail
+    return -np.exp(-np.logaddexp(0.0, m))
+
+
+def _k_logistic_prox(v, g):
+    x = np.array(v, dtype=float, copy=True)
+    for _ in range(60):
+        p = np.exp(-np.logaddexp(0.0, x))  # sigma(-x)
+        step = (x - v - g * p) / (1.0 + g * p * (1.0 - p))
+        x = x - step
+        if np.all(np.abs(step) <= 1e-14 * (1.0 + np.abs(x))):
+            break
+    return x
+
+
+def _k_logistic_conj(u):
+    a = np.clip(-u, 0.0, 1.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        inner = np.where(a > 0.0, a * np.log(np.where(a > 0.0, a, 1.0)), 0.0) + np.where(
+            a < 1.0, (1.0 - a) * np.log(np.where(a < 1.0, 1.0 - a, 1.0)), 0.0)
+    return np.where((u >= -1.0) & (u <= 0.0), inner, np.inf)
+
+
+def _k_exponential(m):
+    with np.errstate(over="ignore"):
+        return np.exp(-m)
+
+
+def _k_exponential_d(m):
+    with np.errstate(over="ignore"):
+        return -np.exp(-m)
+
+
+def _k_lambertw_of_exp(big_l):
+    # W(e^L) for real L, by Newton on w + log(w) = L; stays finite where e^L would overflow
+    w = np.where(big_l > 1.0, big_l - np.log(np.maximum(big_l, 1.0)), np.exp(np.minimum(big_l, 1.0)))
+    for _ in range(60):
+        step = (w + np.log(w) - big_l) / (1.0 + 1.0 / w)
+        w = np.maximum(w - step, 1e-300)
+        if np.all(np.abs(step) <= 1e-15 * (1.0 + np.abs(w))):
+            break
+    return w
+
+
+def _k_exponential_prox(v, g):
+    return v + _k_lambertw_of_exp(np.log(g) - v)
+
+
+def _k_exponential_conj(u):
+    with np.errstate(divide="ignore", invalid="ignore"):
+        inner = np.where(u < 0.0, u - u * np.log(np.where(u < 0.0, -u, 1.0)), 0.0)
+    return np.where(u <= 0.0, inner, np.inf)
+
+
+def _k_zero_one(m):
+    return np.where(m <= 0.0, 1.0, 0.0)
+
+
+def _k_zero_one_d(m):
+    return np.zeros_like(np.asarray(m, dtype=float))
+
+
+def _k_squared(r):
+    return 0.5 * r * r
+
+
+def _k_squared_d(r):
+    return np.asarray(r, dtype=float) * 1.0
+
+
+def _k_squared_prox(v, g):
+    return v / (1.0 + g)
+
+
+def _k_squared_conj(u):
+    return 0.5 * u * u
+
+
+def _k_absolute(r):
+    return np.abs(r)
+
+
+def _k_absolute_d(r):
+    return np.sign(r)
+
+
+def _k_absolute_prox(v, g):
+    return np.sign(v) * np.maximum(np.abs(v) - g, 0.0)
+
+
+def _k_absolute_conj(u):
+    return np.where(np.abs(u) <= 1.0, 0.0, np.inf)
+
+
+def _k_huber(r, d=1.0):
+    a = np.abs(r)
+    return np.where(a <= d, 0.5 * r * r, d * (a - 0.5 * d))
+
+
+def _k_huber_d(r, d=1.0):
+    return np.clip(r, -d, d)
+
+
+def _k_huber_prox(v, g, d=1.0):
+    return np.where(np.abs(v) <= d * (1.0 + g), v / (1.0 + g), v - g * d * np.sign(v))
+
+
+def _k_huber_conj(u, d=1.0):
+    return np.where(np.abs(u) <= d, 0.5 * u * u, np.inf)
+
+
+def _k_pinball(r, t=0.5):
+    return np.maximum(t * r, (t - 1.0) * r)
+
+
+def _k_pinball_d(r, t=0.5):
+    return np.where(r > 0.0, t, np.where(r < 0.0, t - 1.0, 0.0))
+
+
+def _k_pinball_prox(v, g, t=0.5):
+    return np.where(v > g * t, v - g * t, np.where(v < -g * (1.0 - t), v + g * (1.0 - t), 0.0))
+
+
+def _k_pinball_conj(u, t=0.5):
+    return np.where((u >= t - 1.0) & (u <= t), 0.0, np.inf)
+
+
+def _k_epsilon_insensitive(r, e=0.1):
+    return np.maximum(0.0, np.abs(r) - e)
+
+
+def _k_epsilon_insensitive_d(r, e=0.1):
+    return np.where(np.abs(r) > e, np.sign(r), 0.0)
+
+
+def _k_epsilon_insensitive_prox(v, g, e=0.1):
+    a = np.abs(v)
+    return np.where(a <= e, v, np.where(a <= e + g, e * np.sign(v), v - g * np.sign(v)))
+
+
+def _k_epsilon_insensitive_conj(u, e=0.1):
+    return np.where(np.abs(u) <= 1.0, e * np.abs(u), np.inf)
+
+
+def _k_abs(x):
+    return np.abs(x)
+
+
+def _k_abs_d(x):
+    return np.sign(x)
+
+
+def _k_exp(x):
+    with np.errstate(over="ignore"):
+        return np.exp(x)
+
+
+def _k_log(x):
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.log(x)
+
+
+def _k_log_d(x):
+    with np.errstate(divide="ignore"):
+        return 1.0 / x
+
+
+def _k_log1p(x):
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.log1p(x)
+
+
+def _k_log1p_d(x):
+    with np.errstate(divide="ignore"):
+        return 1.0 / (1.0 + x)
+
+
+def _k_softplus(x):
+    return np.logaddexp(0.0, x)
+
+
+def _k_softplus_d(x):
+    return np.exp(-np.logaddexp(0.0, -x))
+
+
+def _k_sqrt(x):
+    with np.errstate(invalid="ignore"):
+        return np.sqrt(x)
+
+
+def _k_sqrt_d(x):
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return 0.5 / np.sqrt(x)
+
+
+def _k_pos(x):
+    return np.maximum(x, 0.0)
+
+
+def _k_pos_d(x):
+    return np.where(x > 0.0, 1.0, 0.0)
+
+
+def _k_neg(x):
+    return np.maximum(-x, 0.0)
+
+
+def _k_neg_d(x):
+    return np.where(x < 0.0, -1.0, 0.0)
+
+
+def _k_tanh(x):
+    return np.tanh(x)
+
+
+def _k_tanh_d(x):
+    return 1.0 - np.tanh(x) ** 2
+
+
+def _k_power(x, p=2.0):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        return np.power(x, p)
+
+
+def _k_power_d(x, p=2.0):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        return p * np.power(x, p - 1.0)
+
+
+def _k_max(*xs):
+    return np.maximum.reduce(np.broadcast_arrays(*xs))
+
+
+def _k_max_d(*xs):
+    # one subgradient: all weight on the first argument that attains the maximum
+    arrays = np.broadcast_arrays(*[np.asarray(x, dtype=float) for x in xs])
+    top = np.argmax(np.stack(arrays), axis=0)
+    return tuple(np.where(top == i, 1.0, 0.0) for i in range(len(arrays)))
+
+
+def _k_min(*xs):
+    return np.minimum.reduce(np.broadcast_arrays(*xs))
+
+
+def _k_min_d(*xs):
+    arrays = np.broadcast_arrays(*[np.asarray(x, dtype=float) for x in xs])
+    low = np.argmin(np.stack(arrays), axis=0)
+    return tuple(np.where(low == i, 1.0, 0.0) for i in range(len(arrays)))
+
+
+def _k_hypot(a, b):
+    return np.hypot(a, b)
+
+
+def _k_hypot_d(a, b):
+    h = np.hypot(a, b)
+    safe = np.where(h > 0.0, h, 1.0)
+    return (np.where(h > 0.0, a / safe, 0.0), np.where(h > 0.0, b / safe, 0.0))
+
+
+def _k_l1(w):
+    return np.sum(np.abs(w))
+
+
+def _k_l1_d(w):
+    return np.sign(w)
+
+
+def _k_l1_prox(v, g):
+    return np.sign(v) * np.maximum(np.abs(v) - g, 0.0)
+
+
+def _k_l1_conj(u):
+    return 0.0 if np.max(np.abs(u), initial=0.0) <= 1.0 + 1e-12 else np.inf
+
+
+def _k_l2(w):
+    return np.sqrt(np.sum(np.asarray(w, dtype=float) ** 2))
+
+
+def _k_l2_d(w):
+    n = np.sqrt(np.sum(np.asarray(w, dtype=float) ** 2))
+    return np.asarray(w, dtype=float) / n if n > 0.0 else np.zeros_like(np.asarray(w, dtype=float))
+
+
+def _k_l2_prox(v, g):
+    n = np.sqrt(np.sum(np.asarray(v, dtype=float) ** 2))
+    return np.asarray(v, dtype=float) * (max(0.0, 1.0 - g / n) if n > 0.0 else 0.0)
+
+
+def _k_l2_conj(u):
+    return 0.0 if np.sqrt(np.sum(np.asarray(u, dtype=float) ** 2)) <= 1.0 + 1e-12 else np.inf
+
+
+def _k_l2sq(w):
+    return np.sum(np.asarray(w, dtype=float) ** 2)
+
+
+def _k_l2sq_d(w):
+    return 2.0 * np.asarray(w, dtype=float)
+
+
+def _k_l2sq_prox(v, g):
+    return np.asarray(v, dtype=float) / (1.0 + 2.0 * g)
+
+
+def _k_l2sq_conj(u):
+    return np.sum(np.asarray(u, dtype=float) ** 2) / 4.0
+
+
+# ---------------------------------------------------------------- entry shape
+
+@dataclass(frozen=True)
+class Option:
+    """A numeric setting of an entry (huber's threshold, pinball's quantile): a literal in the spec."""
+
+    name: str
+    default: float
+    low: float
+    high: float
+    low_open: bool = True
+    high_open: bool = False
+    meaning: str = ""
+
+    def admits(self, value: float) -> bool:
+        above = value > self.low if self.low_open else value >= self.low
+        below = value < self.high if self.high_open else value <= self.high
+        return above and below
+
+    def describe_range(self) -> str:
+        return f"{'(' if self.low_open else '['}{self.low:g}, {self.high:g}{')' if self.high_open else ']'}"
+
+
+def _fixed_mono(m: Monotonicity) -> Callable[[int, Sign, dict], Monotonicity]:
+    return lambda _i, _s, _o: m
+
+
+def _even_mono(_i: int, s: Sign, _o: dict) -> Monotonicity:
+    # functions like |x| and x^2 increase for x >= 0 and decrease for x <= 0
+    if s.is_nonneg:
+        return INC
+    if s.is_nonpos:
+        return DEC
+    return NONMONO
+
+
+def _nonneg(_signs: tuple[Sign, ...], _o: dict) -> Sign:
+    return Sign.NONNEG
+
+
+def _unknown(_signs: tuple[Sign, ...], _o: dict) -> Sign:
+    return Sign.UNKNOWN
+
+
+def _same_sign(signs: tuple[Sign, ...], _o: dict) -> Sign:
+    return signs[0]
+
+
+def _const(c: Curvature) -> Callable[[dict], Curvature]:
+    return lambda _o: c
+
+
+@dataclass(frozen=True)
+class Entry:
+    """One atom, loss or norm: every fact the checker and the backends need about it."""
+
+    name: str
+    kind: Literal["atom", "loss", "norm"]
+    summary: str
+    formula: str
+    curvature: Callable[[dict], Curvature]
+    monotonicity: Callable[[int, Sign, dict], Monotonicity]
+    sign: Callable[[tuple[Sign, ...], dict], Sign]
+    value: Callable[..., Any]
+    derivative: Callable[..., Any]
+    cvxpy: Callable[..., Any]
+    arity: int = 1  # expression arguments; 0 means two or more (max, min)
+    options: tuple[Option, ...] = ()
+    smooth: Callable[[dict], bool] = field(default=lambda _o: False)
+    lipschitz: Callable[[dict], float | None] = field(default=lambda _o: None)
+    grad_lipschitz: Callable[[dict], float | None] = field(default=lambda _o: None)
+    prox: Callable[..., Any] | None = None
+    conjugate: Callable[..., Any] | None = None
+    role: Literal["margin", "residual", None] = None
+    calibrated: bool | None = None
+    trainable: bool = True
+    domain: tuple[float, float] = (-np.inf, np.inf)  # where the argument must lie
+    test_points: tuple[float, float] = (-4.0, 4.0)  # where the property suite samples arguments
+
+    def resolve_options(self, given: tuple[float, ...]) -> dict[str, float]:
+        """Options from positional values; raise ValueError (caught by the resolver) when wrong."""
+        if len(given) > len(self.options):
+            raise ValueError(f"{self.name} takes at most {len(self.options)} setting(s) after its argument")
+        out = {}
+        for i, opt in enumerate(self.options):
+            v = given[i] if i < len(given) else opt.default
+            if not opt.admits(v):
+                raise ValueError(f"{self.name}'s {opt.name} must lie in {opt.describe_range()}, got {v:g}")
+            out[opt.name] = float(v)
+        return out
+
+
+# ---------------------------------------------------------------- cvxpy constructions
+# Each takes the cvxpy module first so this file never imports cvxpy itself (check stays fast).
+
+def _cp_smooth_hinge(cp, m, c=1.0):
+    # min over t >= 0 of (t^2)/(2c) + max(0, 1 - m - t) is the smoothed hinge; cvxpy's huber gives it:
+    # huber(z, c)/ (2c) for z = pos(1-m) equals the piecewise form above
+    return cp.huber(cp.pos(1 - m), c) / (2.0 * c)
+
+
+def _cp_modified_huber(cp, m):
+    # max(0,1-m)^2 on m >= -1 and -4m below is huber(pos(1-m), 2) with the huber scaled form
+    return cp.huber(cp.pos(1 - m), 2.0)
+
+
+def _cp_pinball(cp, r, t=0.5):
+    # written as a weighted sum of positive and negative parts (an elementwise maximum of two affine
+    # pieces has been seen reported infeasible by one solver interface)
+    return t * cp.pos(r) + (1.0 - t) * cp.neg(r)
+
+
+def _cp_hypot(cp, a, b):
+    # elementwise Euclidean norm of the pair: stack the two as rows and take the column norms
+    a, b = cp.Expression.cast_to_const(a), cp.Expression.cast_to_const(b)
+    if a.size == 1 and b.size == 1:
+        return cp.norm2(cp.hstack([cp.reshape(a, (1,), order="F"), cp.reshape(b, (1,), order="F")]))
+    n = max(a.size, b.size)
+    a = a if a.size == n else a * np.ones(n)
+    b = b if b.size == n else b * np.ones(n)
+    return cp.norm(cp.vstack([a, b]), 2, axis=0)
+
+
+def _cp_power(cp, x, p=2.0):
+    return cp.power(x, p)
+
+
+def _power_curvature(o: dict) -> Curvature:
+    p = o["p"]
+    if p == 1:
+        return AFFINE
+    if p == 0:
+        return AFFINE
+    if 0 < p < 1:
+        return CONCAVE
+    return CONVEX
+
+
+def _power_mono(_i: int, s: Sign, o: dict) -> Monotonicity:
+    p = o["p"]
+    if p == 1 or (0 < p < 1) or (p > 1 and not float(p).is_integer()):
+        return INC
+    if p < 0:
+        return DEC
+    if float(p).is_integer() and int(p) % 2 == 0:
+        return _even_mono(0, s, o)
+    return INC if s.is_nonneg else NONMONO
+
+
+def _power_sign(signs: tuple[Sign, ...], o: dict) -> Sign:
+    p = o["p"]
+    if float(p).is_integer() and int(p) % 2 == 1:
+        return signs[0]
+    return Sign.NONNEG
+
+
+def _max_sign(signs: tuple[Sign, ...], _o: dict) -> Sign:
+    if any(s.is_nonneg for s in signs):
+        return Sign.NONNEG
+    if all(s.is_nonpos for s in signs):
+        return Sign.NONPOS
+    return Sign.UNKNOWN
+
+
+def _min_sign(signs: tuple[Sign, ...], _o: dict) -> Sign:
+    if any(s.is_nonpos for s in signs):
+        return Sign.NONPOS
+    if all(s.is_nonneg for s in signs):
+        return Sign.NONNEG
+    return Sign.UNKNOWN
+
+
+def _yes(_o: dict) -> bool:
+    return True
+
+
+def _k(v: float | None) -> Callable[[dict], float | None]:
+    return lambda _o: v
+
+
+ENTRIES: tuple[Entry, ...] = (
+    # ---- margin losses: argument m = y * s
+    Entry("hinge", "loss", "hinge loss of the margin", "max(0, 1 - m)", _const(CONVEX), _fixed_mono(DEC),
+          _nonneg, _k_hinge, _k_hinge_d, lambda cp, m: cp.pos(1 - m), lipschitz=_k(1.0),
+          prox=_k_hinge_prox, conjugate=_k_hinge_conj, role="margin", calibrated=True),
+    Entry("squared_hinge", "loss", "squared hinge loss of the margin", "max(0, 1 - m)^2", _const(CONVEX),
+          _fixed_mono(DEC), _nonneg, _k_squared_hinge, _k_squared_hinge_d,
+          lambda cp, m: cp.square(cp.pos(1 - m)), smooth=_yes, grad_lipschitz=_k(2.0),
+          prox=_k_squared_hinge_prox, conjugate=_k_squared_hinge_conj, role="margin", calibrated=True),
+    Entry("smooth_hinge", "loss", "hinge with a quadratic corner of width c",
+          "0 if m >= 1; (1-m)^2/(2c) if 1-c < m < 1; 1 - m - c/2 otherwise", _const(CONVEX),
+          _fixed_mono(DEC), _nonneg, _k_smooth_hinge, _k_smooth_hinge_d, _cp_smooth_hinge,
+          options=(Option("c", 1.0, 0.0, np.inf, meaning="width of the quadratic corner"),),
+          smooth=_yes, lipschitz=_k(1.0), grad_lipschitz=lambda o: 1.0 / o["c"],
+          prox=_k_smooth_hinge_prox, conjugate=_k_smooth_hinge_conj, role="margin", calibrated=True),
+    Entry("modified_huber", "loss", "modified Huber loss of the margin",
+          "max(0, 1 - m)^2 if m >= -1 else -4m", _const(CONVEX), _fixed_mono(DEC), _nonneg,
+          _k_modified_huber, _k_modified_huber_d, _cp_modified_huber, smooth=_yes, lipschitz=_k(4.0),
+          grad_lipschitz=_k(2.0), prox=_k_modified_huber_prox, conjugate=_k_modified_huber_conj,
+          role="margin", calibrated=True),
+    Entry("perceptron", "loss", "perceptron loss of the margin", "max(0, -m)", _const(CONVEX),
+          _fixed_mono(DEC), _nonneg, _k_perceptron, _k_perceptron_d, lambda cp, m: cp.pos(-m),
+          lipschitz=_k(1.0), prox=_k_perceptron_prox, conjugate=_k_perceptron_conj, role="margin",
+          calibrated=False),
+    Entry("logistic", "loss", "logistic loss of the margin (natural log)", "log(1 + exp(-m))",
+          _const(CONVEX), _fixed_mono(DEC), _nonneg, _k_logistic, _k_logistic_d,
+          lambda cp, m: cp.logistic(-m), smooth=_yes, lipschitz=_k(1.0), grad_lipschitz=_k(0.25),
+          prox=_k_logistic_prox, conjugate=_k_logistic_conj, role="margin", calibrated=True),
+    Entry("exponential", "loss", "exponential loss of the margin", "exp(-m)", _const(CONVEX),
+          _fixed_mono(DEC), _nonneg, _k_exponential, _k_exponential_d, lambda cp, m: cp.exp(-m),
+          smooth=_yes, prox=_k_exponential_prox, conjugate=_k_exponential_conj, role="margin",
+          calibrated=True, test_points=(-3.0, 3.0)),
+    Entry("zero_one", "loss", "0-1 loss of the margin (evaluation only)", "1 if m <= 0 else 0",
+          _const(UNKNOWN), _fixed_mono(DEC), _nonneg, _k_zero_one, _k_zero_one_d,
+          lambda cp, m: None, role="margin", trainable=False),
+    # ---- residual losses: argument r = y - s
+    Entry("squared", "loss", "squared loss of the residual (half-scaled)", "r^2 / 2", _const(CONVEX),
+          _even_mono, _nonneg, _k_squared, _k_squared_d, lambda cp, r: 0.5 * cp.square(r), smooth=_yes,
+          grad_lipschitz=_k(1.0), prox=_k_squared_prox, conjugate=_k_squared_conj, role="residual"),
+    Entry("absolute", "loss", "absolute loss of the residual", "|r|", _const(CONVEX), _even_mono, _nonneg,
+          _k_absolute, _k_absolute_d, lambda cp, r: cp.abs(r), lipschitz=_k(1.0), prox=_k_absolute_prox,
+          conjugate=_k_absolute_conj, role="residual"),
+    Entry("huber", "loss", "Huber loss of the residual (half-scaled: r^2/2 inside)",
+          "r^2/2 if |r| <= d else d(|r| - d/2)", _const(CONVEX), _even_mono, _nonneg, _k_huber, _k_huber_d,
+          lambda cp, r, d=1.0: cp.huber(r, d) / 2.0,
+          options=(Option("d", 1.0, 0.0, np.inf, meaning="threshold between the quadratic and linear parts"),),
+          smooth=_yes, lipschitz=lambda o: o["d"], grad_lipschitz=_k(1.0), prox=_k_huber_prox,
+          conjugate=_k_huber_conj, role="residual"),
+    Entry("pinball", "loss", "pinball (quantile) loss of the residual at quantile t",
+          "max(t r, (t - 1) r)", _const(CONVEX), _even_mono, _nonneg, _k_pinball, _k_pinball_d, _cp_pinball,
+          options=(Option("t", 0.5, 0.0, 1.0, high_open=True, meaning="the quantile, strictly between 0 and 1"),),
+          lipschitz=lambda o: max(o["t"], 1.0 - o["t"]), prox=_k_pinball_prox, conjugate=_k_pinball_conj,
+          role="residual"),
+    Entry("epsilon_insensitive", "loss", "epsilon-insensitive loss of the residual", "max(0, |r| - e)",
+          _const(CONVEX), _even_mono, _nonneg, _k_epsilon_insensitive, _k_epsilon_insensitive_d,
+          lambda cp, r, e=0.1: cp.pos(cp.abs(r) - e),
+          options=(Option("e", 0.1, 0.0, np.inf, low_open=False, meaning="half-width of the free band"),),
+          lipschitz=_k(1.0), prox=_k_epsilon_insensitive_prox, conjugate=_k_epsilon_insensitive_conj,
+          role="residual"),
+    # ---- scalar atoms (elementwise on vectors)
+    Entry("abs", "atom", "absolute value", "|x|", _const(CONVEX), _even_mono, _nonneg, _k_abs, _k_abs_d,
+          lambda cp, x: cp.abs(x), lipschitz=_k(1.0)),
+    Entry("exp", "atom", "exponential", "e^x", _const(CONVEX), _fixed_mono(INC), _nonneg, _k_exp, _k_exp,
+          lambda cp, x: cp.exp(x), smooth=_yes, test_points=(-3.0, 3.0)),
+    Entry("log", "atom", "natural logarithm", "log(x), x > 0", _const(CONCAVE), _fixed_mono(INC), _unknown,
+          _k_log, _k_log_d, lambda cp, x: cp.log(x), smooth=_yes, domain=(0.0, np.inf), test_points=(0.05, 6.0)),
+    Entry("log1p", "atom", "log(1 + x)", "log(1 + x), x > -1", _const(CONCAVE), _fixed_mono(INC), _same_sign,
+          _k_log1p, _k_log1p_d, lambda cp, x: cp.log1p(x), smooth=_yes, domain=(-1.0, np.inf),
+          test_points=(-0.9, 6.0)),
+    Entry("softplus", "atom", "softplus", "log(1 + e^x)", _const(CONVEX), _fixed_mono(INC), _nonneg,
+          _k_softplus, _k_softplus_d, lambda cp, x: cp.logistic(x), smooth=_yes, lipschitz=_k(1.0),
+          grad_lipschitz=_k(0.25)),
+    Entry("sqrt", "atom", "square root", "sqrt(x), x >= 0", _const(CONCAVE), _fixed_mono(INC), _nonneg,
+          _k_sqrt, _k_sqrt_d, lambda cp, x: cp.sqrt(x), smooth=_yes, domain=(0.0, np.inf),
+          test_points=(0.05, 6.0)),
+    Entry("pos", "atom", "positive part", "max(x, 0)", _const(CONVEX), _fixed_mono(INC), _nonneg, _k_pos,
+          _k_pos_d, lambda cp, x: cp.pos(x), lipschitz=_k(1.0)),
+    Entry("neg", "atom", "negative part", "max(-x, 0)", _const(CONVEX), _fixed_mono(DEC), _nonneg, _k_neg,
+          _k_neg_d, lambda cp, x: cp.neg(x), lipschitz=_k(1.0)),
+    Entry("tanh", "atom", "hyperbolic tangent (neither convex nor concave)", "tanh(x)", _const(UNKNOWN),
+          _fixed_mono(INC), _same_sign, _k_tanh, _k_tanh_d, lambda cp, x: None, smooth=_yes),
+    Entry("power", "atom", "x^p (written x ^ p with a literal p)", "x^p; for p not an even integer x >= 0",
+          _power_curvature, _power_mono, _power_sign, _k_power, _k_power_d, _cp_power,
+          options=(Option("p", 2.0, -np.inf, np.inf, meaning="the exponent, a literal number"),), smooth=_yes),
+    Entry("max", "atom", "largest of its arguments", "max(a, b, ...)", _const(CONVEX), _fixed_mono(INC),
+          _max_sign, _k_max, _k_max_d, lambda cp, *xs: cp.maximum(*xs), arity=0),
+    Entry("min", "atom", "smallest of its arguments", "min(a, b, ...)", _const(CONCAVE), _fixed_mono(INC),
+          _min_sign, _k_min, _k_min_d, lambda cp, *xs: cp.minimum(*xs), arity=0),
+    Entry("hypot", "atom", "Euclidean length of (a, b)", "sqrt(a^2 + b^2)", _const(CONVEX), _even_mono,
+          _nonneg, _k_hypot, _k_hypot_d, lambda cp, a, b: _cp_hypot(cp, a, b), arity=2, lipschitz=_k(1.0)),
+    # ---- norms of a parameter vector (or a selection of it)
+    Entry("l1", "norm", "L1 norm", "sum_j |w_j|", _const(CONVEX), _even_mono, _nonneg, _k_l1, _k_l1_d,
+          lambda cp, w: cp.norm1(w), prox=_k_l1_prox, conjugate=_k_l1_conj),
+    Entry("l2", "norm", "L2 (Euclidean) norm", "sqrt(sum_j w_j^2)", _const(CONVEX), _even_mono, _nonneg,
+          _k_l2, _k_l2_d, lambda cp, w: cp.norm2(w), prox=_k_l2_prox, conjugate=_k_l2_conj),
+    Entry("l2sq", "norm", "squared L2 norm (no half)", "sum_j w_j^2", _const(CONVEX), _even_mono, _nonneg,
+          _k_l2sq, _k_l2sq_d, lambda cp, w: cp.sum_squares(w), smooth=_yes, prox=_k_l2sq_prox,
+          conjugate=_k_l2sq_conj),
+)
+
+CATALOG: dict[str, Entry] = {e.name: e for e in ENTRIES}
+
+# `group_l2(w)` is resolved to a sum of l2 norms over the groups a table declares; it is listed
+# here so that name lookup and the docs know it.
+GROUP_NORM = "group_l2"
+
+
+def lookup(name: str) -> Entry | None:
+    return CATALOG.get(name)
+
+
+def names() -> list[str]:
+    return sorted(CATALOG) + [GROUP_NORM]

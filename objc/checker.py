@@ -1,0 +1,988 @@
+"""One bottom-up pass over the typed tree: curvature, sign and smoothness of every node, a verdict
+per goal term and overall, explanations that point at the text, a witness search where the
+composition rules cannot decide, and the warnings of the trade.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+from typing import Literal
+
+import numpy as np
+
+from objc import typed_tree as tt
+from objc.catalog import CATALOG
+from objc.curvature import (ArgumentFault, Curvature, Monotonicity, Sign, compose, curvature_add,
+                            curvature_scale, sign_add, sign_mul)
+from objc.diagnostics import Diagnostic, SpecError
+from objc.source_text import SourceText, Span
+
+Verdict = Literal["convex", "concave", "affine", "constant", "not provable", "not convex", "not subdifferentiable"]
+
+
+@dataclass(frozen=True)
+class Fault:
+    """Why a subexpression is not provably convex: where, which rule, and what would fix it."""
+
+    span: Span
+    message: str
+    hint: str = ""
+
+
+@dataclass(frozen=True)
+class Facts:
+    curvature: Curvature
+    sign: Sign
+    smooth: bool
+    fault: Fault | None = None
+    uses_zero_one: Span | None = None
+
+
+@dataclass(frozen=True)
+class Witness:
+    """Two points where midpoint convexity fails, found numerically."""
+
+    variable: str
+    a: float | tuple[float, ...]
+    b: float | tuple[float, ...]
+    value_mid: float
+    value_avg: float
+    setting: str = ""  # tunable values the witness needs, if any
+
+    def describe(self) -> str:
+        def fmt(v):
+            return f"{v:.4g}" if isinstance(v, float) else "(" + ", ".join(f"{t:.3g}" for t in v) + ")"
+        at = f" (with {self.setting})" if self.setting else ""
+        return (f"at {self.variable} = {fmt(self.a)} and {self.variable} = {fmt(self.b)}{at} the value at the "
+                f"midpoint is {self.value_mid:.6g}, above the average of the ends {self.value_avg:.6g}")
+
+
+@dataclass(frozen=True)
+class Term:
+    """One additive term of the goal: coefficient x core."""
+
+    index: int
+    span: Span
+    text: str
+    coefficient: float | None  # with tunables at their defaults; None if it involves data
+    coefficient_text: str
+    coefficient_sign: Sign
+    core: tt.TExpr
+    expr: tt.TExpr  # coefficient x core, as analysed
+    kind: Literal["rows", "params", "mixed", "constant"]
+    aggregate: Literal["mean", "sum", None]
+    body: tt.TExpr | None  # the per-row expression inside the aggregate (kind "rows")
+    curvature: Curvature  # of coefficient x core
+    smooth: bool
+    verdict: Verdict
+    role: Literal["margin", "residual", "score", None]
+    losses: tuple[str, ...]  # catalog or custom loss names used in the body
+    known_loss: tuple[str, tuple[tuple[str, float], ...]] | None  # body is exactly a catalog loss
+    explanation: tuple[str, ...] = ()
+    witness: Witness | None = None
+    tunables: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class ConstraintInfo:
+    span: Span
+    text: str
+    curvature_ok: bool
+    kind: str  # "sign", "bound", "box", "l1 ball", "l2 ball", "general"
+
+
+@dataclass(frozen=True)
+class CheckedObjective:
+    spec: tt.ResolvedSpec
+    source: SourceText
+    spec_hash: str
+    terms: tuple[Term, ...]
+    constraints: tuple[ConstraintInfo, ...]
+    verdict: Verdict
+    smooth: bool
+    task: Literal["margin", "residual", None]
+    errors: tuple[Diagnostic, ...]
+    warnings: tuple[Diagnostic, ...]
+    expanded: str
+    penalizes_intercept: bool
+    intercept: str | None
+
+    @property
+    def accepted(self) -> bool:
+        return not self.errors and self.verdict in ("convex", "affine")
+
+    @property
+    def subdifferentiable(self) -> bool:
+        return self.verdict != "not subdifferentiable"
+
+
+# ---------------------------------------------------------------- rendering
+
+def render(e: tt.TExpr, prec: int = 0) -> str:
+    """A typed expression as readable math text (used in reports and the expanded objective)."""
+    def wrap(s: str, p: int) -> str:
+        return f"({s})" if p < prec else s
+    if isinstance(e, tt.Const):
+        return f"{e.value:g}"
+    if isinstance(e, tt.TunableRef):
+        return e.name
+    if isinstance(e, tt.DataRef):
+        if e.kind == "inputs":
+            return "x" if e.shape.names is None else f"x[{', '.join(e.shape.names)}]"
+        return e.name
+    if isinstance(e, tt.ParamRef):
+        return e.name if e.entries is None else f"{e.name}[{', '.join(e.entries)}]"
+    if isinstance(e, tt.ScoreRef):
+        return e.name
+    if isinstance(e, tt.Apply):
+        if e.entry == "power":
+            return wrap(f"{render(e.args[0], 4)}^{e.option_dict['p']:g}", 3)
+        opts = [f"{v:g}" for _, v in e.options] if CATALOG[e.entry].options else []
+        return f"{e.entry}({', '.join([render(a) for a in e.args] + opts)})"
+    if isinstance(e, tt.CustomLoss):
+        return f"{e.name}({render(e.arg)})"
+    if isinstance(e, tt.Add):
+        if isinstance(e.right, tt.Neg):
+            return wrap(f"{render(e.left, 1)} - {render(e.right.operand, 2)}", 1)
+        return wrap(f"{render(e.left, 1)} + {render(e.right, 1)}", 1)
+    if isinstance(e, tt.Neg):
+        return wrap(f"-{render(e.operand, 3)}", 2)
+    if isinstance(e, tt.Mul):
+        return wrap(f"{render(e.left, 2)} * {render(e.right, 3)}", 2)
+    if isinstance(e, tt.Div):
+        return wrap(f"{render(e.left, 2)} / {render(e.right, 3)}", 2)
+    if isinstance(e, tt.Dot):
+        return wrap(f"{render(e.left, 2)} . {render(e.right, 3)}", 2)
+    if isinstance(e, tt.Aggregate):
+        return wrap(f"{e.kind} {render(e.operand, 3)}", 2)
+    raise AssertionError(e)
+
+
+# ---------------------------------------------------------------- the analysis of one node
+
+def _is_target(e: tt.TExpr) -> bool:
+    return isinstance(e, tt.DataRef) and e.kind == "target"
+
+
+def loss_role(arg: tt.TExpr) -> Literal["margin", "residual", "score", None]:
+    """Whether a loss argument is the margin y*s, the residual y - s, or the score itself."""
+    if isinstance(arg, tt.Mul) and {type(arg.left), type(arg.right)} == {tt.DataRef, tt.ScoreRef}:
+        data = arg.left if isinstance(arg.left, tt.DataRef) else arg.right
+        if _is_target(data):
+            return "margin"
+    if isinstance(arg, tt.Add) and _is_target(arg.left) and isinstance(arg.right, tt.Neg) and isinstance(
+            arg.right.operand, tt.ScoreRef):
+        return "residual"
+    if isinstance(arg, tt.ScoreRef):
+        return "score"
+    return None
+
+
+def _mono_word(m: Monotonicity) -> str:
+    return {Monotonicity.INCREASING: "nondecreasing", Monotonicity.DECREASING: "nonincreasing"}.get(m, "not monotone")
+
+
+def analyse(e: tt.TExpr) -> Facts:
+    """Curvature (in the learned parameters), sign and smoothness of a typed expression."""
+    C = Curvature
+    if isinstance(e, tt.Const):
+        return Facts(C.CONSTANT, Sign.of_value(e.value), True)
+    if isinstance(e, tt.TunableRef):
+        return Facts(C.CONSTANT, Sign.of_range(e.low, e.high), True)
+    if isinstance(e, tt.DataRef):
+        return Facts(C.CONSTANT, Sign.UNKNOWN, True)
+    if isinstance(e, tt.ParamRef):
+        return Facts(C.AFFINE, Sign.UNKNOWN, True)
+    if isinstance(e, tt.ScoreRef):
+        f = analyse(e.expr)
+        return Facts(C.AFFINE if f.curvature.is_affine else f.curvature, f.sign, f.smooth,
+                     f.fault if not f.curvature.is_affine else None)
+    if isinstance(e, tt.CustomLoss):
+        f = analyse(e.body)
+        return f
+    if isinstance(e, tt.Neg):
+        f = analyse(e.operand)
+        return Facts(f.curvature.negate(), f.sign.negate(), f.smooth, f.fault, f.uses_zero_one)
+    if isinstance(e, tt.Aggregate):
+        f = analyse(e.operand)
+        return f
+    if isinstance(e, tt.Add):
+        a, b = analyse(e.left), analyse(e.right)
+        curv = curvature_add(a.curvature, b.curvature)
+        fault = a.fault or b.fault
+        if curv == C.UNKNOWN and fault is None:
+            concave_side = e.right if b.curvature == C.CONCAVE else e.left
+            fault = Fault(concave_side.span, f"'{render(concave_side)}' is concave (a convex expression with a "
+                          "minus sign, or a concave atom), and adding it to a convex expression is not covered "
+                          "by the composition rules",
+                          "remove the subtraction, or move the concave part into a constraint")
+        return Facts(curv, sign_add(a.sign, b.sign), a.smooth and b.smooth, fault,
+                     a.uses_zero_one or b.uses_zero_one)
+    if isinstance(e, (tt.Mul, tt.Div)):
+        a, b = analyse(e.left), analyse(e.right)
+        z = a.uses_zero_one or b.uses_zero_one
+        sign = sign_mul(a.sign, b.sign)
+        if isinstance(e, tt.Div):
+            if b.curvature != C.CONSTANT:
+                return Facts(C.UNKNOWN, sign, False, a.fault or b.fault or Fault(
+                    e.right.span, f"division by '{render(e.right)}', which depends on learned parameters",
+                    "divide only by numbers, tunables or data"), z)
+            if isinstance(e.right, tt.Const) and e.right.value == 0:
+                return Facts(C.UNKNOWN, sign, False, Fault(e.right.span, "division by zero"), z)
+            curv = curvature_scale(a.curvature, b.sign)
+            fault = a.fault
+            if curv == C.UNKNOWN and fault is None:
+                fault = _unknown_factor_fault(e.right, b.sign)
+            return Facts(curv, sign, a.smooth, fault, z)
+        if a.curvature == C.CONSTANT or b.curvature == C.CONSTANT:
+            const_side, other, of = (e.left, e.right, b) if a.curvature == C.CONSTANT else (e.right, e.left, a)
+            cf = a if of is b else b
+            curv = curvature_scale(of.curvature, cf.sign)
+            fault = of.fault
+            if curv == C.UNKNOWN and fault is None:
+                fault = _unknown_factor_fault(const_side, cf.sign)
+            return Facts(curv, sign, of.smooth, fault, z)
+        return Facts(C.UNKNOWN, sign, a.smooth and b.smooth, a.fault or b.fault or Fault(
+            e.span, f"'{render(e)}' multiplies two expressions that both depend on learned parameters; "
+            "such a product is not affine and not covered by the composition rules",
+            "keep one side of every product free of learned parameters (numbers, tunables or data)"), z)
+    if isinstance(e, tt.Dot):
+        a, b = analyse(e.left), analyse(e.right)
+        if a.curvature == C.CONSTANT or b.curvature == C.CONSTANT:
+            other = b if a.curvature == C.CONSTANT else a
+            curv = C.AFFINE if other.curvature.is_affine else C.UNKNOWN
+            return Facts(curv if curv != C.AFFINE or other.curvature != C.CONSTANT else C.CONSTANT,
+                         Sign.UNKNOWN, True, other.fault)
+        return Facts(C.UNKNOWN, Sign.UNKNOWN, True, Fault(
+            e.span, f"'{render(e)}' is a dot product of two learned vectors: not affine",
+            "dot a learned vector with x or with data"))
+    if isinstance(e, tt.Apply):
+        entry = CATALOG[e.entry]
+        opts = e.option_dict
+        facts = [analyse(a) for a in e.args]
+        z = next((f.uses_zero_one for f in facts if f.uses_zero_one), None)
+        if not entry.trainable:
+            z = z or e.span
+        signs = tuple(f.sign for f in facts)
+        sign = entry.sign(signs, opts)
+        smooth = entry.smooth(opts) and all(f.smooth for f in facts)
+        if entry.name == "power" and opts["p"] >= 2 and _kink_at_zero_only(e.args[0]):
+            smooth = True  # max(0, u)^p with p >= 2 is continuously differentiable: the kink has value 0
+        inner_fault = next((f.fault for f in facts if f.fault), None)
+        atom_curv = entry.curvature(opts)
+        args = [(f.curvature, entry.monotonicity(i, f.sign, opts)) for i, f in enumerate(facts)]
+        curv, faults = compose(atom_curv, args)
+        fault = inner_fault
+        if curv == C.UNKNOWN and fault is None:
+            fault = _apply_fault(e, entry, atom_curv, faults, facts)
+        return Facts(curv, sign, smooth, fault, z)
+    raise AssertionError(e)
+
+
+def _unknown_factor_fault(factor: tt.TExpr, sign: Sign) -> Fault:
+    if isinstance(factor, tt.TunableRef):
+        return Fault(factor.span, f"tunable '{factor.name}' ranges over {factor.low:g} .. {factor.high:g}, so its "
+                     "sign is not known and the term it multiplies may flip from convex to concave",
+                     f"declare a range that excludes negatives, e.g. tune {factor.name} = {factor.default:g} within "
+                     f"{max(factor.low, 0):g} .. {factor.high:g}")
+    if isinstance(factor, tt.DataRef) or sign == Sign.UNKNOWN:
+        return Fault(factor.span, f"'{render(factor)}' has no known sign, so the term it multiplies may flip "
+                     "from convex to concave", "multiply convex terms only by numbers or tunables with a "
+                     "nonnegative range; row weights belong in a `rowweight` clause")
+    return Fault(factor.span, f"'{render(factor)}' is negative, which turns a convex term concave",
+                 "use a nonnegative weight")
+
+
+def _apply_fault(e: tt.Apply, entry, atom_curv: Curvature, faults: tuple[ArgumentFault, ...], facts) -> Fault:
+    name = "x^p" if entry.name == "power" else entry.name
+    if atom_curv == Curvature.UNKNOWN:
+        return Fault(e.span, f"{name} is neither convex nor concave, so '{render(e)}' is not covered by the "
+                     "composition rules", "use a convex loss from the catalog (e.g. logistic or hinge)")
+    f = faults[0]
+    arg = e.args[f.index]
+    mono = _mono_word(f.monotonicity)
+    need = ("convex" if f.monotonicity == Monotonicity.INCREASING else "concave") if f.wanted == "convex" else (
+        "concave" if f.monotonicity == Monotonicity.INCREASING else "convex")
+    if f.monotonicity == Monotonicity.NONE:
+        rule = (f"{name} is {atom_curv.value} but not monotone in this argument (its sign is not known), so the "
+                "argument must be affine")
+    else:
+        rule = f"{name} is {atom_curv.value} and {mono} here, so its argument must be {need} (or affine)"
+    msg = f"'{render(e)}': {rule}; '{render(arg)}' is {f.arg_curvature.value}"
+    hint = ""
+    if entry.name == "sqrt" and _is_sum_with_square(arg):
+        hint = "sqrt(a^2 + m^2) is the Euclidean length of (a, m): write hypot(a, m), which the rules can prove convex"
+    elif entry.name == "power" and f.monotonicity == Monotonicity.NONE:
+        hint = "write abs(...) ^ p, or square a nonnegative expression such as pos(...) ^ 2"
+    elif atom_curv == Curvature.CONCAVE:
+        hint = "a concave atom can only take concave or affine arguments; rewrite the expression or use a convex atom"
+    else:
+        hint = "rewrite so the argument is affine, or use an atom whose monotonicity fits"
+    return Fault(e.span, msg, hint)
+
+
+def _kink_at_zero_only(e: tt.TExpr) -> bool:
+    if isinstance(e, tt.Apply) and e.entry == "pos":
+        return analyse(e.args[0]).smooth
+    if isinstance(e, tt.Apply) and e.entry == "max" and len(e.args) == 2:
+        zero = [a for a in e.args if isinstance(a, tt.Const) and a.value == 0]
+        other = [a for a in e.args if not (isinstance(a, tt.Const) and a.value == 0)]
+        return len(zero) == 1 and len(other) == 1 and analyse(other[0]).smooth
+    return False
+
+
+def _is_sum_with_square(e: tt.TExpr) -> bool:
+    if isinstance(e, tt.Add):
+        return _is_sum_with_square(e.left) or _is_sum_with_square(e.right)
+    return isinstance(e, tt.Apply) and e.entry == "power" and e.option_dict.get("p") == 2
+
+
+# ---------------------------------------------------------------- numerical evaluation (witnesses)
+
+@dataclass
+class _Env:
+    """Values for one numerical evaluation: learned parameters, data of a few rows, tunables."""
+
+    inputs: list[str]
+    params: dict[str, np.ndarray | float]
+    columns: dict[str, np.ndarray]
+    y: np.ndarray
+    score_override: np.ndarray | None = None
+    tunables: dict[str, float] = field(default_factory=dict)
+
+
+def evaluate(e: tt.TExpr, env: _Env):
+    """Numeric value of a typed expression (scalars, per-row arrays, or vectors)."""
+    if isinstance(e, tt.Const):
+        return e.value
+    if isinstance(e, tt.TunableRef):
+        return env.tunables.get(e.name, e.default)
+    if isinstance(e, tt.DataRef):
+        if e.kind == "target":
+            return env.y
+        if e.kind == "inputs":
+            names = env.inputs if e.shape.names is None else list(e.shape.names)
+            return np.stack([env.columns[n] for n in names], axis=1)
+        return env.columns[e.name]
+    if isinstance(e, tt.ParamRef):
+        v = env.params[e.name]
+        if not e.vector:
+            return v
+        if e.entries is None:
+            return v
+        idx = [env.inputs.index(n) for n in e.entries]
+        return v[idx] if e.shape.kind == "vector" else float(v[idx[0]])
+    if isinstance(e, tt.ScoreRef):
+        if env.score_override is not None:
+            return env.score_override
+        return evaluate(e.expr, env)
+    if isinstance(e, tt.CustomLoss):
+        return evaluate(e.body, env)
+    if isinstance(e, tt.Neg):
+        return -evaluate(e.operand, env)
+    if isinstance(e, tt.Add):
+        return evaluate(e.left, env) + evaluate(e.right, env)
+    if isinstance(e, tt.Mul):
+        return evaluate(e.left, env) * evaluate(e.right, env)
+    if isinstance(e, tt.Div):
+        return evaluate(e.left, env) / evaluate(e.right, env)
+    if isinstance(e, tt.Dot):
+        a, b = evaluate(e.left, env), evaluate(e.right, env)
+        if np.ndim(a) == 2:
+            return a @ b
+        if np.ndim(b) == 2:
+            return b @ a
+        return float(np.dot(a, b))
+    if isinstance(e, tt.Aggregate):
+        v = np.asarray(evaluate(e.operand, env), dtype=float)
+        return float(np.mean(v)) if e.kind == "mean" else float(np.sum(v))
+    if isinstance(e, tt.Apply):
+        entry = CATALOG[e.entry]
+        args = [evaluate(a, env) for a in e.args]
+        return entry.value(*args, **e.option_dict)
+    raise AssertionError(e)
+
+
+def _inputs_for(spec: tt.ResolvedSpec) -> list[str]:
+    names: list[str] = []
+    if spec.table is not None:
+        names = list(spec.table.explicit_inputs() or ())
+        for _g, cols in spec.table.groups:
+            names.extend(c for c in cols if c not in names)
+
+    def collect(e):
+        if isinstance(e, tt.ParamRef) and e.entries:
+            names.extend(n for n in e.entries if n not in names)
+        for child in _children(e):
+            collect(child)
+    collect(spec.goal)
+    if spec.score is not None:
+        collect(spec.score.expr)
+    while len(names) < 3:
+        names.append(f"_extra{len(names)}")
+    return names
+
+
+def _children(e: tt.TExpr) -> tuple[tt.TExpr, ...]:
+    if isinstance(e, (tt.Add, tt.Mul, tt.Div, tt.Dot)):
+        return (e.left, e.right)
+    if isinstance(e, (tt.Neg,)):
+        return (e.operand,)
+    if isinstance(e, tt.Aggregate):
+        return (e.operand,)
+    if isinstance(e, tt.Apply):
+        return e.args
+    if isinstance(e, tt.CustomLoss):
+        return (e.arg, e.body)
+    if isinstance(e, tt.ScoreRef):
+        return (e.expr,)
+    return ()
+
+
+def _data_columns(e: tt.TExpr, out: set[str]) -> set[str]:
+    if isinstance(e, tt.DataRef) and e.kind in ("column", "feature"):
+        out.add(e.name)
+    for c in _children(e):
+        _data_columns(c, out)
+    return out
+
+
+def _midpoint_gap(f, a, b) -> tuple[float, float, float]:
+    fa, fb, fm = f(a), f(b), f((a + b) / 2)
+    return fm - (fa + fb) / 2, fm, (fa + fb) / 2
+
+
+def find_witness(e: tt.TExpr, spec: tt.ResolvedSpec, seed: int = 0, trials: int = 400) -> Witness | None:
+    """Search for two points where midpoint convexity of e (in the learned parameters) fails; the
+    widest violation found is returned. Tunables are tried at their defaults and at their range ends."""
+    rng = np.random.default_rng(seed)
+    inputs = _inputs_for(spec)
+    cols = sorted(_data_columns(e, set()) | set(inputs))
+    settings = [{}] + [{t.name: t.low for t in spec.tunables}, {t.name: t.high for t in spec.tunables}]
+    best: Witness | None = None
+    best_gap = 0.0
+    with np.errstate(all="ignore"):
+        if _contains_rows(e) and spec.score is not None:
+            # the score is affine and data are free, so convexity in the parameters is convexity in the
+            # score value of each row: search along that one variable, for each label
+            grid = np.concatenate([np.linspace(-6.0, 6.0, 61), rng.uniform(-12.0, 12.0, 60)])
+            a, b = np.meshgrid(grid, grid, indexing="ij")
+            a, b = a.ravel(), b.ravel()
+            n = a.size
+            base = {c: np.full(n, float(rng.normal())) for c in cols}
+            for tun in settings:
+                for label in (1.0, -1.0):
+                    def f(t, label=label, tun=tun):
+                        env = _Env(inputs, {}, base, np.full(n, label), t, tun)
+                        v = evaluate(_rows_body(e), env)
+                        return np.broadcast_to(np.asarray(v, dtype=float), (n,))
+                    fa, fb, fm = f(a), f(b), f((a + b) / 2)
+                    avg = (fa + fb) / 2
+                    gap = np.where(np.isfinite(fm) & np.isfinite(avg), (fm - avg) / (1.0 + np.abs(avg)), -np.inf)
+                    k = int(np.argmax(gap))
+                    if gap[k] > 1e-6 and gap[k] > best_gap:
+                        var = "the margin m" if label == 1.0 else "the score s (with y = -1)"
+                        if _margin_only(e):
+                            var = "the margin m"
+                        best_gap = float(gap[k])
+                        flip = -1.0 if label == -1.0 and _margin_only(e) else 1.0
+                        best = Witness(var, float(a[k]) * flip, float(b[k]) * flip, float(fm[k]), float(avg[k]),
+                                       ", ".join(f"{k2} = {v:g}" for k2, v in tun.items()))
+            return best
+        base = {c: rng.normal(size=1) for c in cols}
+        for tun in settings:
+            for _ in range(trials // len(settings)):
+                def draw():
+                    return {prm.name: (rng.normal(scale=3.0, size=len(inputs)) if prm.vector else
+                                       float(rng.normal(scale=3.0))) for prm in spec.parameters}
+                pa, pb = draw(), draw()
+
+                def f(params, tun=tun):
+                    return float(np.sum(evaluate(e, _Env(inputs, params, base, np.ones(1), None, tun))))
+                mid = {k: (pa[k] + pb[k]) / 2 for k in pa}
+                fa, fb, fm = f(pa), f(pb), f(mid)
+                avg = (fa + fb) / 2
+                gap = (fm - avg) / (1.0 + abs(avg)) if np.isfinite(fm) and np.isfinite(avg) else -np.inf
+                if gap > 1e-6 and gap > best_gap:
+                    flat = lambda p: tuple(float(v) for k in sorted(p) for v in np.atleast_1d(p[k]))  # noqa: E731
+                    best_gap = gap
+                    at = ", ".join(f"{k} = {v:g}" for k, v in tun.items())
+                    best = Witness(f"({', '.join(sorted(pa))})", flat(pa), flat(pb), fm, avg, at)
+    return best
+
+
+def _rows_body(e: tt.TExpr) -> tt.TExpr:
+    """e with every row aggregate replaced by its per-row operand (so rows can be evaluated one by one)."""
+    if isinstance(e, tt.Aggregate) and e.over == "rows":
+        return e.operand
+    if isinstance(e, tt.Add):
+        return tt.Add(_rows_body(e.left), _rows_body(e.right), e.span, e.shape, e.depends)
+    if isinstance(e, tt.Mul):
+        return tt.Mul(_rows_body(e.left), _rows_body(e.right), e.span, e.shape, e.depends)
+    if isinstance(e, tt.Div):
+        return tt.Div(_rows_body(e.left), _rows_body(e.right), e.span, e.shape, e.depends)
+    if isinstance(e, tt.Neg):
+        return tt.Neg(_rows_body(e.operand), e.span, e.shape, e.depends)
+    return e
+
+
+def _margin_only(e: tt.TExpr) -> bool:
+    """Every use of the score is inside y * s (so the witness can be stated in the margin)."""
+    scores = _contains(e, tt.ScoreRef)
+    margins = [n for n in _contains(e, tt.Mul) if loss_role(n) == "margin"]
+    return bool(scores) and len(scores) == len(margins)
+
+
+def _contains_rows(e: tt.TExpr) -> bool:
+    if isinstance(e, tt.Aggregate) and e.over == "rows":
+        return True
+    return any(_contains_rows(c) for c in _children(e))
+
+
+def _contains(e: tt.TExpr, kind) -> list[tt.TExpr]:
+    found = [e] if isinstance(e, kind) else []
+    for c in _children(e):
+        found.extend(_contains(c, kind))
+    return found
+
+
+# ---------------------------------------------------------------- terms
+
+def _split_terms(goal: tt.TExpr) -> list[tuple[list[tt.TExpr], bool, tt.TExpr]]:
+    """Flatten the goal into (constant factors, negated, core) triples."""
+    out = []
+
+    def walk(e, factors, negated):
+        if isinstance(e, tt.Add):
+            walk(e.left, factors, negated)
+            walk(e.right, factors, negated)
+        elif isinstance(e, tt.Neg):
+            walk(e.operand, factors, not negated)
+        elif isinstance(e, tt.Mul) and e.shape.kind == "scalar" and e.left.depends != "params" and \
+                e.left.shape.kind == "scalar" and e.right.depends == "params":
+            walk(e.right, factors + [e.left], negated)
+        elif isinstance(e, tt.Mul) and e.shape.kind == "scalar" and e.right.depends != "params" and \
+                e.right.shape.kind == "scalar" and e.left.depends == "params":
+            walk(e.left, factors + [e.right], negated)
+        elif isinstance(e, tt.Div) and e.right.depends != "params" and e.left.depends == "params":
+            walk(e.left, factors + [tt.Div(tt.Const(1.0, e.right.span), e.right, e.right.span)], negated)
+        else:
+            out.append((factors, negated, e))
+    walk(goal, [], False)
+    return out
+
+
+def _coefficient(factors: list[tt.TExpr], negated: bool) -> tuple[float | None, str, Sign, tuple[str, ...]]:
+    value: float | None = -1.0 if negated else 1.0
+    names: list[str] = []
+    sign = Sign.NONPOS if negated else Sign.NONNEG
+    for f in factors:
+        facts = analyse(f)
+        sign = sign_mul(sign, facts.sign)
+        for t in _contains(f, tt.TunableRef):
+            names.append(t.name)
+        try:
+            v = evaluate(f, _Env([], {}, {}, np.ones(1)))
+            value = None if value is None or np.ndim(v) else value * float(v)
+        except (KeyError, ValueError, TypeError):
+            value = None
+    numeric = 1.0
+    text_parts = []
+    for f in factors:
+        if isinstance(f, tt.TunableRef):
+            text_parts.append(f.name)
+        elif not _contains(f, tt.TunableRef) and not _contains(f, tt.DataRef):
+            numeric *= float(evaluate(f, _Env([], {}, {}, np.ones(1))))
+        else:
+            text_parts.append(f"({render(f)})")
+    if negated:
+        numeric = -numeric
+    text = " * ".join(([f"{numeric:g}"] if numeric != 1.0 or not text_parts else []) + text_parts)
+    return value, text, sign, tuple(names)
+
+
+def _verdict(c: Curvature) -> Verdict:
+    return {Curvature.CONSTANT: "constant", Curvature.AFFINE: "affine", Curvature.CONVEX: "convex",
+            Curvature.CONCAVE: "concave", Curvature.UNKNOWN: "not provable"}[c]
+
+
+def _classify_constraint(c: tt.Constraint) -> str:
+    left, right = c.left, c.right
+    params_side = left if left.depends == "params" else right
+    if isinstance(params_side, tt.ParamRef) and (right if params_side is left else left).depends == "const":
+        return "sign" if isinstance(right if params_side is left else left, tt.Const) and \
+            (right if params_side is left else left).value == 0 else "bound"
+    if isinstance(params_side, tt.Apply) and params_side.entry == "abs" and isinstance(params_side.args[0], tt.ParamRef):
+        return "box"
+    if isinstance(params_side, tt.Apply) and params_side.entry in ("l1", "l2"):
+        return f"{params_side.entry} ball"
+    return "general"
+
+
+def check(spec: tt.ResolvedSpec, source: SourceText | None = None) -> CheckedObjective:
+    """The checked objective: verdicts, explanations, warnings and the expanded objective."""
+    source = source or SourceText(spec.source_name, spec.text)
+    errors: list[Diagnostic] = []
+    warnings: list[Diagnostic] = []
+
+    def err(code, msg, span, hint="", notes=()):
+        errors.append(Diagnostic(code, msg, span, "error", hint, tuple(notes), source.name))
+
+    def warn(code, msg, span, hint="", notes=()):
+        warnings.append(Diagnostic(code, msg, span, "warning", hint, tuple(notes), source.name))
+
+    # ---- the score must be affine in the learned parameters
+    if spec.score is not None:
+        sf = analyse(spec.score.expr)
+        if not sf.curvature.is_affine:
+            where = sf.fault.span if sf.fault else spec.score.span
+            err("E301", "the score is not affine in the learned parameters" +
+                (f": {sf.fault.message}" if sf.fault else ""), where,
+                hint=(sf.fault.hint if sf.fault else "") or "write the score as w . x + b (data may be transformed "
+                "freely with `feature`, learned quantities may not)",
+                notes=("every loss of the margin or residual is convex only when the score is affine in what is "
+                       "learned",))
+        elif sf.curvature == Curvature.CONSTANT:
+            err("E302", "the score does not depend on anything learned", spec.score.span, hint="write w . x + b")
+
+    # ---- per-row expressions reach learned parameters only through the score
+    for agg in _contains(spec.goal, tt.Aggregate):
+        if agg.over != "rows":
+            continue
+        for p in _contains(_strip_scores(agg.operand), tt.ParamRef):
+            err("E303", f"'{render(p)}' is used inside a per-row expression; learned parameters enter per-row "
+                "terms only through the score", p.span, hint="put it in the score (score s = w . x + b) and use s")
+            break
+
+    # ---- terms
+    terms: list[Term] = []
+    overall = Curvature.CONSTANT
+    zero_one_span: Span | None = None
+    for i, (factors, negated, core) in enumerate(_split_terms(spec.goal)):
+        value, ctext, csign, tun = _coefficient(factors, negated)
+        whole = core
+        for f in factors:
+            whole = tt.Mul(f, whole, core.span, core.shape, "params")
+        if negated:
+            whole = tt.Neg(whole, core.span, core.shape, core.depends)
+        facts = analyse(whole)
+        span = core.span
+        for f in factors:
+            span = span.cover(f.span)
+        if facts.uses_zero_one:
+            zero_one_span = zero_one_span or facts.uses_zero_one
+        is_rows = isinstance(core, tt.Aggregate) and core.over == "rows"
+        kind = "rows" if is_rows else ("params" if not _contains_rows(core) else "mixed")
+        if core.depends != "params" and not is_rows:
+            kind = "constant"
+        body = core.operand if is_rows else None
+        roles = set()
+        losses = []
+        known = None
+        if body is not None:
+            for node in _contains(body, tt.Apply) + _contains(body, tt.CustomLoss):
+                if isinstance(node, tt.Apply) and CATALOG[node.entry].kind != "loss":
+                    continue
+                arg = node.arg if isinstance(node, tt.CustomLoss) else node.args[0]
+                r = loss_role(arg)
+                if r:
+                    roles.add(r)
+                losses.append(node.name if isinstance(node, tt.CustomLoss) else node.entry)
+            if isinstance(body, tt.Apply) and CATALOG[body.entry].kind == "loss" and \
+                    loss_role(body.args[0]) == CATALOG[body.entry].role:
+                known = (body.entry, body.options)
+        role = next(iter(roles)) if len(roles) == 1 else (None if not roles else "mixed")
+        verdict = _verdict(facts.curvature)
+        explanation: list[str] = []
+        witness = None
+        if facts.uses_zero_one:
+            verdict = "not subdifferentiable"
+        elif facts.curvature == Curvature.UNKNOWN:
+            witness = find_witness(whole, spec)
+            if witness is not None:
+                verdict = "not convex"
+        elif facts.curvature == Curvature.CONCAVE:
+            witness = find_witness(whole, spec)
+            verdict = "not convex" if witness is not None else "concave"
+        if facts.fault:
+            explanation.append(f"line {facts.fault.span.line}, column {facts.fault.span.column}: {facts.fault.message}")
+        if witness:
+            explanation.append(f"counterexample: {witness.describe()}")
+        terms.append(Term(i, span, source.snippet(span) if span.line == span.end_line else render(whole),
+                          value, ctext, csign, core, whole, kind, core.kind if is_rows else None, body,
+                          facts.curvature, facts.smooth, verdict, role if role != "mixed" else None,
+                          tuple(dict.fromkeys(losses)), known, tuple(explanation), witness, tun))
+        overall = curvature_add(overall, facts.curvature)
+        if role == "mixed":
+            err("E304", "one term mixes margin and residual losses", span)
+
+    # ---- term-level errors and warnings
+    for t in terms:
+        if t.verdict == "not subdifferentiable":
+            err("E310", "the 0-1 loss is discontinuous: it cannot be trained on (no subgradient carries "
+                "information), only evaluated", zero_one_span or t.span,
+                hint="train with a surrogate such as hinge(y * s) or logistic(y * s); `objc eval` reports the 0-1 "
+                "error of every model")
+        elif t.verdict in ("not convex", "not provable", "concave"):
+            f = analyse(_term_expr(t))
+            fault = f.fault
+            span = fault.span if fault else t.span
+            if spec.score is not None and fault is not None and _within(fault.span, spec.score.span):
+                continue  # already reported as a score that is not affine
+            if t.curvature == Curvature.CONCAVE:
+                err("E312", f"term {t.index + 1} is concave, so minimizing it is not a convex problem", span,
+                    hint="a convex penalty with a minus sign (or a negative weight) is concave: add penalties, "
+                    "never subtract them", notes=[n for n in t.explanation if n.startswith("counterexample")])
+            elif fault is not None and "tunable '" in fault.message and "sign is not known" in fault.message:
+                err("E315", f"term {t.index + 1}: {fault.message}", span, hint=fault.hint,
+                    notes=[n for n in t.explanation if n.startswith("counterexample")])
+            elif t.verdict == "not convex":
+                msg = f"term {t.index + 1} is not convex"
+                notes = [e for e in t.explanation]
+                hint = (fault.hint if fault else "") or "use a convex loss"
+                err("E311", msg + (f": {fault.message}" if fault else ""), span, hint=hint,
+                    notes=[n for n in notes if n.startswith("counterexample")])
+            else:
+                err("E313", f"term {t.index + 1} is not provable by the composition rules" +
+                    (f": {fault.message}" if fault else ""), span,
+                    hint=(fault.hint if fault else ""),
+                    notes=["no counterexample was found numerically, so it may well be convex; objc does not "
+                           "call it non-convex, but it cannot certify it either"])
+        if t.kind == "mixed":
+            warn("W320", f"term {t.index + 1} mixes per-row aggregates with other expressions inside a nonlinear "
+                 "function; only the cvxpy backend can solve it", t.span)
+    if terms and all(t.verdict in ("convex", "affine", "constant") for t in terms) and \
+            overall == Curvature.UNKNOWN:
+        err("E314", "the terms are each fine but their sum is not provably convex", spec.goal_span)
+
+    task: Literal["margin", "residual", None] = None
+    roles = {t.role for t in terms if t.role in ("margin", "residual")}
+    if len(roles) > 1:
+        err("E305", "the goal mixes margin losses (of y * s) and residual losses (of y - s); the target cannot be "
+            "both +1/-1 labels and a real value", spec.goal_span)
+    elif roles:
+        task = roles.pop()
+
+    for t in terms:
+        for node in _contains(t.core, tt.Apply):
+            if node.entry == "perceptron":
+                warn("W301", "the perceptron loss is minimized by w = 0 (with b = 0): under empirical risk "
+                     "it rewards the all-zero model; it is meant as an online update rule",
+                     node.span, hint="use hinge(y * s) for a margin, or logistic(y * s)")
+                warn("W302", "the perceptron loss is not classification-calibrated (its derivative at margin 0 is "
+                     "0; Bartlett, Jordan & McAuliffe 2006)", node.span)
+        for node in _contains(t.core, tt.CustomLoss):
+            if loss_role(node.arg) == "margin":
+                note = _calibration_note(node)
+                if note:
+                    warn("W302", f"custom loss {node.name} {note}", node.definition_span)
+        for tn in _contains(t.core, tt.TunableRef):
+            if tn.low < 0 < tn.high or tn.high <= 0 and tn.low < 0:
+                if t.verdict in ("convex", "affine"):
+                    warn("W303", f"tunable '{tn.name}' may be negative ({tn.low:g} .. {tn.high:g})", tn.span,
+                         hint="declare a nonnegative range for a weight")
+
+    has_penalty = any(t.kind == "params" and _contains(t.core, tt.ParamRef) for t in terms)
+    if task == "margin":
+        if spec.table is not None and spec.table.label_map is None:
+            warn("W304", "margin losses need labels -1/+1, and the target has no label map; the table's target "
+                 "must already hold -1 and +1", spec.table.target_span or spec.table.span,
+                 hint="map the values, e.g. target late: yes -> +1, no -> -1")
+        vanishing = {"logistic", "exponential", "softplus"}
+        used = {n.entry for t in terms for n in _contains(t.core, tt.Apply)}
+        if used & vanishing and not has_penalty and not spec.constraints:
+            warn("W305", "no regularizer and no constraint: on separable data the " + "/".join(sorted(used & vanishing))
+                 + " loss has no minimizer (the weights grow without bound)", spec.goal_span,
+                 hint="add a penalty such as + 0.5 * l2sq(w)")
+    if overall == Curvature.AFFINE and not spec.constraints:
+        warn("W306", "the goal is affine in the learned parameters: it is unbounded below unless constraints "
+             "bound it", spec.goal_span)
+    used_params = {p.name for p in _contains(spec.goal, tt.ParamRef)} | (
+        {p.name for p in _contains(spec.score.expr, tt.ParamRef)} if spec.score else set())
+    for p in spec.parameters:
+        if p.name not in used_params:
+            warn("W307", f"learned parameter '{p.name}' is never used", p.span)
+
+    # ---- constraints
+    cinfo = []
+    for c in spec.constraints:
+        lf, rf = analyse(c.left), analyse(c.right)
+        text = source.snippet(c.span)
+        if c.left.shape.kind == "rows" or c.right.shape.kind == "rows":
+            err("E320", "constraints hold on learned parameters, not on rows", c.span)
+            cinfo.append(ConstraintInfo(c.span, text, False, "general"))
+            continue
+        if c.left.depends != "params" and c.right.depends != "params":
+            err("E321", "this constraint involves no learned parameter", c.span)
+            cinfo.append(ConstraintInfo(c.span, text, False, "general"))
+            continue
+        if c.op == "<=":
+            ok = lf.curvature.is_convex and rf.curvature.is_concave
+            need = "convex <= concave"
+        elif c.op == ">=":
+            ok = lf.curvature.is_concave and rf.curvature.is_convex
+            need = "concave >= convex"
+        else:
+            ok = lf.curvature.is_affine and rf.curvature.is_affine
+            need = "affine == affine"
+        if not ok:
+            err("E322", f"this constraint does not keep the problem convex: it needs {need}, and has "
+                f"{lf.curvature.value} {c.op} {rf.curvature.value}", c.span,
+                hint="e.g. keep l1(w) <= 10, keep abs(w) <= 5, keep w[a] >= 0")
+        cinfo.append(ConstraintInfo(c.span, text, ok, _classify_constraint(c)))
+
+    intercept = None
+    if spec.score is not None:
+        for node in _contains(spec.score.expr, tt.ParamRef):
+            if not node.vector:
+                intercept = node.name
+    penalized = intercept is not None and any(
+        t.kind == "params" and any(p.name == intercept for p in _contains(t.core, tt.ParamRef)) for t in terms)
+
+    if zero_one_span is not None:
+        verdict: Verdict = "not subdifferentiable"
+    elif any(t.verdict == "not convex" for t in terms):
+        verdict = "not convex"
+    else:
+        verdict = _verdict(overall)
+        if verdict == "concave":
+            verdict = "not convex" if any(t.witness for t in terms) else "concave"
+    smooth = all(t.smooth for t in terms)
+    spec_hash = hashlib.sha256(spec.text.encode("utf-8")).hexdigest()
+    expanded = _expanded(spec, terms, cinfo, intercept, penalized)
+    return CheckedObjective(spec, source, spec_hash, tuple(terms), tuple(cinfo), verdict, smooth, task,
+                            tuple(errors), tuple(warnings), expanded, penalized, intercept)
+
+
+def _substitute_arg(node: tt.CustomLoss) -> tt.TExpr:
+    """The custom loss body with its argument shown as the loss's own variable again."""
+    arg = node.arg
+
+    def sub(e):
+        if e == arg:
+            return tt.DataRef(node.param, "column", e.span)
+        if isinstance(e, tt.Add):
+            return tt.Add(sub(e.left), sub(e.right), e.span, e.shape, e.depends)
+        if isinstance(e, tt.Mul):
+            return tt.Mul(sub(e.left), sub(e.right), e.span, e.shape, e.depends)
+        if isinstance(e, tt.Div):
+            return tt.Div(sub(e.left), sub(e.right), e.span, e.shape, e.depends)
+        if isinstance(e, tt.Neg):
+            return tt.Neg(sub(e.operand), e.span, e.shape, e.depends)
+        if isinstance(e, tt.Apply):
+            return tt.Apply(e.entry, tuple(sub(a) for a in e.args), e.options, e.span, e.shape, e.depends)
+        if isinstance(e, tt.CustomLoss):
+            return tt.CustomLoss(e.name, sub(e.arg), e.body, e.param, e.definition_span, e.span, e.shape, e.depends)
+        return e
+    return sub(node.body)
+
+
+def _term_expr(t: Term) -> tt.TExpr:
+    return t.expr
+
+
+def _within(inner: Span, outer: Span) -> bool:
+    return (outer.line, outer.column) <= (inner.line, inner.column) and \
+        (inner.end_line, inner.end_column) <= (outer.end_line, outer.end_column)
+
+
+def _strip_scores(e: tt.TExpr) -> tt.TExpr:
+    """The expression with every score reference replaced by a constant (to find stray parameters)."""
+    if isinstance(e, tt.ScoreRef):
+        return tt.Const(0.0, e.span)
+    if isinstance(e, tt.Add):
+        return tt.Add(_strip_scores(e.left), _strip_scores(e.right), e.span, e.shape, e.depends)
+    if isinstance(e, tt.Mul):
+        return tt.Mul(_strip_scores(e.left), _strip_scores(e.right), e.span, e.shape, e.depends)
+    if isinstance(e, tt.Div):
+        return tt.Div(_strip_scores(e.left), _strip_scores(e.right), e.span, e.shape, e.depends)
+    if isinstance(e, tt.Dot):
+        return tt.Dot(_strip_scores(e.left), _strip_scores(e.right), e.span, e.shape, e.depends)
+    if isinstance(e, tt.Neg):
+        return tt.Neg(_strip_scores(e.operand), e.span, e.shape, e.depends)
+    if isinstance(e, tt.Aggregate):
+        return tt.Aggregate(e.kind, _strip_scores(e.operand), e.over, e.span, e.shape, e.depends)
+    if isinstance(e, tt.Apply):
+        return tt.Apply(e.entry, tuple(_strip_scores(a) for a in e.args), e.options, e.span, e.shape, e.depends)
+    if isinstance(e, tt.CustomLoss):
+        return tt.CustomLoss(e.name, _strip_scores(e.arg), _strip_scores(e.body), e.param, e.definition_span,
+                             e.span, e.shape, e.depends)
+    return e
+
+
+def _calibration_note(node: tt.CustomLoss) -> str:
+    """Bartlett, Jordan & McAuliffe (2006): a convex margin loss is classification-calibrated iff it is
+    differentiable at 0 with a negative derivative. Checked numerically on the loss body."""
+    def phi(m: float) -> float:
+        env = _Env(["_a", "_b", "_c"], {}, {}, np.ones(1), np.array([m]))
+        return float(np.sum(evaluate(node.body, env)))
+    h = 1e-6
+    with np.errstate(all="ignore"):
+        right = (phi(h) - phi(0.0)) / h
+        left = (phi(0.0) - phi(-h)) / h
+    if not (np.isfinite(left) and np.isfinite(right)):
+        return ""
+    if abs(right - left) > 1e-3 * (1 + abs(left)):
+        return "is not differentiable at margin 0, so it is not classification-calibrated (Bartlett, Jordan & " \
+               "McAuliffe 2006)"
+    if right >= -1e-9:
+        return "does not decrease at margin 0, so it is not classification-calibrated (Bartlett, Jordan & " \
+               "McAuliffe 2006)"
+    return ""
+
+
+def _expanded(spec: tt.ResolvedSpec, terms: list[Term], cinfo: list[ConstraintInfo], intercept: str | None,
+              penalized: bool) -> str:
+    """The goal with every weight multiplied out and every convention spelled out."""
+    learned = ", ".join(f"{p.name} (one weight per input)" if p.vector else f"{p.name} (a number)"
+                        for p in spec.parameters)
+    lines = [f"minimize over {learned}:"]
+    for k, t in enumerate(terms):
+        lead = "    " if k == 0 else "  + "
+        coef = t.coefficient_text
+        if t.kind == "rows" and t.body is not None:
+            body = render(t.body).replace("y * s", "y_i * s_i").replace("y - s", "y_i - s_i")
+            agg = "(1 / sum_i c_i) * sum_i c_i * " if t.aggregate == "mean" else "sum_i c_i * "
+            core = f"{agg}{body}"
+        else:
+            core = render(t.core)
+        text = core if coef in ("1", "") else f"{coef} * [{core}]"
+        if coef.startswith("-"):
+            lead = "  - " if k else "    -"
+            text = text if not coef.startswith("-1 *") else text[5:]
+            if coef.startswith("-") and not coef.startswith("-1 *"):
+                text = f"{coef[1:]} * [{core}]"
+        lines.append(f"{lead}{text}")
+    if spec.score is not None:
+        lines.append(f"where {spec.score.name} = {render(spec.score.expr)}, one value per row i")
+    defined = {}
+    for t in terms:
+        for node in _contains(t.core, tt.CustomLoss):
+            defined.setdefault(node.name, node)
+    for name, node in defined.items():
+        body = render(_substitute_arg(node))
+        lines.append(f"  {name}({node.param}) = {body}")
+    weight_parts = []
+    tb = spec.table
+    if tb is not None and tb.row_weight:
+        weight_parts.append(f"row weight from column '{tb.row_weight}'")
+    if tb is not None and tb.class_weights:
+        weight_parts.append("class weight " + ", ".join(f"{l:+g}: {w:g}" for l, w in tb.class_weights))
+    lines.append("  c_i = " + (" x ".join(weight_parts) if weight_parts else "1 for every row (no row or class "
+                                                                                "weights)"))
+    if any(t.aggregate == "mean" for t in terms):
+        lines.append("  mean = weighted mean: sum_i c_i l_i / sum_i c_i;  sum = sum_i c_i l_i")
+    if tb is not None and tb.standardize:
+        lines.append("  inputs are standardized with the training rows' mean and standard deviation")
+    for t in terms:
+        if t.tunables:
+            lines.append("  tunables at their defaults: " + ", ".join(
+                f"{tn.name} = {tn.default:g} (range {tn.low:g} .. {tn.high:g})" for tn in spec.tunables))
+            break
+    if intercept:
+        lines.append(f"  intercept {intercept}: " + ("penalized, as the goal says" if penalized else "not penalized"))
+    if cinfo:
+        lines.append("subject to:")
+        lines.extend(f"    {c.text}" for c in cinfo)
+    return "\n".join(lines)

@@ -1,0 +1,544 @@
+"""Syntax tree to typed tree: bind every name, work out shapes, keep row-level and
+parameter-level expressions apart. Every problem is collected; one SpecError is raised at the end.
+"""
+
+from __future__ import annotations
+
+import difflib
+from dataclasses import replace
+
+from objc import syntax_tree as st
+from objc import typed_tree as tt
+from objc.catalog import CATALOG, GROUP_NORM
+from objc.diagnostics import Diagnostic, SpecError
+from objc.source_text import SourceText, Span
+from objc.typed_tree import ROWS, SCALAR, Shape
+
+_ORDER = {"const": 0, "data": 1, "params": 2}
+BUILTIN_INPUTS = "x"
+BUILTIN_TARGET = "y"
+
+
+def _max_dep(*nodes) -> str:
+    return max((n.depends for n in nodes), key=_ORDER.__getitem__)
+
+
+class _Resolver:
+    """Holds the declarations of one spec while its expressions are resolved (local to one call)."""
+
+    def __init__(self, source: SourceText, tree: st.SpecTree):
+        self.source = source
+        self.tree = tree
+        self.errors: list[Diagnostic] = []
+        self.tunables: dict[str, tt.Tunable] = {}
+        self.params: dict[str, tt.Parameter] = {}
+        self.losses: dict[str, st.LossStmt] = {}
+        self.score_stmt: st.ScoreStmt | None = None
+        self.score: tt.ScoreRef | None = None
+        self.table: tt.TableBinding | None = None
+        self.columns: set[str] = set()  # names usable as per-row data in expressions
+        self.groups: dict[str, tuple[str, ...]] = {}
+        self._loss_stack: list[str] = []
+
+    # ------------------------------------------------------------ reporting
+    def error(self, code: str, message: str, span: Span, hint: str = "", notes: tuple[str, ...] = ()) -> None:
+        self.errors.append(Diagnostic(code, message, span, "error", hint, notes, self.source.name))
+
+    def suggest(self, name: str, candidates) -> str:
+        close = difflib.get_close_matches(name, sorted(candidates), n=1, cutoff=0.6)
+        return f"did you mean '{close[0]}'?" if close else ""
+
+    # ------------------------------------------------------------ declarations
+    def declare(self) -> None:
+        seen: dict[str, Span] = {}
+
+        def claim(name: str, span: Span, what: str) -> bool:
+            if name in (BUILTIN_INPUTS, BUILTIN_TARGET):
+                self.error("E201", f"'{name}' is built in ({'the input matrix' if name == 'x' else 'the target'})"
+                           f" and cannot be declared as a {what}", span, hint="pick another name")
+                return False
+            if name in seen:
+                self.error("E202", f"'{name}' is declared twice", span,
+                           notes=(f"first declared at line {seen[name].line}",), hint="rename one of them")
+                return False
+            if name in CATALOG or name == GROUP_NORM:
+                self.error("E203", f"'{name}' is the name of a catalog function and cannot be redeclared", span,
+                           hint="pick another name")
+                return False
+            seen[name] = span
+            return True
+
+        table_parts: dict[str, object] = {}
+        for s in self.tree.statements:
+            if isinstance(s, st.TableStmt):
+                if self.table is not None or "name" in table_parts:
+                    self.error("E204", "a spec binds one table; this is a second `table` statement", s.span,
+                               hint="use `validate on \"file\"` for a validation table")
+                    continue
+                table_parts.update(name=s.name, path=s.path, span=s.span)
+            elif isinstance(s, st.TuneStmt):
+                if claim(s.name, s.span, "tunable"):
+                    if not (s.low <= s.default <= s.high):
+                        self.error("E205", f"tunable '{s.name}' has default {s.default:g} outside its range "
+                                   f"{s.low:g} .. {s.high:g}", s.span, hint="move the default inside the range")
+                    self.tunables[s.name] = tt.Tunable(s.name, s.default, s.low, s.high, s.span)
+            elif isinstance(s, st.LearnStmt):
+                for item in s.items:
+                    if claim(item.name, item.span, "learned parameter"):
+                        self.params[item.name] = tt.Parameter(item.name, item.over_inputs, item.span)
+            elif isinstance(s, st.LossStmt):
+                if claim(s.name, s.span, "loss"):
+                    self.losses[s.name] = s
+            elif isinstance(s, st.ScoreStmt):
+                if self.score_stmt is not None:
+                    self.error("E206", "a spec has one score; this is a second `score` statement", s.span)
+                elif claim(s.name, s.span, "score"):
+                    self.score_stmt = s
+            elif isinstance(s, (st.TargetClause, st.InputsClause, st.FeatureClause, st.RowWeightClause,
+                                st.ClassWeightClause, st.StandardizeClause, st.HoldoutClause, st.ValidateClause,
+                                st.MissingClause, st.GroupClause)):
+                if "name" not in table_parts:
+                    self.error("E207", "this clause describes a table, but no `table` statement comes before it",
+                               s.span, hint='start the spec with: table NAME from "file.csv"')
+                    continue
+                self._table_clause(s, table_parts, claim)
+        if "name" in table_parts:
+            self.table = tt.TableBinding(**table_parts)
+
+    def _table_clause(self, s, parts: dict, claim) -> None:
+        def once(key: str, what: str) -> bool:
+            if key in parts:
+                self.error("E208", f"the table already has {what}", s.span, hint="keep one of them")
+                return False
+            return True
+
+        if isinstance(s, st.TargetClause):
+            if once("target", "a target"):
+                parts["target"] = s.column
+                parts["target_span"] = s.span
+                if s.labels:
+                    values = [p.value for p in s.labels]
+                    for p in s.labels:
+                        if p.label not in (1.0, -1.0):
+                            self.error("E209", f"label '{p.value}' maps to {p.label:g}; labels map to +1 or -1",
+                                       p.span, hint=f"write {p.value} -> +1 or {p.value} -> -1")
+                    if len(set(map(str, values))) != len(values):
+                        self.error("E210", "the same target value is mapped twice", s.span)
+                    if {p.label for p in s.labels} != {1.0, -1.0}:
+                        self.error("E211", "the label map must send at least one value to +1 and one to -1", s.span)
+                    parts["label_map"] = tt.LabelMap(tuple((p.value, p.label) for p in s.labels), s.span)
+        elif isinstance(s, st.InputsClause):
+            parts["inputs"] = tuple(parts.get("inputs", ())) + s.items
+            parts["excluded"] = tuple(parts.get("excluded", ())) + s.excluded
+            parts.setdefault("inputs_span", s.span)
+            for item in s.items:
+                if item.kind == "column":
+                    self.columns.add(item.text)
+        elif isinstance(s, st.FeatureClause):
+            if claim(s.name, s.span, "feature"):
+                cols = self._feature_columns(s.expr)
+                parts["features"] = tuple(parts.get("features", ())) + (tt.DerivedFeature(s.name, s.expr, cols, s.span),)
+                self.columns.add(s.name)
+        elif isinstance(s, st.RowWeightClause):
+            if once("row_weight", "a row weight column"):
+                parts["row_weight"], parts["row_weight_span"] = s.column, s.span
+        elif isinstance(s, st.ClassWeightClause):
+            if once("class_weights", "class weights"):
+                for cw in s.weights:
+                    if cw.label not in (1.0, -1.0):
+                        self.error("E212", f"class weights are given for labels +1 and -1, not {cw.label:g}", cw.span)
+                    if cw.weight < 0:
+                        self.error("E213", f"class weight {cw.weight:g} is negative; weights must be >= 0", cw.span,
+                                   hint="a negative weight would reward errors and break convexity")
+                parts["class_weights"] = tuple((cw.label, cw.weight) for cw in s.weights)
+                parts["class_weights_span"] = s.span
+        elif isinstance(s, st.StandardizeClause):
+            parts["standardize"] = True
+        elif isinstance(s, st.HoldoutClause):
+            if once("holdout", "a holdout") and "validation_path" not in parts:
+                if not (0.0 < s.fraction < 1.0):
+                    self.error("E214", f"holdout must be a share strictly between 0 and 1 (or 0% and 100%), "
+                               f"got {s.fraction:g}", s.span, hint="e.g. holdout 20% seed 7")
+                parts["holdout"], parts["holdout_span"] = s.fraction, s.span
+                parts["holdout_seed"] = s.seed if s.seed is not None else 0
+            elif "validation_path" in parts:
+                self.error("E215", "a table has either a holdout or a validation table, not both", s.span)
+        elif isinstance(s, st.ValidateClause):
+            if "holdout" in parts:
+                self.error("E215", "a table has either a holdout or a validation table, not both", s.span)
+            elif once("validation_path", "a validation table"):
+                parts["validation_path"], parts["validation_span"] = s.path, s.span
+        elif isinstance(s, st.MissingClause):
+            if s.policy not in ("fail", "drop"):
+                self.error("E216", f"unknown missing-value policy '{s.policy}'", s.span,
+                           hint="write `missing fail` (the default) or `missing drop`")
+            elif once("missing", "a missing-value policy"):
+                parts["missing"] = s.policy
+        elif isinstance(s, st.GroupClause):
+            if claim(s.name, s.span, "group"):
+                self.groups[s.name] = s.columns
+                parts["groups"] = tuple(parts.get("groups", ())) + ((s.name, s.columns),)
+
+    def _feature_columns(self, expr: st.Expr) -> tuple[str, ...]:
+        """Check a feature expression holds only columns, numbers and catalog atoms; list its columns."""
+        found: list[str] = []
+
+        def walk(e: st.Expr) -> None:
+            if isinstance(e, st.Name):
+                if e.id in self.params or e.id in self.tunables or e.id == BUILTIN_TARGET:
+                    self.error("E217", f"a feature is computed from table columns only; '{e.id}' is not a column",
+                               e.span, hint="features are fixed transformations of the data")
+                elif e.id not in found:
+                    found.append(e.id)
+            elif isinstance(e, st.Call):
+                entry = CATALOG.get(e.func)
+                if entry is None or entry.kind != "atom":
+                    atoms = [n for n, en in CATALOG.items() if en.kind == "atom"]
+                    self.error("E218", f"'{e.func}' is not an atom usable in a feature", e.func_span,
+                               hint=self.suggest(e.func, atoms) or "atoms: " + ", ".join(sorted(atoms)))
+                for a in e.args:
+                    walk(a)
+            elif isinstance(e, (st.Binary,)):
+                walk(e.left)
+                walk(e.right)
+            elif isinstance(e, st.Negate):
+                walk(e.operand)
+            elif isinstance(e, st.Power):
+                walk(e.base)
+                if not isinstance(e.exponent, st.Number):
+                    self.error("E219", "an exponent must be a literal number", e.exponent.span)
+            elif isinstance(e, (st.Aggregate, st.Select)):
+                self.error("E217", "a feature is a per-row transformation of columns; this is not", e.span)
+        walk(expr)
+        return tuple(found)
+
+    # ------------------------------------------------------------ expressions
+    def expr(self, e: st.Expr, loss_env: dict[str, tt.TExpr] | None = None, where: str = "goal") -> tt.TExpr:
+        """Resolve one expression; on an error, record it and return a harmless constant."""
+        bad = tt.Const(0.0, e.span)
+        if isinstance(e, st.Number):
+            return tt.Const(e.value, e.span)
+        if isinstance(e, st.Name):
+            return self._name(e, loss_env, where) or bad
+        if isinstance(e, st.Negate):
+            inner = self.expr(e.operand, loss_env, where)
+            return tt.Neg(inner, e.span, inner.shape, inner.depends)
+        if isinstance(e, st.Binary):
+            return self._binary(e, loss_env, where)
+        if isinstance(e, st.Power):
+            base = self.expr(e.base, loss_env, where)
+            exp = e.exponent
+            value = None
+            if isinstance(exp, st.Number):
+                value = exp.value
+            elif isinstance(exp, st.Negate) and isinstance(exp.operand, st.Number):
+                value = -exp.operand.value
+            if value is None:
+                self.error("E219", "an exponent must be a literal number", exp.span,
+                           hint="write e.g. x ^ 2; a tunable or expression as exponent is not allowed")
+                return bad
+            if base.shape.kind == "matrix":
+                self.error("E220", "x is the input matrix; raise a column or a feature instead", base.span)
+                return bad
+            return tt.Apply("power", (base,), (("p", float(value)),), e.span, base.shape, base.depends)
+        if isinstance(e, st.Aggregate):
+            inner = self.expr(e.operand, loss_env, where)
+            if inner.shape.kind == "rows":
+                over = "rows"
+            elif inner.shape.kind == "vector":
+                over = "entries"
+            else:
+                self.error("E221", f"`{e.kind}` needs one value per row or a vector; this is "
+                           f"{inner.shape.describe()}", e.span,
+                           hint=f"drop `{e.kind}`, or apply it to a per-row expression such as hinge(y * s)")
+                return bad
+            return tt.Aggregate(e.kind, inner, over, e.span, SCALAR, inner.depends)
+        if isinstance(e, st.Select):
+            return self._select(e, loss_env, where)
+        if isinstance(e, st.Call):
+            return self._call(e, loss_env, where)
+        raise AssertionError(f"unknown syntax node {e!r}")  # grammar and tree are out of step
+
+    def _name(self, e: st.Name, loss_env, where: str) -> tt.TExpr | None:
+        n = e.id
+        if loss_env is not None:
+            if n in loss_env:
+                return loss_env[n]
+            if n in self.tunables:
+                t = self.tunables[n]
+                return tt.TunableRef(n, t.default, t.low, t.high, e.span)
+            self.error("E222", f"a loss is a function of its one variable; '{n}' is not allowed in its body",
+                       e.span, hint="use only the loss's variable, numbers, tunables and catalog functions")
+            return None
+        if n in self.tunables:
+            t = self.tunables[n]
+            return tt.TunableRef(n, t.default, t.low, t.high, e.span)
+        if n in self.params:
+            p = self.params[n]
+            shape = Shape("vector", None) if p.vector else SCALAR
+            return tt.ParamRef(n, p.vector, e.span, shape)
+        if self.score_stmt is not None and n == self.score_stmt.name:
+            if where == "score":
+                self.error("E223", "the score cannot refer to itself", e.span)
+                return None
+            if self.score is None:
+                return None
+            return replace(self.score, span=e.span)
+        if n == BUILTIN_INPUTS:
+            if self.table is None:
+                self.error("E224", "`x` stands for the table's inputs, but the spec binds no table", e.span,
+                           hint='add: table NAME from "file.csv" with an `inputs` clause')
+                return None
+            return tt.DataRef("x", "inputs", e.span, Shape("matrix", None))
+        if n == BUILTIN_TARGET:
+            if self.table is None or self.table.target is None:
+                self.error("E225", "`y` stands for the table's target, but no `target` clause names it", e.span,
+                           hint="add a clause: target COLUMN (with a label map for classification)")
+                return None
+            return tt.DataRef("y", "target", e.span)
+        if n in self.columns:
+            kind = "feature" if any(f.name == n for f in (self.table.features if self.table else ())) else "column"
+            return tt.DataRef(n, kind, e.span)
+        if n in self.losses or n in CATALOG:
+            self.error("E226", f"'{n}' is a function; call it with an argument, e.g. {n}(y * s)", e.span)
+            return None
+        known = set(self.tunables) | set(self.params) | set(self.columns) | {BUILTIN_INPUTS, BUILTIN_TARGET}
+        if self.score_stmt is not None:
+            known.add(self.score_stmt.name)
+        hint = self.suggest(n, known)
+        if not hint and self.table is not None and self.table.explicit_inputs() is None:
+            hint = "a column chosen by a pattern is used through x (w . x) or as x[\"name\"], not by bare name"
+        self.error("E227", f"unknown name '{n}'", e.span, hint=hint or "declare it with `tune`, `learn`, "
+                   "`score`, or list it under `inputs`")
+        return None
+
+    def _binary(self, e: st.Binary, loss_env, where: str) -> tt.TExpr:
+        left = self.expr(e.left, loss_env, where)
+        right = self.expr(e.right, loss_env, where)
+        bad = tt.Const(0.0, e.span)
+        dep = _max_dep(left, right)
+        if e.op == ".":
+            return self._dot(left, right, e.span) or bad
+        if "matrix" in (left.shape.kind, right.shape.kind):
+            self.error("E228", "x is the input matrix; it can only appear in a dot product such as w . x",
+                       (left if left.shape.kind == "matrix" else right).span, hint="write w . x")
+            return bad
+        shape = self._broadcast(left, right, e)
+        if shape is None:
+            return bad
+        if e.op == "+":
+            return tt.Add(left, right, e.span, shape, dep)
+        if e.op == "-":
+            neg = tt.Neg(right, right.span, right.shape, right.depends)
+            return tt.Add(left, neg, e.span, shape, dep)
+        if e.op == "*":
+            return tt.Mul(left, right, e.span, shape, dep)
+        if e.op == "/":
+            return tt.Div(left, right, e.span, shape, dep)
+        raise AssertionError(e.op)
+
+    def _broadcast(self, left: tt.TExpr, right: tt.TExpr, e) -> Shape | None:
+        a, b = left.shape, right.shape
+        if a.kind == "scalar":
+            return b
+        if b.kind == "scalar":
+            return a
+        if a.kind == b.kind == "rows":
+            return ROWS
+        if a.kind == b.kind == "vector":
+            if a.names is not None and b.names is not None and len(a.names) != len(b.names):
+                self.error("E229", f"vectors of different lengths ({len(a.names)} and {len(b.names)})", e.span)
+                return None
+            return a
+        self.error("E230", f"cannot combine {a.describe()} with {b.describe()}", e.span,
+                   hint="per-row expressions meet parameter vectors only through the score (w . x); "
+                        "aggregate per-row values with mean or sum first")
+        return None
+
+    def _dot(self, left: tt.TExpr, right: tt.TExpr, span: Span) -> tt.TExpr | None:
+        kinds = {left.shape.kind, right.shape.kind}
+        if kinds == {"vector", "matrix"}:
+            vec = left if left.shape.kind == "vector" else right
+            mat = right if vec is left else left
+            if vec.shape.names != mat.shape.names and None not in (vec.shape.names, mat.shape.names):
+                if len(vec.shape.names) != len(mat.shape.names):
+                    self.error("E231", "the two sides of the dot product select different inputs", span,
+                               hint="select the same inputs on both sides, e.g. w[a, b] . x[a, b]")
+                    return None
+            elif (vec.shape.names is None) != (mat.shape.names is None):
+                self.error("E231", "the two sides of the dot product select different inputs", span,
+                           hint="use w . x, or select the same inputs on both sides: w[a, b] . x[a, b]")
+                return None
+            return tt.Dot(left, right, span, ROWS, _max_dep(left, right))
+        if kinds == {"vector"}:
+            return tt.Dot(left, right, span, SCALAR, _max_dep(left, right))
+        self.error("E232", f"a dot product takes a weight vector and x (or two vectors); got "
+                   f"{left.shape.describe()} and {right.shape.describe()}", span, hint="write w . x")
+        return None
+
+    def _select(self, e: st.Select, loss_env, where: str) -> tt.TExpr:
+        base = self.expr(e.base, loss_env, where)
+        bad = tt.Const(0.0, e.span)
+        if not ((isinstance(base, tt.ParamRef) and base.vector) or
+                (isinstance(base, tt.DataRef) and base.kind == "inputs")):
+            self.error("E233", "only a weight vector over the inputs (e.g. w) or x can be indexed by input names",
+                       e.span)
+            return bad
+        names: list[str] = []
+        explicit = self.table.explicit_inputs() if self.table else None
+        for key in e.keys:
+            if key in self.groups:
+                names.extend(self.groups[key])
+            elif explicit is not None and key not in explicit:
+                self.error("E234", f"'{key}' is not one of the inputs", e.span,
+                           hint=self.suggest(key, set(explicit) | set(self.groups)) or
+                           "inputs: " + ", ".join(explicit))
+                return bad
+            else:
+                names.append(key)
+        if len(set(names)) != len(names):
+            self.error("E235", "an input is selected twice", e.span)
+            return bad
+        if isinstance(base, tt.DataRef):
+            if len(names) == 1:
+                return tt.DataRef(names[0], "column", e.span)
+            return tt.DataRef("x", "inputs", e.span, Shape("matrix", tuple(names)))
+        shape = Shape("vector", tuple(names)) if len(names) > 1 else SCALAR
+        return tt.ParamRef(base.name, True, e.span, shape, "params", tuple(names))
+
+    def _call(self, e: st.Call, loss_env, where: str) -> tt.TExpr:
+        bad = tt.Const(0.0, e.span)
+        if e.func in self.losses:
+            return self._custom_loss(e, loss_env, where) or bad
+        if e.func == GROUP_NORM:
+            return self._group_norm(e, loss_env, where) or bad
+        entry = CATALOG.get(e.func)
+        if entry is None:
+            hint = self.suggest(e.func, set(CATALOG) | set(self.losses) | {GROUP_NORM})
+            self.error("E236", f"unknown function '{e.func}'", e.func_span,
+                       hint=hint or "see docs/language.md for the catalog, or define it with `loss`")
+            return bad
+        n_expr = len(e.args) if entry.arity == 0 else min(len(e.args), entry.arity)
+        if entry.arity == 0 and len(e.args) < 2:
+            self.error("E237", f"{e.func} takes two or more arguments", e.span)
+            return bad
+        if entry.arity and len(e.args) < entry.arity:
+            self.error("E237", f"{e.func} takes {entry.arity} argument(s), got {len(e.args)}", e.span,
+                       hint=f"{e.func}: {entry.formula}")
+            return bad
+        args = tuple(self.expr(a, loss_env, where) for a in e.args[:n_expr])
+        literal_options = []
+        for a in e.args[n_expr:]:
+            v = a.value if isinstance(a, st.Number) else (
+                -a.operand.value if isinstance(a, st.Negate) and isinstance(a.operand, st.Number) else None)
+            if v is None:
+                self.error("E238", f"the setting of {e.func} must be a literal number", a.span,
+                           hint=f"e.g. {e.func}(r, {entry.options[0].default:g})" if entry.options else "")
+                return bad
+            literal_options.append(v)
+        try:
+            options = entry.resolve_options(tuple(literal_options))
+        except ValueError as err:
+            self.error("E239", str(err), e.span)
+            return bad
+        if not entry.trainable and where != "eval":
+            pass  # kept in the tree; the checker refuses it with a reason
+        for a in args:
+            if a.shape.kind == "matrix":
+                self.error("E228", "x is the input matrix; it can only appear in a dot product such as w . x",
+                           a.span, hint="write w . x")
+                return bad
+        if entry.kind == "norm":
+            a = args[0]
+            if a.shape.kind != "vector":
+                self.error("E240", f"{e.func} is a norm of a weight vector; its argument is {a.shape.describe()}",
+                           e.span, hint=f"write {e.func}(w)" + (" (per-row losses go inside mean or sum)"
+                                                                 if a.shape.kind == "rows" else ""))
+                return bad
+            return tt.Apply(entry.name, args, tuple(options.items()), e.span, SCALAR, a.depends)
+        shape = SCALAR
+        for a in args:
+            if a.shape.kind != "scalar":
+                if shape.kind != "scalar" and shape.kind != a.shape.kind:
+                    self.error("E230", f"cannot combine {shape.describe()} with {a.shape.describe()}", e.span)
+                    return bad
+                shape = a.shape
+        return tt.Apply(entry.name, args, tuple(options.items()), e.span, shape, _max_dep(*args))
+
+    def _custom_loss(self, e: st.Call, loss_env, where: str) -> tt.TExpr | None:
+        d = self.losses[e.func]
+        if len(e.args) != 1:
+            self.error("E237", f"loss {d.name} takes one argument, got {len(e.args)}", e.span,
+                       hint=f"defined at line {d.span.line}: loss {d.name}({d.param}) = ...")
+            return None
+        if d.name in self._loss_stack:
+            self.error("E241", f"loss {d.name} refers to itself", e.span)
+            return None
+        arg = self.expr(e.args[0], loss_env, where)
+        self._loss_stack.append(d.name)
+        body = self.expr(d.expr, {d.param: arg}, where)
+        self._loss_stack.pop()
+        return tt.CustomLoss(d.name, arg, body, d.param, d.span, e.span, body.shape, _max_dep(arg, body))
+
+    def _group_norm(self, e: st.Call, loss_env, where: str) -> tt.TExpr | None:
+        if len(e.args) != 1:
+            self.error("E237", f"{GROUP_NORM} takes one argument (a weight vector)", e.span)
+            return None
+        arg = self.expr(e.args[0], loss_env, where)
+        if not (isinstance(arg, tt.ParamRef) and arg.vector and arg.shape.names is None):
+            self.error("E240", f"{GROUP_NORM} takes the whole weight vector, e.g. {GROUP_NORM}(w)", e.span)
+            return None
+        if not self.groups:
+            self.error("E242", f"{GROUP_NORM} sums an L2 norm per group, but the table declares no `group`",
+                       e.span, hint="declare groups in the table block: group color = red, green, blue")
+            return None
+        total: tt.TExpr | None = None
+        for gname, cols in self.groups.items():
+            part = tt.ParamRef(arg.name, True, e.span, Shape("vector", cols), "params", cols)
+            norm = tt.Apply("l2", (part,), (), e.span, SCALAR, "params")
+            total = norm if total is None else tt.Add(total, norm, e.span, SCALAR, "params")
+        return total
+
+    # ------------------------------------------------------------ whole spec
+    def run(self) -> tt.ResolvedSpec:
+        self.declare()
+        if self.score_stmt is not None:
+            expr = self.expr(self.score_stmt.expr, None, "score")
+            if expr.shape.kind not in ("rows", "scalar"):
+                self.error("E243", f"the score must give one value per row; it is {expr.shape.describe()}",
+                           self.score_stmt.expr.span, hint="write score s = w . x + b")
+            self.score = tt.ScoreRef(self.score_stmt.name, expr, self.score_stmt.span)
+        goals = [s for s in self.tree.statements if isinstance(s, st.GoalStmt)]
+        goal: tt.TExpr = tt.Const(0.0, Span(1, 1, 1, 2))
+        goal_span = Span(1, 1, 1, 2)
+        if not goals:
+            self.error("E244", "the spec has no `goal` statement: nothing to minimize", Span(1, 1, 1, 2),
+                       hint="add e.g.: goal mean logistic(y * s) + 0.5 * l2sq(w)")
+        else:
+            for extra in goals[1:]:
+                self.error("E245", "a spec has one goal; add terms to it with + instead", extra.span)
+            goal_span = goals[0].span
+            goal = self.expr(goals[0].expr)
+            if goal.shape.kind != "scalar":
+                self.error("E246", f"the goal must be a single number; it is {goal.shape.describe()}",
+                           goals[0].expr.span, hint="wrap per-row losses in mean or sum: mean hinge(y * s)")
+        if not self.params:
+            self.error("E247", "nothing is learned: the spec has no `learn` statement", goal_span,
+                       hint="add: learn w over inputs, b")
+        constraints = []
+        for s in self.tree.statements:
+            if isinstance(s, st.KeepStmt):
+                left, right = self.expr(s.left, None, "keep"), self.expr(s.right, None, "keep")
+                constraints.append(tt.Constraint(left, s.op, right, s.span))
+        for name, stmt in self.losses.items():  # a loss defined but never used is still checked
+            self.expr(stmt.expr, {stmt.param: tt.Const(0.0, stmt.span)}, "loss")
+        if self.errors:
+            raise SpecError(tuple(self.errors), self.source)
+        return tt.ResolvedSpec(self.source.name, self.source.text, self.table, tuple(self.tunables.values()),
+                               tuple(self.params.values()), self.score, goal, goal_span, tuple(constraints),
+                               tuple(self.losses))
+
+
+def resolve(tree: st.SpecTree, source: SourceText) -> tt.ResolvedSpec:
+    """Bind names and shapes; raise SpecError listing every problem found."""
+    return _Resolver(source, tree).run()

@@ -1,0 +1,58 @@
+"""The spec text and positions in it: every diagnostic points back here."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+
+@dataclass(frozen=True)
+class Span:
+    """A range of spec text; lines and columns count from 1, `end_column` is exclusive."""
+
+    line: int
+    column: int
+    end_line: int
+    end_column: int
+
+    def cover(self, other: "Span") -> "Span":
+        start = min((self.line, self.column), (other.line, other.column))
+        end = max((self.end_line, self.end_column), (other.end_line, other.end_column))
+        return Span(start[0], start[1], end[0], end[1])
+
+    def label(self) -> str:
+        return f"{self.line}:{self.column}"
+
+
+NO_SPAN = Span(0, 0, 0, 0)
+
+
+@dataclass(frozen=True)
+class SourceText:
+    """A spec's text and the name it is reported under (usually its path)."""
+
+    name: str
+    text: str
+
+    def line_text(self, line: int) -> str:
+        lines = self.text.splitlines()
+        if 1 <= line <= len(lines):
+            return lines[line - 1]
+        return ""
+
+    def snippet(self, span: Span) -> str:
+        """The offending text itself, clipped to its first line."""
+        if span.line == 0:
+            return ""
+        text = self.line_text(span.line)
+        end = span.end_column if span.end_line == span.line else len(text) + 1
+        return text[span.column - 1 : max(end - 1, span.column)]
+
+    def render(self, span: Span) -> str:
+        """The span's first line with a caret underline, ready to print under a message."""
+        if span.line == 0:
+            return ""
+        text = self.line_text(span.line).expandtabs(1)
+        width = (span.end_column if span.end_line == span.line else len(text) + 1) - span.column
+        width = max(1, min(width, len(text) - span.column + 2))
+        gutter = f"{span.line:>4} | "
+        return f"{gutter}{text}\n{' ' * (len(gutter) + span.column - 1)}{'^' * width}"

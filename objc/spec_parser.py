@@ -1,0 +1,301 @@
+"""Spec text to syntax tree: the only module that knows lark.
+
+Syntax errors are turned into diagnostics; after one, the statement holding it is blanked out and
+the text parsed again, so every broken statement in a spec is reported in one go.
+"""
+
+from __future__ import annotations
+
+import re
+from functools import lru_cache
+from importlib import resources
+from pathlib import Path
+
+import lark
+from lark import Token, Transformer, v_args
+
+from objc import syntax_tree as st
+from objc.diagnostics import Diagnostic, SpecError
+from objc.source_text import SourceText, Span
+
+STATEMENT_KEYWORDS = ("table", "target", "inputs", "feature", "rowweight", "classweight", "standardize",
+                      "holdout", "validate", "missing", "group", "tune", "learn", "score", "loss", "goal", "keep")
+RESERVED_WORDS = STATEMENT_KEYWORDS + ("from", "like", "all", "except", "seed", "on", "within", "over",
+                                       "mean", "sum")
+
+# Friendly words for lark's terminal names, used in "expected ..." messages.
+_TERMINAL_WORDS = {
+    "NAME": "a name", "NUMBER": "a number", "STRING": 'a quoted string', "COMPARE": "<=, >= or ==",
+    "PLUS": "+", "MINUS": "-", "STAR": "*", "SLASH": "/", "DOT": ".", "CIRCUMFLEX": "^", "LPAR": "(",
+    "RPAR": ")", "LSQB": "[", "RSQB": "]", "COMMA": ",", "COLON": ":", "EQUAL": "=", "PERCENT": "%",
+    "$END": "end of file",
+}
+
+MAX_SYNTAX_ERRORS = 20
+
+
+def grammar_text() -> str:
+    """The grammar source: from the installed package data, else from the checkout's grammar/."""
+    try:
+        return resources.files("objc.grammar").joinpath("objc.lark").read_text(encoding="utf-8")
+    except (ModuleNotFoundError, FileNotFoundError, OSError):
+        return (Path(__file__).resolve().parent.parent / "grammar" / "objc.lark").read_text(encoding="utf-8")
+
+
+@lru_cache(maxsize=1)
+def _parser() -> lark.Lark:
+    return lark.Lark(grammar_text(), parser="lalr", lexer="basic", propagate_positions=True,
+                     maybe_placeholders=True)
+
+
+def _span(meta) -> Span:
+    return Span(meta.line, meta.column, meta.end_line, meta.end_column)
+
+
+def _tspan(tok: Token) -> Span:
+    return Span(tok.line, tok.column, tok.end_line, tok.end_column)
+
+
+def _unquote(tok: Token) -> str:
+    return bytes(str(tok)[1:-1], "utf-8").decode("unicode_escape") if "\\" in tok else str(tok)[1:-1]
+
+
+@v_args(meta=True)
+class _ToTree(Transformer):
+    # ---- expressions
+    def number(self, meta, c):
+        return st.Number(float(c[0]), _span(meta))
+
+    def name(self, meta, c):
+        return st.Name(str(c[0]), _span(meta))
+
+    def call(self, meta, c):
+        args = tuple(a for a in c[1:] if a is not None)
+        return st.Call(str(c[0]), args, _span(meta), _tspan(c[0]))
+
+    def negate(self, meta, c):
+        return st.Negate(c[0], _span(meta))
+
+    def _bin(op):
+        def f(self, meta, c):
+            return st.Binary(op, c[0], c[1], _span(meta))
+        return f
+
+    add, subtract, multiply, divide, dot = _bin("+"), _bin("-"), _bin("*"), _bin("/"), _bin(".")
+
+    def raise_to(self, meta, c):
+        return st.Power(c[0], c[1], _span(meta))
+
+    def mean_of(self, meta, c):
+        return st.Aggregate("mean", c[0], _span(meta))
+
+    def sum_of(self, meta, c):
+        return st.Aggregate("sum", c[0], _span(meta))
+
+    def select(self, meta, c):
+        return st.Select(c[0], tuple(k[0] for k in c[1:]), _span(meta))
+
+    def positive_number(self, meta, c):
+        return float(c[0])
+
+    def negative_number(self, meta, c):
+        return -float(c[0])
+
+    def column_name(self, meta, c):
+        return (str(c[0]), _span(meta))
+
+    def column_string(self, meta, c):
+        return (_unquote(c[0]), _span(meta))
+
+    # ---- statements
+    def table_stmt(self, meta, c):
+        return st.TableStmt(str(c[0]), _unquote(c[1]), _span(meta))
+
+    def label_name(self, meta, c):
+        return (str(c[0]), _span(meta))
+
+    def label_string(self, meta, c):
+        return (_unquote(c[0]), _span(meta))
+
+    def label_number(self, meta, c):
+        return (c[0], _span(meta))
+
+    def label_pair(self, meta, c):
+        return st.LabelPair(c[0][0], c[1], _span(meta))
+
+    def target_clause(self, meta, c):
+        labels = tuple(x for x in c[1:] if x is not None)
+        return st.TargetClause(c[0][0], labels, _span(meta))
+
+    def input_pattern(self, meta, c):
+        return st.InputItem("pattern", _unquote(c[0]), _span(meta))
+
+    def input_all(self, meta, c):
+        return st.InputItem("all", "all", _span(meta))
+
+    def excluded(self, meta, c):
+        return tuple(st.InputItem("column", name, span) for name, span in c)
+
+    def inputs_clause(self, meta, c):
+        *items, excluded = c
+        items = tuple(i if isinstance(i, st.InputItem) else st.InputItem("column", i[0], i[1]) for i in items)
+        return st.InputsClause(items, excluded or (), _span(meta))
+
+    def feature_clause(self, meta, c):
+        return st.FeatureClause(str(c[0]), c[1], _span(meta))
+
+    def rowweight_clause(self, meta, c):
+        return st.RowWeightClause(c[0][0], _span(meta))
+
+    def class_weight(self, meta, c):
+        return st.ClassWeight(c[0], c[1], _span(meta))
+
+    def classweight_clause(self, meta, c):
+        return st.ClassWeightClause(tuple(c), _span(meta))
+
+    def standardize_clause(self, meta, c):
+        return st.StandardizeClause(_span(meta))
+
+    def holdout_clause(self, meta, c):
+        amount, percent, seed = c
+        fraction = float(amount) / 100.0 if percent is not None else float(amount)
+        return st.HoldoutClause(fraction, None if seed is None else int(float(seed)), _span(meta))
+
+    def validate_clause(self, meta, c):
+        return st.ValidateClause(_unquote(c[0]), _span(meta))
+
+    def missing_clause(self, meta, c):
+        return st.MissingClause(str(c[0]), _span(meta))
+
+    def group_clause(self, meta, c):
+        return st.GroupClause(str(c[0]), tuple(x[0] for x in c[1:]), _span(meta))
+
+    def tune_stmt(self, meta, c):
+        return st.TuneStmt(str(c[0]), c[1], c[2], c[3], _span(meta))
+
+    def learn_scalar(self, meta, c):
+        return st.LearnItem(str(c[0]), False, _span(meta))
+
+    def learn_vector(self, meta, c):
+        return st.LearnItem(str(c[0]), True, _span(meta))
+
+    def learn_stmt(self, meta, c):
+        return st.LearnStmt(tuple(c), _span(meta))
+
+    def score_stmt(self, meta, c):
+        return st.ScoreStmt(str(c[0]), c[1], _span(meta))
+
+    def loss_stmt(self, meta, c):
+        return st.LossStmt(str(c[0]), str(c[1]), c[2], _span(meta))
+
+    def goal_stmt(self, meta, c):
+        return st.GoalStmt(c[0], _span(meta))
+
+    def keep_stmt(self, meta, c):
+        return st.KeepStmt(c[0], str(c[1]), c[2], _span(meta))
+
+    def start(self, meta, c):
+        return st.SpecTree(tuple(c))
+
+
+def _expected_words(expected) -> str:
+    words = []
+    for t in sorted(expected):
+        if t in _TERMINAL_WORDS:
+            words.append(_TERMINAL_WORDS[t])
+        elif t.isupper() and t.lower() in RESERVED_WORDS:
+            words.append(f"'{t.lower()}'")
+        elif t.startswith("__ANON"):
+            continue
+        else:
+            words.append(t.lower())
+    words = sorted(set(words))
+    if len(words) > 8:
+        return ", ".join(words[:8]) + ", ..."
+    return ", ".join(words)
+
+
+def _statement_bounds(text: str, line: int) -> tuple[int, int]:
+    """Lines [first, last] of the statement holding `line`: it starts at a line whose first word
+    is a statement keyword and runs until the next such line."""
+    lines = text.split("\n")
+    starts = re.compile(r"^\s*(" + "|".join(STATEMENT_KEYWORDS) + r")\b")
+    first = line
+    while first > 1 and not starts.match(lines[first - 1]):
+        first -= 1
+    last = line
+    while last < len(lines) and not starts.match(lines[last]):
+        last += 1
+    return first, last
+
+
+def _blank_lines(text: str, first: int, last: int) -> str:
+    lines = text.split("\n")
+    for i in range(first - 1, min(last, len(lines))):
+        lines[i] = " " * len(lines[i])
+    return "\n".join(lines)
+
+
+def _diagnose(err: lark.exceptions.LarkError, source: SourceText) -> Diagnostic:
+    if isinstance(err, lark.exceptions.UnexpectedCharacters):
+        ch = source.line_text(err.line)[err.column - 1: err.column] or "?"
+        span = Span(err.line, err.column, err.line, err.column + 1)
+        hint = "names use letters, digits and _; quote file names and odd column names with \"...\""
+        if ch == "'":
+            hint = "strings use double quotes: \"...\""
+        return Diagnostic("E101", f"unexpected character '{ch}'", span, hint=hint, source_name=source.name)
+    if isinstance(err, lark.exceptions.UnexpectedToken):
+        tok = err.token
+        if tok.type == "$END":
+            lines = source.text.rstrip().split("\n")
+            span = Span(len(lines), max(1, len(lines[-1])), len(lines), len(lines[-1]) + 1)
+            return Diagnostic("E102", "the spec ends in the middle of a statement", span,
+                              hint=f"expected {_expected_words(err.expected)}", source_name=source.name)
+        span = _tspan(tok)
+        word = str(tok)
+        msg = f"unexpected '{word}'"
+        hint = f"expected {_expected_words(err.expected)}"
+        at_line_start = source.line_text(tok.line)[: tok.column - 1].strip() == ""
+        if word in STATEMENT_KEYWORDS and at_line_start:
+            msg = f"the statement before '{word}' is unfinished"
+            hint = f"before '{word}' it expected {_expected_words(err.expected)}"
+            return Diagnostic("E104", msg, span, hint=hint, source_name=source.name)
+        if word in RESERVED_WORDS and "NAME" in err.expected:
+            msg = f"'{word}' is a reserved word and cannot be used as a name here"
+            hint = f"pick another name, or quote a column name: \"{word}\""
+        return Diagnostic("E103", msg, span, hint=hint, source_name=source.name)
+    if isinstance(err, lark.exceptions.UnexpectedEOF):
+        return Diagnostic("E102", "the spec ends in the middle of a statement", Span(1, 1, 1, 2),
+                          source_name=source.name)
+    return Diagnostic("E100", f"could not parse the spec: {err}", Span(1, 1, 1, 2), source_name=source.name)
+
+
+def parse(source: SourceText) -> st.SpecTree:
+    """Parse spec text into a syntax tree, or raise SpecError listing every syntax problem."""
+    text = source.text.replace("\r\n", "\n").replace("\t", " ")
+    diagnostics: list[Diagnostic] = []
+    tree = None
+    for _ in range(MAX_SYNTAX_ERRORS):
+        try:
+            tree = _parser().parse(text)
+            break
+        except lark.exceptions.LarkError as err:
+            diag = _diagnose(err, source)
+            diagnostics.append(diag)
+            line = diag.span.line or 1
+            if diag.code == "E104":  # the fault lies in the statement before this line
+                line = max(1, line - 1)
+                while line > 1 and not text.split("\n")[line - 1].strip():
+                    line -= 1
+            first, last = _statement_bounds(text, line)
+            blanked = _blank_lines(text, first, last)
+            if blanked == text:
+                break
+            text = blanked
+    if diagnostics:
+        raise SpecError(tuple(diagnostics), source)
+    try:
+        return _ToTree().transform(tree)
+    except lark.exceptions.VisitError as err:  # a transformer bug, reported rather than leaked
+        raise SpecError((Diagnostic("E100", f"internal parse error: {err.orig_exc}", Span(1, 1, 1, 2),
+                                    source_name=source.name),), source) from None

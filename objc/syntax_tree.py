@@ -1,0 +1,223 @@
+"""Frozen nodes of a parsed spec, each with its source span; no meaning attached yet."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Literal, Union
+
+from objc.source_text import Span
+
+
+# ---------------------------------------------------------------- expressions
+
+@dataclass(frozen=True)
+class Number:
+    value: float
+    span: Span
+
+
+@dataclass(frozen=True)
+class Name:
+    id: str
+    span: Span
+
+
+@dataclass(frozen=True)
+class Call:
+    func: str
+    args: tuple["Expr", ...]
+    span: Span
+    func_span: Span
+
+
+@dataclass(frozen=True)
+class Negate:
+    operand: "Expr"
+    span: Span
+
+
+@dataclass(frozen=True)
+class Binary:
+    op: Literal["+", "-", "*", "/", "."]
+    left: "Expr"
+    right: "Expr"
+    span: Span
+
+
+@dataclass(frozen=True)
+class Power:
+    base: "Expr"
+    exponent: "Expr"
+    span: Span
+
+
+@dataclass(frozen=True)
+class Aggregate:
+    kind: Literal["mean", "sum"]
+    operand: "Expr"
+    span: Span
+
+
+@dataclass(frozen=True)
+class Select:
+    base: "Expr"
+    keys: tuple[str, ...]
+    span: Span
+
+
+Expr = Union[Number, Name, Call, Negate, Binary, Power, Aggregate, Select]
+
+
+# ---------------------------------------------------------------- statements
+
+@dataclass(frozen=True)
+class TableStmt:
+    name: str
+    path: str
+    span: Span
+
+
+@dataclass(frozen=True)
+class LabelPair:
+    value: str | float  # the raw value in the table
+    label: float  # what it maps to: +1 or -1
+    span: Span
+
+
+@dataclass(frozen=True)
+class TargetClause:
+    column: str
+    labels: tuple[LabelPair, ...]
+    span: Span
+
+
+@dataclass(frozen=True)
+class InputItem:
+    kind: Literal["column", "pattern", "all"]
+    text: str
+    span: Span
+
+
+@dataclass(frozen=True)
+class InputsClause:
+    items: tuple[InputItem, ...]
+    excluded: tuple[InputItem, ...]
+    span: Span
+
+
+@dataclass(frozen=True)
+class FeatureClause:
+    name: str
+    expr: Expr
+    span: Span
+
+
+@dataclass(frozen=True)
+class RowWeightClause:
+    column: str
+    span: Span
+
+
+@dataclass(frozen=True)
+class ClassWeight:
+    label: float
+    weight: float
+    span: Span
+
+
+@dataclass(frozen=True)
+class ClassWeightClause:
+    weights: tuple[ClassWeight, ...]
+    span: Span
+
+
+@dataclass(frozen=True)
+class StandardizeClause:
+    span: Span
+
+
+@dataclass(frozen=True)
+class HoldoutClause:
+    fraction: float
+    seed: int | None
+    span: Span
+
+
+@dataclass(frozen=True)
+class ValidateClause:
+    path: str
+    span: Span
+
+
+@dataclass(frozen=True)
+class MissingClause:
+    policy: str
+    span: Span
+
+
+@dataclass(frozen=True)
+class GroupClause:
+    name: str
+    columns: tuple[str, ...]
+    span: Span
+
+
+@dataclass(frozen=True)
+class TuneStmt:
+    name: str
+    default: float
+    low: float
+    high: float
+    span: Span
+
+
+@dataclass(frozen=True)
+class LearnItem:
+    name: str
+    over_inputs: bool
+    span: Span
+
+
+@dataclass(frozen=True)
+class LearnStmt:
+    items: tuple[LearnItem, ...]
+    span: Span
+
+
+@dataclass(frozen=True)
+class ScoreStmt:
+    name: str
+    expr: Expr
+    span: Span
+
+
+@dataclass(frozen=True)
+class LossStmt:
+    name: str
+    param: str
+    expr: Expr
+    span: Span
+
+
+@dataclass(frozen=True)
+class GoalStmt:
+    expr: Expr
+    span: Span
+
+
+@dataclass(frozen=True)
+class KeepStmt:
+    left: Expr
+    op: Literal["<=", ">=", "=="]
+    right: Expr
+    span: Span
+
+
+Statement = Union[TableStmt, TargetClause, InputsClause, FeatureClause, RowWeightClause, ClassWeightClause,
+                  StandardizeClause, HoldoutClause, ValidateClause, MissingClause, GroupClause, TuneStmt,
+                  LearnStmt, ScoreStmt, LossStmt, GoalStmt, KeepStmt]
+
+
+@dataclass(frozen=True)
+class SpecTree:
+    statements: tuple[Statement, ...]

@@ -1,0 +1,274 @@
+"""Resolved, typed nodes: every name bound, every shape known, every span kept.
+
+Shapes: a node is a scalar, one value per row ("rows"), or a vector over a list of input names
+("vector"); `x` is the one rows-by-inputs matrix and only appears under a dot product.
+What a node depends on is tracked as `depends`: "const" (numbers and tunables), "data" (the table,
+so a constant to the optimizer), "params" (learned quantities).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Literal, Union
+
+from objc import syntax_tree as st
+from objc.source_text import Span
+
+ShapeKind = Literal["scalar", "rows", "vector", "matrix"]
+Depends = Literal["const", "data", "params"]
+
+
+@dataclass(frozen=True)
+class Shape:
+    kind: ShapeKind
+    # for vectors and the input matrix: the input names it runs over; None means "all inputs"
+    names: tuple[str, ...] | None = None
+
+    def describe(self) -> str:
+        if self.kind == "vector":
+            return "a vector over " + ("all inputs" if self.names is None else ", ".join(self.names))
+        return {"scalar": "a single number", "rows": "one value per row", "matrix": "the input matrix x"}[self.kind]
+
+
+SCALAR = Shape("scalar")
+ROWS = Shape("rows")
+
+
+# ---------------------------------------------------------------- data bindings
+
+@dataclass(frozen=True)
+class LabelMap:
+    """How raw target values map to +1 / -1 (empty: the target is used as it is)."""
+
+    pairs: tuple[tuple[str | float, float], ...]
+    span: Span
+
+
+@dataclass(frozen=True)
+class DerivedFeature:
+    """An input computed from columns: `feature name = expr` (expr holds only data and numbers)."""
+
+    name: str
+    expr: st.Expr
+    columns: tuple[str, ...]  # the table columns it reads
+    span: Span
+
+
+@dataclass(frozen=True)
+class TableBinding:
+    """Everything a spec says about its table; `objc.tables` reads data by it."""
+
+    name: str
+    path: str  # as written, relative to the spec file's folder
+    span: Span
+    target: str | None = None
+    target_span: Span | None = None
+    label_map: LabelMap | None = None
+    inputs: tuple[st.InputItem, ...] = ()
+    excluded: tuple[st.InputItem, ...] = ()
+    inputs_span: Span | None = None
+    features: tuple[DerivedFeature, ...] = ()
+    row_weight: str | None = None
+    row_weight_span: Span | None = None
+    class_weights: tuple[tuple[float, float], ...] = ()  # (label +1/-1, weight)
+    class_weights_span: Span | None = None
+    standardize: bool = False
+    holdout: float | None = None
+    holdout_seed: int = 0
+    holdout_span: Span | None = None
+    validation_path: str | None = None
+    validation_span: Span | None = None
+    missing: Literal["fail", "drop"] = "fail"
+    groups: tuple[tuple[str, tuple[str, ...]], ...] = ()
+
+    def explicit_inputs(self) -> tuple[str, ...] | None:
+        """Input names when every input is named outright (no pattern, no `all`), else None."""
+        if any(i.kind != "column" for i in self.inputs):
+            return None
+        excluded = {e.text for e in self.excluded}
+        return tuple(i.text for i in self.inputs if i.text not in excluded) + tuple(f.name for f in self.features)
+
+
+# ---------------------------------------------------------------- typed expressions
+# Every node carries: span (into the spec), shape, depends.
+
+@dataclass(frozen=True)
+class Const:
+    value: float
+    span: Span
+    shape: Shape = SCALAR
+    depends: Depends = "const"
+
+
+@dataclass(frozen=True)
+class TunableRef:
+    name: str
+    default: float
+    low: float
+    high: float
+    span: Span
+    shape: Shape = SCALAR
+    depends: Depends = "const"
+
+
+@dataclass(frozen=True)
+class DataRef:
+    """A table column (`kind` column or feature), the target `y`, or the input matrix `x`."""
+
+    name: str
+    kind: Literal["column", "feature", "target", "inputs"]
+    span: Span
+    shape: Shape = ROWS
+    depends: Depends = "data"
+
+
+@dataclass(frozen=True)
+class ParamRef:
+    """A learned parameter; `names` narrows a vector parameter to chosen inputs (w[a, b])."""
+
+    name: str
+    vector: bool
+    span: Span
+    shape: Shape = SCALAR
+    depends: Depends = "params"
+    entries: tuple[str, ...] | None = None  # the chosen inputs of a vector parameter; None: all
+
+
+@dataclass(frozen=True)
+class ScoreRef:
+    name: str
+    expr: "TExpr"
+    span: Span
+    shape: Shape = ROWS
+    depends: Depends = "params"
+
+
+@dataclass(frozen=True)
+class Apply:
+    """A catalog entry applied to arguments, with its options (huber's d, pinball's t, power's p)."""
+
+    entry: str
+    args: tuple["TExpr", ...]
+    options: tuple[tuple[str, float], ...]
+    span: Span
+    shape: Shape = SCALAR
+    depends: Depends = "const"
+
+    @property
+    def option_dict(self) -> dict[str, float]:
+        return dict(self.options)
+
+
+@dataclass(frozen=True)
+class CustomLoss:
+    """A loss the spec defines (`loss name(v) = body`), applied to `arg`; `body` has `arg` inlined."""
+
+    name: str
+    arg: "TExpr"
+    body: "TExpr"
+    param: str
+    definition_span: Span
+    span: Span
+    shape: Shape = SCALAR
+    depends: Depends = "const"
+
+
+@dataclass(frozen=True)
+class Add:
+    left: "TExpr"
+    right: "TExpr"
+    span: Span
+    shape: Shape = SCALAR
+    depends: Depends = "const"
+
+
+@dataclass(frozen=True)
+class Neg:
+    operand: "TExpr"
+    span: Span
+    shape: Shape = SCALAR
+    depends: Depends = "const"
+
+
+@dataclass(frozen=True)
+class Mul:
+    left: "TExpr"
+    right: "TExpr"
+    span: Span
+    shape: Shape = SCALAR
+    depends: Depends = "const"
+
+
+@dataclass(frozen=True)
+class Div:
+    left: "TExpr"
+    right: "TExpr"
+    span: Span
+    shape: Shape = SCALAR
+    depends: Depends = "const"
+
+
+@dataclass(frozen=True)
+class Dot:
+    """w . x: a parameter vector against the input matrix (one value per row) or another vector."""
+
+    left: "TExpr"
+    right: "TExpr"
+    span: Span
+    shape: Shape = ROWS
+    depends: Depends = "params"
+
+
+@dataclass(frozen=True)
+class Aggregate:
+    """`mean` or `sum` over rows (weighted by row x class weights) or over a vector's entries."""
+
+    kind: Literal["mean", "sum"]
+    operand: "TExpr"
+    over: Literal["rows", "entries"]
+    span: Span
+    shape: Shape = SCALAR
+    depends: Depends = "const"
+
+
+TExpr = Union[Const, TunableRef, DataRef, ParamRef, ScoreRef, Apply, CustomLoss, Add, Neg, Mul, Div, Dot, Aggregate]
+
+
+# ---------------------------------------------------------------- the resolved spec
+
+@dataclass(frozen=True)
+class Tunable:
+    name: str
+    default: float
+    low: float
+    high: float
+    span: Span
+
+
+@dataclass(frozen=True)
+class Parameter:
+    name: str
+    vector: bool  # True: one weight per input
+    span: Span
+
+
+@dataclass(frozen=True)
+class Constraint:
+    left: TExpr
+    op: Literal["<=", ">=", "=="]
+    right: TExpr
+    span: Span
+
+
+@dataclass(frozen=True)
+class ResolvedSpec:
+    source_name: str
+    text: str
+    table: TableBinding | None
+    tunables: tuple[Tunable, ...]
+    parameters: tuple[Parameter, ...]
+    score: ScoreRef | None
+    goal: TExpr
+    goal_span: Span
+    constraints: tuple[Constraint, ...]
+    custom_losses: tuple[str, ...]
