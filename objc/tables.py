@@ -1,0 +1,885 @@
+"""Reading tables and binding their columns to a spec's inputs, target and weights: all data checks.
+
+This is the only module that opens data files. `read_table` turns a file into named columns;
+`bind_table` turns those columns, by a spec's `TableBinding`, into the arrays a solver needs
+(`BoundData`); `split_holdout` carves a seeded held-out part off them.
+
+File formats, chosen by the file's suffix:
+
+| suffix | how it is read |
+| --- | --- |
+| `.csv` (also `.csv.gz`, `.csv.bz2`, `.csv.xz`, `.csv.zip`), `.tsv` | `pandas.read_csv`; the first line holds the column names |
+| `.npy` | one 2-D numeric array; its columns are named `c0`, `c1`, ... |
+| `.npz` | either exactly two arrays, `data` (2-D) and `columns` (1-D strings, one name per column of `data`), or else one 1-D array per column, named by its key, all of one length, in archive order |
+| `.parquet`, `.pq` | `pandas.read_parquet` (pyarrow) |
+
+Nothing pickled is ever loaded, and column names are only ever compared as strings, so a name that
+looks like code stays a name. Row numbers in messages count data records from 1; a CSV header line
+is not counted.
+
+Every problem is a `SpecError` whose diagnostics point at the spec clause involved (the `table`
+line for file problems, the `inputs` item for an input column, the `target` clause, ...), name the
+file and column, and list the first offending rows (at most five). Checks run in stages (names,
+types, missing values, labels and weights, derived features, standardization); every problem of a
+stage is reported together.
+
+| code | problem |
+| --- | --- |
+| T100 | the data file does not exist |
+| T101 | the file's suffix names no format objc reads |
+| T102 | the file exists but cannot be read as its format says (bad CSV, pickled or non-2-D array, ...) |
+| T103 | the table has no rows or no columns |
+| T104 | two columns share a name |
+| T110 | a column named in the spec (or the model's input schema) is not in the table |
+| T111 | an input pattern, or `all`, selects no column; or every input was excluded |
+| T112 | an input, feature or row-weight column is not numeric |
+| T113 | the target or the row-weight column is also named as an input |
+| T114 | a derived feature's name is taken (a table column, an input or another feature) |
+| T120 | missing (NaN) or infinite values while `missing fail` is in force |
+| T121 | no row is left once rows with missing values are dropped |
+| T130 | a target value the label map does not list |
+| T131 | a margin target without a label map holds values other than -1 and +1 |
+| T132 | a margin target has only one class |
+| T133 | a residual (real) target is not numeric |
+| T134 | the label map itself is wrong (a label other than +1/-1, one value mapped twice, a map on a real target) |
+| T140 | negative row weights |
+| T141 | every row weight is zero |
+| T142 | class weights that cannot apply (real target, label other than +1/-1, weight negative or not finite) |
+| T150 | a constant input column under `standardize` |
+| T151 | saved standardization stats lack an input, or hold an unusable scale |
+| T160 | a derived feature uses something a row-by-row formula cannot (unknown function, a norm, a non-literal exponent or setting, `mean`/`sum`, a selection, a dot product) |
+| T161 | a derived feature is NaN or infinite on some rows (log of 0, division by 0, ...) |
+| T170 | a holdout fraction outside (0, 1), or one that leaves a part empty |
+| T171 | the training part of a holdout split holds only one class |
+| T190 | (warning) `all` passed over non-numeric columns |
+| T191 | (warning) rows dropped under `missing drop` |
+"""
+
+from __future__ import annotations
+
+import difflib
+import fnmatch
+import zipfile
+from dataclasses import dataclass, replace
+from pathlib import Path
+from typing import Literal, Mapping, Sequence
+
+import numpy as np
+import pandas as pd
+
+from objc import syntax_tree as st
+from objc.catalog import CATALOG
+from objc.diagnostics import Diagnostic, SpecError
+from objc.source_text import NO_SPAN, Span
+from objc.typed_tree import DerivedFeature, LabelMap, TableBinding
+
+Task = Literal["margin", "residual"]
+
+MAX_ROWS_LISTED = 5
+_ROW_NOTE = "rows count data records from 1 (a CSV header line is not counted)"
+_CSV_SUFFIXES = (".csv", ".csv.gz", ".csv.bz2", ".csv.xz", ".csv.zip")
+
+
+# ---------------------------------------------------------------- results
+
+@dataclass(frozen=True)
+class Standardization:
+    """Per-input centre and scale: x' = (x - mean) / scale, matched to inputs by name."""
+
+    names: tuple[str, ...]
+    means: tuple[float, ...]
+    scales: tuple[float, ...]
+
+    def as_dict(self) -> dict[str, list]:
+        """Plain lists, ready for a JSON model file."""
+        return {"names": list(self.names), "means": list(self.means), "scales": list(self.scales)}
+
+    @staticmethod
+    def from_dict(d: Mapping[str, Sequence]) -> "Standardization":
+        return Standardization(tuple(str(n) for n in d["names"]), tuple(float(m) for m in d["means"]),
+                               tuple(float(s) for s in d["scales"]))
+
+
+@dataclass(frozen=True, eq=False)
+class BoundData:
+    """A table bound to a spec: what a solver reads. Arrays are read-only."""
+
+    X: np.ndarray  # n x p float64, C-contiguous, already standardized when `standardization` is set
+    y: np.ndarray  # (n,) float64: +1/-1 for margin tasks, real for residual ones (NaN when no target)
+    weights: np.ndarray  # (n,) float64: row weight times class weight, ones when neither is given
+    input_names: tuple[str, ...]  # the columns of X, plain inputs first, then derived features
+    target: str | None
+    label_map: LabelMap | None  # the map applied to the target (None: the target held -1/+1 itself)
+    standardization: Standardization | None
+    source: Path
+    rows: np.ndarray  # (n,) int64: the original 1-based data row of each row kept
+    task: Task
+    dropped: int = 0  # rows removed under `missing drop`
+    file_label: str = ""  # the file as the user wrote it, for messages
+    standardization_fitted: bool = False  # stats computed from these rows (not applied from a model)
+    warnings: tuple[Diagnostic, ...] = ()
+
+    @property
+    def n_rows(self) -> int:
+        return int(self.X.shape[0])
+
+    @property
+    def n_inputs(self) -> int:
+        return int(self.X.shape[1])
+
+
+# ---------------------------------------------------------------- message helpers
+
+def _q(name: object) -> str:
+    """A column or file name quoted on one line, whatever characters it holds."""
+    return repr(str(name))
+
+
+def _value(v: object) -> str:
+    if isinstance(v, (float, np.floating)):
+        return f"{float(v):g}"
+    if isinstance(v, (int, np.integer, bool, np.bool_)):
+        return str(v)
+    text = repr(str(v))  # a cell of text: shown whole unless it is long
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
+def _spec_literal(v: object) -> str:
+    """A table value written as the spec would write it in a label map."""
+    if isinstance(v, (bool, np.bool_)):
+        return "true" if v else "false"
+    if isinstance(v, (int, float, np.integer, np.floating)):
+        return f"{float(v):g}"
+    text = str(v)
+    return text if text.isidentifier() else '"' + text.replace("\\", "\\\\").replace('"', '\\"') + '"'
+
+
+def _rows_text(rows: np.ndarray) -> str:
+    """'row 3', 'rows 3, 7, 9' or 'rows 3, 7, 9, 12, 15, ... (9 rows in all)'."""
+    rows = [int(r) for r in np.asarray(rows).ravel()]
+    if len(rows) == 1:
+        return f"row {rows[0]}"
+    shown = ", ".join(str(r) for r in rows[:MAX_ROWS_LISTED])
+    if len(rows) <= MAX_ROWS_LISTED:
+        return f"rows {shown}"
+    return f"rows {shown}, ... ({len(rows)} rows in all)"
+
+
+def _did_you_mean(name: str, candidates: Sequence[str]) -> str:
+    close = difflib.get_close_matches(name, list(candidates), n=3, cutoff=0.6)
+    if close:
+        return "did you mean " + " or ".join(_q(c) for c in close) + "?"
+    listed = ", ".join(_q(c) for c in list(candidates)[:10])
+    more = ", ..." if len(candidates) > 10 else ""
+    return f"the columns are {listed}{more}" if listed else "the table has no columns"
+
+
+@dataclass(frozen=True)
+class _Where:
+    """Who is reporting: the file as written and the spec's name."""
+
+    file: str
+    source_name: str
+
+    def diag(self, code: str, message: str, span: Span | None, hint: str = "", rows: bool = False,
+             severity: Literal["error", "warning"] = "error") -> Diagnostic:
+        notes = (_ROW_NOTE,) if rows else ()
+        return Diagnostic(code, message, span or NO_SPAN, severity, hint, notes, self.source_name)
+
+    def error(self, code: str, message: str, span: Span | None, hint: str = "", rows: bool = False) -> SpecError:
+        return SpecError((self.diag(code, message, span, hint, rows),))
+
+
+def _raise_all(diags: list[Diagnostic]) -> None:
+    if diags:
+        raise SpecError(tuple(diags))
+
+
+# ---------------------------------------------------------------- reading
+
+def read_table(path: Path, *, span: Span, source_name: str) -> dict[str, np.ndarray]:
+    """Every column of a data file by name, in file order; text columns stay object arrays."""
+    return _read(Path(path), str(path), span, source_name, "check the path")
+
+
+def _format_of(path: Path) -> str | None:
+    name = path.name.lower()
+    if name.endswith(_CSV_SUFFIXES):
+        return "csv"
+    if name.endswith(".tsv"):
+        return "tsv"
+    if name.endswith(".npy"):
+        return "npy"
+    if name.endswith(".npz"):
+        return "npz"
+    if name.endswith((".parquet", ".pq")):
+        return "parquet"
+    return None
+
+
+def _read(path: Path, shown: str, span: Span, source_name: str, not_found_hint: str) -> dict[str, np.ndarray]:
+    where = _Where(shown, source_name)
+    if not path.exists():
+        raise where.error("T100", f"data file {_q(shown)} not found", span, not_found_hint)
+    kind = _format_of(path)
+    if kind is None:
+        raise where.error("T101", f"cannot tell the format of {_q(shown)} from its name", span,
+                          "use a .csv, .tsv, .npy, .npz, .parquet or .pq file")
+    if path.is_dir():
+        raise where.error("T102", f"{_q(shown)} is a folder, not a data file", span)
+    try:
+        if kind in ("csv", "tsv"):
+            columns = _read_csv(path, "\t" if kind == "tsv" else ",", where, span)
+        elif kind == "npy":
+            columns = _read_npy(path, where, span)
+        elif kind == "npz":
+            columns = _read_npz(path, where, span)
+        else:
+            columns = _frame_columns(pd.read_parquet(path), where, span)
+    except SpecError:
+        raise
+    except pd.errors.EmptyDataError:
+        raise where.error("T103", f"data file {_q(shown)} is empty", span) from None
+    except (ValueError, OSError, UnicodeDecodeError, zipfile.BadZipFile, pd.errors.ParserError, EOFError) as exc:
+        reason = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        if "pickle" in reason.lower():
+            reason = "it is not a plain array file (objc never loads pickled Python objects)"
+        raise where.error("T102", f"cannot read {_q(shown)} as {kind}: {reason}", span) from None
+    if not columns or min(len(a) for a in columns.values()) == 0:
+        raise where.error("T103", f"data file {_q(shown)} has no data rows" if columns
+                          else f"data file {_q(shown)} has no columns", span)
+    return columns
+
+
+def _read_csv(path: Path, sep: str, where: _Where, span: Span) -> dict[str, np.ndarray]:
+    # pandas renames a repeated header name ("a", "a.1"); read the header line raw to catch that
+    header = pd.read_csv(path, sep=sep, header=None, nrows=1, dtype=str, keep_default_na=False)
+    raw_names = [str(v) for v in header.iloc[0].tolist()] if len(header) else []
+    _check_unique(raw_names, where, span)
+    return _frame_columns(pd.read_csv(path, sep=sep), where, span)
+
+
+def _check_unique(names: Sequence[str], where: _Where, span: Span) -> None:
+    seen: set[str] = set()
+    for n in names:
+        if n in seen:
+            raise where.error("T104", f"column name {_q(n)} appears twice in {_q(where.file)}", span,
+                              "give every column its own name")
+        seen.add(n)
+
+
+def _frame_columns(frame: pd.DataFrame, where: _Where, span: Span) -> dict[str, np.ndarray]:
+    names = [str(c) for c in frame.columns]
+    _check_unique(names, where, span)
+    out: dict[str, np.ndarray] = {}
+    for name, (_, series) in zip(names, frame.items()):
+        dtype = series.dtype
+        if isinstance(dtype, np.dtype):
+            out[name] = series.to_numpy()
+        elif pd.api.types.is_bool_dtype(dtype) and not series.isna().any():
+            out[name] = series.to_numpy(dtype=bool)
+        elif pd.api.types.is_numeric_dtype(dtype):
+            # nullable integers and floats: missing cells become NaN
+            out[name] = series.to_numpy(dtype=np.float64, na_value=np.nan)
+        else:
+            out[name] = series.to_numpy(dtype=object)
+    return out
+
+
+def _plain_array(a: np.ndarray) -> np.ndarray:
+    # byte strings read as text so that labels compare with the spec's strings
+    return a.astype(str) if a.dtype.kind == "S" else a
+
+
+def _read_npy(path: Path, where: _Where, span: Span) -> dict[str, np.ndarray]:
+    arr = np.load(path, allow_pickle=False)
+    if not isinstance(arr, np.ndarray) or arr.ndim != 2:
+        raise where.error("T102", f"{_q(where.file)} holds a {getattr(arr, 'ndim', '?')}-D array; "
+                          "a .npy table must be 2-D (rows x columns)", span)
+    if arr.dtype.kind not in "biuf":
+        raise where.error("T102", f"{_q(where.file)} holds {arr.dtype} values; a .npy table must be numeric", span,
+                          "use .npz, CSV or Parquet for tables with text columns")
+    return {f"c{j}": np.ascontiguousarray(arr[:, j]) for j in range(arr.shape[1])}
+
+
+def _read_npz(path: Path, where: _Where, span: Span) -> dict[str, np.ndarray]:
+    with np.load(path, allow_pickle=False) as archive:
+        keys = list(archive.files)
+        if set(keys) == {"data", "columns"}:
+            data, names = archive["data"], archive["columns"]
+            if data.ndim != 2 or names.ndim != 1 or len(names) != data.shape[1]:
+                raise where.error("T102", f"{_q(where.file)}: `data` must be 2-D and `columns` must hold one "
+                                  f"name per column (got shapes {data.shape} and {names.shape})", span)
+            names = [str(n) for n in _plain_array(names)]
+            _check_unique(names, where, span)
+            return {n: _plain_array(np.ascontiguousarray(data[:, j])) for j, n in enumerate(names)}
+        out: dict[str, np.ndarray] = {}
+        for k in keys:
+            a = archive[k]
+            if a.ndim != 1:
+                raise where.error("T102", f"{_q(where.file)}: array {_q(k)} is {a.ndim}-D; store one 1-D array per "
+                                  "column, or a 2-D `data` with its `columns` names", span)
+            out[k] = _plain_array(a)
+        lengths = {len(a) for a in out.values()}
+        if len(lengths) > 1:
+            raise where.error("T102", f"{_q(where.file)}: its column arrays differ in length "
+                              f"({', '.join(str(x) for x in sorted(lengths))})", span)
+        return out
+
+
+# ---------------------------------------------------------------- column types
+
+def _is_numeric(a: np.ndarray) -> bool:
+    return a.dtype.kind in "biuf"
+
+
+def _as_float(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The column as float64, and the 0-based positions of cells that are text, not numbers.
+
+    Missing cells become NaN and are not counted as text; a text column of numerals converts."""
+    if _is_numeric(a):
+        return a.astype(np.float64), np.empty(0, dtype=np.int64)
+    if a.dtype.kind not in "OUS":  # dates, complex numbers: nothing a linear model can read
+        return np.full(len(a), np.nan), np.arange(len(a))
+    obj = pd.Series(a.astype(object))
+    missing = obj.isna().to_numpy()
+    converted = pd.to_numeric(obj, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
+    return converted, np.flatnonzero(np.isnan(converted) & ~missing)
+
+
+def _missing_mask(a: np.ndarray) -> np.ndarray:
+    if a.dtype.kind in "f":
+        return ~np.isfinite(a)
+    if a.dtype.kind in "biu":
+        return np.zeros(len(a), dtype=bool)
+    return pd.isna(pd.Series(a.astype(object))).to_numpy()
+
+
+# ---------------------------------------------------------------- derived features
+
+def _literal(e: st.Expr) -> float | None:
+    if isinstance(e, st.Number):
+        return float(e.value)
+    if isinstance(e, st.Negate):
+        inner = _literal(e.operand)
+        return None if inner is None else -inner
+    return None
+
+
+def _expr_names(e: st.Expr) -> list[st.Name]:
+    if isinstance(e, st.Name):
+        return [e]
+    children: tuple = ()
+    if isinstance(e, st.Call):
+        children = e.args
+    elif isinstance(e, st.Negate):
+        children = (e.operand,)
+    elif isinstance(e, (st.Binary,)):
+        children = (e.left, e.right)
+    elif isinstance(e, st.Power):
+        children = (e.base, e.exponent)
+    elif isinstance(e, st.Aggregate):
+        children = (e.operand,)
+    elif isinstance(e, st.Select):
+        children = (e.base,)
+    return [n for c in children for n in _expr_names(c)]
+
+
+def _check_expr(e: st.Expr, feature: DerivedFeature, where: _Where) -> list[Diagnostic]:
+    """Static checks of a feature formula: only row-by-row arithmetic and catalog atoms."""
+    def bad(msg: str, span: Span, hint: str = "") -> list[Diagnostic]:
+        return [where.diag("T160", f"feature {_q(feature.name)}: {msg}", span, hint)]
+
+    if isinstance(e, (st.Number, st.Name)):
+        return []
+    if isinstance(e, st.Negate):
+        return _check_expr(e.operand, feature, where)
+    if isinstance(e, st.Binary):
+        if e.op == ".":
+            return bad("a dot product is not a row-by-row formula", e.span)
+        return _check_expr(e.left, feature, where) + _check_expr(e.right, feature, where)
+    if isinstance(e, st.Power):
+        p = _literal(e.exponent)
+        if p is None:
+            return bad("the exponent after ^ must be a number", e.exponent.span)
+        return _check_options("power", (p,), feature, e.span, where) + _check_expr(e.base, feature, where)
+    if isinstance(e, st.Aggregate):
+        return bad(f"`{e.kind}` adds over rows; a feature is computed row by row", e.span)
+    if isinstance(e, st.Select):
+        return bad("selecting entries is not a row-by-row formula", e.span)
+    if isinstance(e, st.Call):
+        entry = CATALOG.get(e.func)
+        if entry is None:
+            row_fns = sorted(n for n, en in CATALOG.items() if en.kind != "norm")
+            close = difflib.get_close_matches(e.func, row_fns, n=2)
+            hint = ("did you mean " + " or ".join(close) + "?") if close else "known functions: " + ", ".join(row_fns)
+            return bad(f"unknown function {_q(e.func)}", e.func_span, hint)
+        if entry.kind == "norm":
+            return bad(f"{e.func} is a norm of a parameter vector, not a function of one row", e.func_span)
+        if entry.arity == 0:
+            if len(e.args) < 2:
+                return bad(f"{e.func} takes two or more arguments", e.span)
+            return [d for a in e.args for d in _check_expr(a, feature, where)]
+        if len(e.args) < entry.arity:
+            return bad(f"{e.func} takes {entry.arity} argument(s)", e.span)
+        settings = []
+        for a in e.args[entry.arity:]:
+            v = _literal(a)
+            if v is None:
+                return bad(f"the settings of {e.func} after its argument must be numbers", a.span)
+            settings.append(v)
+        return (_check_options(e.func, tuple(settings), feature, e.span, where)
+                + [d for a in e.args[:entry.arity] for d in _check_expr(a, feature, where)])
+    return bad("this expression cannot be computed from a row", getattr(e, "span", feature.span))
+
+
+def _check_options(func: str, given: tuple[float, ...], feature: DerivedFeature, span: Span,
+                   where: _Where) -> list[Diagnostic]:
+    try:
+        CATALOG[func].resolve_options(given)
+    except ValueError as exc:
+        return [where.diag("T160", f"feature {_q(feature.name)}: {exc}", span)]
+    return []
+
+
+def _eval_expr(e: st.Expr, values: Mapping[str, np.ndarray], n: int) -> np.ndarray:
+    """The formula on every row; each atom's math comes from its catalog entry."""
+    with np.errstate(all="ignore"):
+        if isinstance(e, st.Number):
+            return np.full(n, float(e.value))
+        if isinstance(e, st.Name):
+            return values[e.id]
+        if isinstance(e, st.Negate):
+            return -_eval_expr(e.operand, values, n)
+        if isinstance(e, st.Binary):
+            a, b = _eval_expr(e.left, values, n), _eval_expr(e.right, values, n)
+            return {"+": np.add, "-": np.subtract, "*": np.multiply, "/": np.divide}[e.op](a, b)
+        if isinstance(e, st.Power):
+            entry = CATALOG["power"]
+            opts = entry.resolve_options((_literal(e.exponent),))
+            return np.asarray(entry.value(_eval_expr(e.base, values, n), **opts), dtype=np.float64)
+        if isinstance(e, st.Call):
+            entry = CATALOG[e.func]
+            if entry.arity == 0:
+                return np.asarray(entry.value(*[_eval_expr(a, values, n) for a in e.args]), dtype=np.float64)
+            args = [_eval_expr(a, values, n) for a in e.args[:entry.arity]]
+            opts = entry.resolve_options(tuple(_literal(a) for a in e.args[entry.arity:]))
+            return np.asarray(entry.value(*args, **opts), dtype=np.float64)
+    raise AssertionError(f"unchecked feature expression {e!r}")  # _check_expr rejects everything else
+
+
+# ---------------------------------------------------------------- binding
+
+@dataclass(frozen=True)
+class _Pick:
+    """One column of X: a table column or a derived feature, and the clause that chose it."""
+
+    name: str
+    span: Span
+    feature: DerivedFeature | None = None
+
+
+def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name: str = "",
+               data_path: Path | None = None, standardization: Standardization | None = None,
+               input_names: tuple[str, ...] | None = None, file_span: Span | None = None,
+               need_target: bool = True, both_classes: bool = True) -> BoundData:
+    """Read the binding's table and return checked solver arrays.
+
+    `data_path` replaces the spec's path (taken as given, not relative to `spec_dir`); `file_span`
+    is the clause that named it (default: the `table` line). `standardization` applies saved stats
+    instead of computing them; `input_names` selects exactly those inputs in that order (a saved
+    model's schema). `need_target=False` ignores the target (y is NaN; for predicting on new rows);
+    `both_classes=False` accepts a margin target holding one class (evaluating on a slice).
+    """
+    if task not in ("margin", "residual"):
+        raise ValueError(f"task must be 'margin' or 'residual', not {task!r}")
+    if data_path is not None:
+        path, shown = Path(data_path), str(data_path)
+    else:
+        path, shown = Path(spec_dir) / binding.path, binding.path
+    where = _Where(shown, source_name)
+    table = _read(path, shown, file_span or binding.span, source_name,
+                  "check the path given with the command" if data_path is not None and file_span is None
+                  else "paths in a spec are relative to the spec file's folder")
+    n_all = len(next(iter(table.values())))
+    columns = list(table)
+
+    target_span = binding.target_span or binding.span
+    weight_span = binding.row_weight_span or binding.span
+    inputs_span = binding.inputs_span or binding.span
+
+    # ---- stage 1: every name resolves
+    diags: list[Diagnostic] = []
+    target = binding.target if need_target else None
+    if target is not None and target not in table:
+        diags.append(where.diag("T110", f"target column {_q(target)} is not in {_q(shown)}", target_span,
+                                _did_you_mean(target, columns)))
+        target = None
+    if binding.row_weight is not None and binding.row_weight not in table:
+        diags.append(where.diag("T110", f"row-weight column {_q(binding.row_weight)} is not in {_q(shown)}",
+                                weight_span, _did_you_mean(binding.row_weight, columns)))
+    feature_names = [f.name for f in binding.features]
+    for i, f in enumerate(binding.features):
+        if f.name in table:
+            diags.append(where.diag("T114", f"feature name {_q(f.name)} is already a column of {_q(shown)}",
+                                    f.span, "give the feature a name of its own"))
+        elif f.name in feature_names[:i]:
+            diags.append(where.diag("T114", f"feature {_q(f.name)} is defined twice", f.span))
+        diags.extend(_check_expr(f.expr, f, where))
+        for nm in _expr_names(f.expr):
+            if nm.id not in table and nm.id not in feature_names[:i]:
+                diags.append(where.diag("T110", f"feature {_q(f.name)} reads column {_q(nm.id)}, which is not "
+                                        f"in {_q(shown)}", nm.span, _did_you_mean(nm.id, columns + feature_names[:i])))
+
+    picks: list[_Pick] = []
+    skipped: list[str] = []
+    if input_names is not None:
+        by_feature = {f.name: f for f in binding.features}
+        for name in input_names:
+            if name in by_feature:
+                picks.append(_Pick(name, by_feature[name].span, by_feature[name]))
+            elif name in table:
+                picks.append(_Pick(name, inputs_span))
+            else:
+                diags.append(where.diag("T110", f"input {_q(name)} of the model's schema is not in {_q(shown)}",
+                                        inputs_span, _did_you_mean(name, columns + list(by_feature))))
+    else:
+        picks, skipped = _select(binding, table, target, where, diags)
+        for f in binding.features:
+            picks.append(_Pick(f.name, f.span, f))
+    _raise_all(diags)
+
+    # ---- stage 2: types
+    floats: dict[str, np.ndarray] = {}
+    used: dict[str, tuple[str, Span]] = {}  # every column the spec reads: how to call it, where it was named
+
+    def numeric(name: str, what: str, span: Span, code: str = "T112") -> None:
+        if name in floats:
+            return
+        used[name] = (what, span)
+        values, text_rows = _as_float(table[name])
+        if len(text_rows):
+            examples = ", ".join(_value(table[name][i]) for i in text_rows[:3])
+            diags.append(where.diag(code, f"{what} {_q(name)} in {_q(shown)} is not numeric at "
+                                    f"{_rows_text(text_rows + 1)} (values {examples})", span, rows=True))
+        floats[name] = values
+
+    for p in picks:
+        if p.feature is None:
+            numeric(p.name, "input column", p.span)
+    for f in binding.features:
+        for nm in _expr_names(f.expr):
+            if nm.id in table:
+                numeric(nm.id, f"column read by feature {_q(f.name)},", nm.span)
+    if binding.row_weight is not None:
+        numeric(binding.row_weight, "row-weight column", weight_span)
+    if target is not None:
+        if task == "residual":
+            numeric(target, "real target", target_span, code="T133")
+        else:
+            used.setdefault(target, ("target column", target_span))
+    _raise_all(diags)
+
+    # ---- stage 3: missing and infinite values
+    drop = np.zeros(n_all, dtype=bool)
+    for name, (what, span) in used.items():
+        bad = _missing_mask(floats[name] if name in floats else table[name])
+        if not bad.any():
+            continue
+        if binding.missing == "drop":
+            drop |= bad
+        else:
+            diags.append(where.diag("T120", f"{what.rstrip(',')} {_q(name)} in {_q(shown)} has missing or infinite "
+                                    f"values at {_rows_text(np.flatnonzero(bad) + 1)}", span,
+                                    "fix the data, or write `missing drop` in the table block to skip those rows",
+                                    rows=True))
+    _raise_all(diags)
+    keep = np.flatnonzero(~drop)
+    warnings: list[Diagnostic] = []
+    if drop.any():
+        if not len(keep):
+            raise where.error("T121", f"every row of {_q(shown)} has a missing value in a column the spec uses",
+                              binding.span)
+        warnings.append(where.diag("T191", f"dropped {int(drop.sum())} of {n_all} rows of {_q(shown)} with "
+                                   f"missing values ({_rows_text(np.flatnonzero(drop) + 1)})", binding.span,
+                                   rows=True, severity="warning"))
+    if skipped:
+        warnings.append(where.diag("T190", "`all` passed over non-numeric column(s) "
+                                   + ", ".join(_q(s) for s in skipped), inputs_span, severity="warning"))
+    rows = keep.astype(np.int64) + 1
+    n = len(keep)
+
+    # ---- stage 4: target and weights
+    if target is None:
+        y = np.full(n, np.nan)
+    elif task == "residual":
+        if binding.label_map is not None and binding.label_map.pairs:
+            diags.append(where.diag("T134", f"target {_q(target)} is real (residual losses); a label map does "
+                                    "not apply", binding.label_map.span, "remove the `: value -> label` part"))
+        y = floats[target][keep]
+    else:
+        y = _margin_target(table[target][keep], rows, target, binding, where, diags, both_classes)
+    weights = np.ones(n)
+    if binding.row_weight is not None:
+        rw = floats[binding.row_weight][keep]
+        negative = np.flatnonzero(rw < 0)
+        if len(negative):
+            diags.append(where.diag("T140", f"row-weight column {_q(binding.row_weight)} in {_q(shown)} is "
+                                    f"negative at {_rows_text(rows[negative])}", weight_span,
+                                    "row weights must be zero or more", rows=True))
+        elif not (rw > 0).any():
+            diags.append(where.diag("T141", f"every row weight in {_q(binding.row_weight)} of {_q(shown)} is zero",
+                                    weight_span))
+        weights = weights * rw
+    if binding.class_weights:
+        cw_span = binding.class_weights_span or binding.span
+        if task == "residual":
+            diags.append(where.diag("T142", "class weights need a +1/-1 target; this target is real", cw_span))
+        else:
+            for label, w in binding.class_weights:
+                if label not in (1.0, -1.0):
+                    diags.append(where.diag("T142", f"class weight given for label {label:g}; labels are +1 and -1",
+                                            cw_span))
+                elif not (np.isfinite(w) and w >= 0):
+                    diags.append(where.diag("T142", f"class weight {w:g} for label {label:+g} must be a finite "
+                                            "number, zero or more", cw_span))
+                elif target is not None:
+                    weights = np.where(y == label, weights * w, weights)
+    _raise_all(diags)
+
+    # ---- stage 5: derived features, on the kept rows
+    values: dict[str, np.ndarray] = {name: v[keep] for name, v in floats.items()}
+    for f in binding.features:
+        v = np.broadcast_to(_eval_expr(f.expr, values, n), (n,)).astype(np.float64)
+        bad = np.flatnonzero(~np.isfinite(v))
+        if len(bad):
+            diags.append(where.diag("T161", f"feature {_q(f.name)} is NaN or infinite at {_rows_text(rows[bad])} "
+                                    f"of {_q(shown)}", f.span,
+                                    "change the formula so it is defined on every row (log1p instead of log, ...)",
+                                    rows=True))
+        values[f.name] = v
+    _raise_all(diags)
+
+    names = tuple(p.name for p in picks)
+    X = np.empty((n, len(names)), dtype=np.float64)
+    for j, name in enumerate(names):
+        X[:, j] = values[name]
+
+    # ---- stage 6: standardization
+    fitted = False
+    if standardization is not None:
+        means, scales = _saved_stats(standardization, names, where, inputs_span)
+        X = (X - means) / scales
+    elif binding.standardize:
+        standardization = _fit_stats(X, names, [p.span for p in picks], where)
+        X = (X - np.asarray(standardization.means)) / np.asarray(standardization.scales)
+        fitted = True
+
+    return BoundData(X=_frozen(np.ascontiguousarray(X, dtype=np.float64)), y=_frozen(np.asarray(y, np.float64)),
+                     weights=_frozen(np.asarray(weights, np.float64)), input_names=names, target=target,
+                     label_map=binding.label_map if (target is not None and task == "margin" and binding.label_map
+                                                     and binding.label_map.pairs) else None,
+                     standardization=standardization, source=path, rows=_frozen(rows), task=task,
+                     dropped=n_all - n, file_label=shown, standardization_fitted=fitted, warnings=tuple(warnings))
+
+
+def _select(binding: TableBinding, table: Mapping[str, np.ndarray], target: str | None, where: _Where,
+            diags: list[Diagnostic]) -> tuple[list[_Pick], list[str]]:
+    """The plain input columns by the `inputs` clause: names, patterns, `all`, minus `except`."""
+    columns = list(table)
+    reserved = {c for c in (target, binding.row_weight) if c is not None}
+    excluded = set()
+    for e in binding.excluded:
+        if e.text not in table:
+            diags.append(where.diag("T110", f"excluded column {_q(e.text)} is not in {_q(where.file)}", e.span,
+                                    _did_you_mean(e.text, columns)))
+        excluded.add(e.text)
+    picks: dict[str, _Pick] = {}
+    skipped: list[str] = []
+    for item in binding.inputs:
+        if item.kind == "column":
+            if item.text not in table:
+                diags.append(where.diag("T110", f"input column {_q(item.text)} is not in {_q(where.file)}", item.span,
+                                        _did_you_mean(item.text, columns)))
+            elif item.text in reserved:
+                role = "target" if item.text == target else "row-weight column"
+                diags.append(where.diag("T113", f"{_q(item.text)} is the {role}; it cannot also be an input",
+                                        item.span, f"remove it from the inputs"))
+            else:
+                picks.setdefault(item.text, _Pick(item.text, item.span))
+        elif item.kind == "pattern":
+            matched = [c for c in columns if fnmatch.fnmatchcase(c, item.text) and c not in reserved]
+            if not matched:
+                diags.append(where.diag("T111", f"pattern {_q(item.text)} matches no column of {_q(where.file)}",
+                                        item.span, _did_you_mean(item.text, columns)))
+            for c in matched:
+                picks.setdefault(c, _Pick(c, item.span))
+        else:
+            found = False
+            for c in columns:
+                if c in reserved or c in excluded:
+                    continue
+                if _is_numeric(table[c]):
+                    picks.setdefault(c, _Pick(c, item.span))
+                    found = True
+                else:
+                    skipped.append(c)
+            if not found:
+                diags.append(where.diag("T111", f"`all` finds no numeric column in {_q(where.file)} besides the "
+                                        "target and row weights", item.span))
+    chosen = [p for name, p in picks.items() if name not in excluded]
+    if binding.inputs and picks and not chosen:
+        diags.append(where.diag("T111", "every selected input is excluded", binding.inputs_span or binding.span))
+    return chosen, skipped
+
+
+def _margin_target(raw: np.ndarray, rows: np.ndarray, target: str, binding: TableBinding, where: _Where,
+                   diags: list[Diagnostic], both_classes: bool) -> np.ndarray:
+    """+1/-1 per row: through the label map (text to text, numbers to numbers), or as written."""
+    span = binding.target_span or binding.span
+    y = np.full(len(raw), np.nan)
+    lm = binding.label_map
+    if lm is not None and lm.pairs:
+        seen: dict[object, float] = {}
+        wrong = []
+        for value, label in lm.pairs:
+            if label not in (1.0, -1.0):
+                wrong.append(where.diag("T134", f"label map sends {_value(value)} to {label:g}; labels are +1 and -1",
+                                        lm.span))
+            elif seen.get(value, label) != label:
+                wrong.append(where.diag("T134", f"label map sends {_value(value)} to both +1 and -1", lm.span))
+            seen[value] = label
+        if wrong:
+            diags.extend(wrong)
+            return y
+        for value, label in lm.pairs:
+            y[_matches(raw, value)] = label
+        unmatched = np.flatnonzero(np.isnan(y))
+        if len(unmatched):
+            firsts = list(dict.fromkeys(raw[unmatched].tolist()))
+            listed = ", ".join(_value(v) for v in firsts[:5]) + (", ..." if len(firsts) > 5 else "")
+            known = ", ".join(f"{_spec_literal(v)} -> {lab:+g}" for v, lab in lm.pairs)
+            diags.append(where.diag("T130", f"target {_q(target)} in {_q(where.file)} holds value(s) the label map "
+                                    f"does not list: {listed} at {_rows_text(rows[unmatched])}", span,
+                                    f"list every value, e.g. `target {_spec_literal(target)}: {known}, "
+                                    f"{_spec_literal(firsts[0])} -> -1`", rows=True))
+            return y
+    else:
+        values, text_rows = _as_float(raw)
+        outside = np.flatnonzero(~np.isin(values, (-1.0, 1.0)))
+        if len(outside):
+            distinct = list(dict.fromkeys(raw.tolist()))
+            listed = ", ".join(_value(v) for v in distinct[:5]) + (", ..." if len(distinct) > 5 else "")
+            example = ", ".join(f"{_spec_literal(v)} -> {'+1' if i == 0 else '-1'}" for i, v in enumerate(distinct[:2]))
+            diags.append(where.diag("T131", f"target {_q(target)} in {_q(where.file)} must be -1 or +1 for a margin "
+                                    f"loss, but holds {listed} (not -1/+1 at {_rows_text(rows[outside])})", span,
+                                    f"map its values to labels: `target {_spec_literal(target)}: {example}`", rows=True))
+            return y
+        y = values
+    if both_classes:
+        present = set(np.unique(y).tolist())
+        if len(present) < 2:
+            only = "+1" if 1.0 in present else "-1"
+            diags.append(where.diag("T132", f"target {_q(target)} in {_q(where.file)} has one class only (every row "
+                                    f"is {only}); a margin loss needs both +1 and -1", span))
+    return y
+
+
+def _matches(raw: np.ndarray, value: str | float) -> np.ndarray:
+    """Cells equal to a label-map value: text against text, numbers against numbers."""
+    if raw.dtype.kind == "b":
+        if isinstance(value, str):
+            return raw == (value.strip().lower() == "true") if value.strip().lower() in ("true", "false") \
+                else np.zeros(len(raw), dtype=bool)
+        return raw.astype(np.float64) == float(value)
+    if _is_numeric(raw):
+        return raw.astype(np.float64) == float(value) if not isinstance(value, str) else np.zeros(len(raw), bool)
+    if isinstance(value, str):
+        return np.array([isinstance(c, str) and c == value for c in raw], dtype=bool)
+    return np.array([isinstance(c, (int, float, np.number)) and not isinstance(c, (bool, np.bool_))
+                     and float(c) == float(value) for c in raw], dtype=bool)
+
+
+def _fit_stats(X: np.ndarray, names: tuple[str, ...], spans: Sequence[Span], where: _Where) -> Standardization:
+    means = X.mean(axis=0)
+    scales = X.std(axis=0)  # population standard deviation (ddof 0), as scikit-learn's StandardScaler
+    diags = []
+    for j, name in enumerate(names):
+        top = np.max(np.abs(X[:, j])) if len(X) else 0.0
+        if not scales[j] > 1e-12 * top:  # zero spread, or only rounding noise
+            diags.append(where.diag("T150", f"input {_q(name)} of {_q(where.file)} is constant "
+                                    f"(every value is {_value(X[0, j])}); `standardize` would divide by "
+                                    "zero", spans[j], "leave it out of the inputs"))
+    _raise_all(diags)
+    return Standardization(names, tuple(float(m) for m in means), tuple(float(s) for s in scales))
+
+
+def _saved_stats(std: Standardization, names: tuple[str, ...], where: _Where,
+                 span: Span) -> tuple[np.ndarray, np.ndarray]:
+    index = {n: i for i, n in enumerate(std.names)}
+    diags = []
+    means, scales = np.zeros(len(names)), np.ones(len(names))
+    for j, name in enumerate(names):
+        if name not in index:
+            diags.append(where.diag("T151", f"the saved standardization has no stats for input {_q(name)}", span))
+            continue
+        means[j], scales[j] = std.means[index[name]], std.scales[index[name]]
+        if not (np.isfinite(scales[j]) and scales[j] > 0 and np.isfinite(means[j])):
+            diags.append(where.diag("T151", f"the saved standardization for input {_q(name)} is unusable "
+                                    f"(mean {means[j]:g}, scale {scales[j]:g})", span))
+    _raise_all(diags)
+    return means, scales
+
+
+def _frozen(a: np.ndarray) -> np.ndarray:
+    a = np.array(a, copy=True)  # own the memory, so nothing outside can still write to it
+    a.setflags(write=False)
+    return a
+
+
+# ---------------------------------------------------------------- rows and splits
+
+def take_rows(data: BoundData, index: np.ndarray | Sequence[int]) -> BoundData:
+    """The same binding restricted to some rows (positions or a boolean mask), order kept as given."""
+    idx = np.asarray(index)
+    if idx.dtype == bool:
+        idx = np.flatnonzero(idx)
+    idx = idx.astype(np.int64)
+    return replace(data, X=_frozen(np.ascontiguousarray(data.X[idx])), y=_frozen(data.y[idx]),
+                   weights=_frozen(data.weights[idx]), rows=_frozen(data.rows[idx]))
+
+
+def split_holdout(data: BoundData, fraction: float, seed: int, *, span: Span = NO_SPAN,
+                  source_name: str = "") -> tuple[BoundData, BoundData]:
+    """(training part, held-out part): a seeded random share `fraction` of the rows is held out.
+
+    The same data, fraction and seed always give the same split (numpy's default_rng(seed)). Each
+    part keeps the original row order. When the standardization was fitted on these rows it is
+    fitted again on the training part alone, so held-out rows never shape it.
+    """
+    where = _Where(data.file_label or str(data.source), source_name)
+    n = data.n_rows
+    if not (0.0 < fraction < 1.0):
+        raise where.error("T170", f"holdout share must lie strictly between 0% and 100%, got {fraction * 100:g}%",
+                          span, "write e.g. `holdout 20% seed 7`")
+    k = int(round(fraction * n))
+    if k < 1 or k >= n:
+        raise where.error("T170", f"holding out {fraction * 100:g}% of {n} rows of {_q(where.file)} leaves "
+                          f"{'no row to hold out' if k < 1 else 'no row to train on'}", span,
+                          "use a larger table or another share")
+    order = np.random.default_rng(seed).permutation(n)
+    held_idx, train_idx = np.sort(order[:k]), np.sort(order[k:])
+    train, held = take_rows(data, train_idx), take_rows(data, held_idx)
+    if data.task == "margin" and data.target is not None and len(np.unique(train.y)) < 2:
+        raise where.error("T171", f"the training part of the holdout split of {_q(where.file)} holds one class only",
+                          span, "try another seed or a smaller holdout share")
+    if data.standardization is not None and data.standardization_fitted:
+        std = data.standardization
+        mean, scale = np.asarray(std.means), np.asarray(std.scales)
+        raw_train, raw_held = train.X * scale + mean, held.X * scale + mean
+        refit = _fit_stats(raw_train, data.input_names, [span] * data.n_inputs, where)
+        m2, s2 = np.asarray(refit.means), np.asarray(refit.scales)
+        train = replace(train, X=_frozen(np.ascontiguousarray((raw_train - m2) / s2)), standardization=refit)
+        held = replace(held, X=_frozen(np.ascontiguousarray((raw_held - m2) / s2)), standardization=refit,
+                       standardization_fitted=False)
+    return train, held
