@@ -350,6 +350,7 @@ class _Env:
     y: np.ndarray
     score_override: np.ndarray | None = None
     tunables: dict[str, float] = field(default_factory=dict)
+    weights: np.ndarray | None = None  # row x class weights; None: every row weighs 1
 
 
 def evaluate(e: tt.TExpr, env: _Env):
@@ -386,7 +387,8 @@ def evaluate(e: tt.TExpr, env: _Env):
     if isinstance(e, tt.Mul):
         return evaluate(e.left, env) * evaluate(e.right, env)
     if isinstance(e, tt.Div):
-        return evaluate(e.left, env) / evaluate(e.right, env)
+        with np.errstate(divide="ignore", invalid="ignore"):  # `/ 0` is reported by analyse, not raised here
+            return np.divide(evaluate(e.left, env), evaluate(e.right, env))
     if isinstance(e, tt.Dot):
         a, b = evaluate(e.left, env), evaluate(e.right, env)
         if np.ndim(a) == 2:
@@ -396,6 +398,11 @@ def evaluate(e: tt.TExpr, env: _Env):
         return float(np.dot(a, b))
     if isinstance(e, tt.Aggregate):
         v = np.asarray(evaluate(e.operand, env), dtype=float)
+        if e.over == "rows" and env.weights is not None:
+            c = env.weights
+            v = np.broadcast_to(v, c.shape)
+            total = float(np.dot(c, v))
+            return total / float(np.sum(c)) if e.kind == "mean" else total
         return float(np.mean(v)) if e.kind == "mean" else float(np.sum(v))
     if isinstance(e, tt.Apply):
         entry = CATALOG[e.entry]
@@ -709,7 +716,8 @@ def check(spec: tt.ResolvedSpec, source: SourceText | None = None) -> CheckedObj
             explanation.append(f"line {facts.fault.span.line}, column {facts.fault.span.column}: {facts.fault.message}")
         if witness:
             explanation.append(f"counterexample: {witness.describe()}")
-        terms.append(Term(i, span, source.snippet(span) if span.line == span.end_line else render(whole),
+        shown = source.snippet(span) if span.line == span.end_line else render(whole)
+        terms.append(Term(i, span, ("- " + shown) if negated else shown,
                           value, ctext, csign, core, whole, kind, core.kind if is_rows else None, body,
                           facts.curvature, facts.smooth, verdict, role if role != "mixed" else None,
                           tuple(dict.fromkeys(losses)), known, tuple(explanation), witness, tun))

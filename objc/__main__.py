@@ -1,0 +1,5 @@
+import sys
+
+from objc.cli import main
+
+sys.exit(main())

@@ -1,0 +1,1 @@
+"""Backends: each reads only the checked objective, the catalog and the bound data."""

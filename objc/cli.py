@@ -1,0 +1,421 @@
+"""The objc command line: check, build, fit, eval, predict. No math here.
+
+Exit codes: 0 success; 1 the spec, data or model is wrong (a message with its location); 2 usage.
+Every command takes --json and then prints exactly one JSON document on standard output.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+from objc.diagnostics import Diagnostic, SpecError
+from objc.source_text import NO_SPAN
+
+EXIT_OK, EXIT_SPEC, EXIT_USAGE = 0, 1, 2
+
+
+class UsageError(Exception):
+    pass
+
+
+# ---------------------------------------------------------------- output helpers
+
+def _emit_json(doc: dict) -> None:
+    sys.stdout.write(json.dumps(doc, indent=2, default=_plain) + "\n")
+
+
+def _plain(v: Any):
+    import numpy as np
+    if isinstance(v, np.generic):
+        return v.item()
+    if isinstance(v, np.ndarray):
+        return v.tolist()
+    if isinstance(v, Path):
+        return str(v)
+    return str(v)
+
+
+def _diag_list(diags, source=None) -> list[dict]:
+    return [d.to_json(source) for d in diags]
+
+
+def _report_error(err: SpecError, as_json: bool, command: str) -> int:
+    if as_json:
+        _emit_json({"command": command, "ok": False, "errors": _diag_list(err.diagnostics, err.source)})
+    else:
+        sys.stderr.write(err.render() + "\n")
+    return EXIT_SPEC
+
+
+def _rule(title: str) -> str:
+    return f"-- {title} " + "-" * max(0, 68 - len(title))
+
+
+# ---------------------------------------------------------------- check
+
+def _check_json(checked) -> dict:
+    return {
+        "command": "check",
+        "ok": checked.accepted,
+        "spec": checked.source.name,
+        "sha256": checked.spec_hash,
+        "verdict": checked.verdict,
+        "accepted": checked.accepted,
+        "smooth": checked.smooth,
+        "subdifferentiable": checked.subdifferentiable,
+        "task": checked.task,
+        "terms": [{"index": t.index + 1, "text": t.text, "line": t.span.line, "column": t.span.column,
+                   "kind": t.kind, "curvature": t.curvature.value, "smooth": t.smooth, "verdict": t.verdict,
+                   "role": t.role, "losses": list(t.losses), "coefficient": t.coefficient,
+                   "explanation": list(t.explanation),
+                   "witness": None if t.witness is None else {
+                       "variable": t.witness.variable, "a": t.witness.a, "b": t.witness.b,
+                       "value_at_midpoint": t.witness.value_mid, "average_of_ends": t.witness.value_avg}}
+                  for t in checked.terms],
+        "constraints": [{"text": c.text, "line": c.span.line, "kind": c.kind, "keeps_convexity": c.curvature_ok}
+                        for c in checked.constraints],
+        "intercept": checked.intercept,
+        "intercept_penalized": checked.penalizes_intercept,
+        "expanded": checked.expanded,
+        "errors": _diag_list(checked.errors, checked.source),
+        "warnings": _diag_list(checked.warnings, checked.source),
+    }
+
+
+def _check_text_report(checked) -> str:
+    verdict = checked.verdict.upper()
+    task = {"margin": "classification (losses of the margin y * s)",
+            "residual": "regression (losses of the residual y - s)"}.get(checked.task or "", "no per-row loss")
+    lines = [f"spec      {checked.source.name}",
+             f"verdict   {verdict}{'' if checked.accepted else '  (refused)'}",
+             f"shape     {'smooth' if checked.smooth else 'nonsmooth'}, {task}", "", _rule("terms of the goal")]
+    width = min(44, max([len(t.text) for t in checked.terms] + [4]))
+    lines.append(f"  {'#':>2}  {'term':<{width}}  {'curvature':<12} {'smooth':<6}  line")
+    for t in checked.terms:
+        text = t.text if len(t.text) <= width else t.text[:width - 3] + "..."
+        mark = "" if t.verdict in ("convex", "affine", "constant") else "   <- " + t.verdict
+        lines.append(f"  {t.index + 1:>2}  {text:<{width}}  {t.curvature.value:<12} {'yes' if t.smooth else 'no':<6}"
+                     f"  {t.span.line}{mark}")
+    if checked.constraints:
+        lines += ["", _rule("constraints")]
+        for c in checked.constraints:
+            lines.append(f"  line {c.span.line:<4} {c.text:<40} {c.kind}{'' if c.curvature_ok else '  <- breaks convexity'}")
+    lines += ["", _rule("the objective, expanded")]
+    lines += ["  " + ln for ln in checked.expanded.splitlines()]
+    if checked.errors:
+        lines += ["", _rule("why not")]
+        lines += [d.render(checked.source) for d in checked.errors]
+    if checked.warnings:
+        lines += ["", _rule("warnings")]
+        lines += [d.render(checked.source) for d in checked.warnings]
+    return "\n".join(lines) + "\n"
+
+
+def cmd_check(args) -> int:
+    from objc.frontend import check_file
+    checked = check_file(args.spec)
+    ok = checked.accepted or (args.local_ok and checked.subdifferentiable and not [
+        d for d in checked.errors if d.code not in ("E311", "E312", "E313", "E314", "E315")])
+    if args.json:
+        doc = _check_json(checked)
+        doc["ok"] = ok
+        _emit_json(doc)
+    else:
+        sys.stdout.write(_check_text_report(checked))
+    return EXIT_OK if ok else EXIT_SPEC
+
+
+# ---------------------------------------------------------------- build
+
+def cmd_build(args) -> int:
+    from objc.frontend import check_file
+    from objc.training import require_trainable
+    checked = check_file(args.spec)
+    require_trainable(checked, args.local_ok)
+    if args.backend == "cvxpy":
+        from objc.backends.cvxpy_problem import emit_module
+    else:
+        from objc.backends.numpy_module import emit_module
+    text = emit_module(checked)
+    out = Path(args.output)
+    from objc.model_io import _atomic_write
+    _atomic_write(out, text.encode("utf-8"))
+    if args.json:
+        _emit_json({"command": "build", "ok": True, "spec": args.spec, "backend": args.backend, "output": str(out),
+                    "bytes": len(text.encode("utf-8")), "sha256_spec": checked.spec_hash})
+    else:
+        print(f"wrote {out} ({args.backend} backend, {len(text.splitlines())} lines) from {args.spec}")
+    return EXIT_OK
+
+
+# ---------------------------------------------------------------- fit
+
+def _parse_settings(pairs: list[str], checked) -> dict[str, float]:
+    known = {t.name: t for t in checked.spec.tunables}
+    values = {name: t.default for name, t in known.items()}
+    for pair in pairs or []:
+        if "=" not in pair:
+            raise UsageError(f"--set takes NAME=VALUE, got '{pair}'")
+        name, _, raw = pair.partition("=")
+        if name not in known:
+            raise UsageError(f"--set {name}: the spec has no tunable '{name}' (tunables: "
+                             f"{', '.join(known) or 'none'})")
+        try:
+            v = float(raw)
+        except ValueError:
+            raise UsageError(f"--set {name}={raw}: not a number") from None
+        t = known[name]
+        if not (t.low <= v <= t.high):
+            raise SpecError((Diagnostic("E402", f"{name} = {v:g} lies outside its declared range {t.low:g} .. "
+                                        f"{t.high:g}", t.span, hint="widen the range in the spec, or pick a value "
+                                        "inside it", source_name=checked.source.name),), checked.source)
+        values[name] = v
+    return values
+
+
+def _progress_printer(enabled: bool):
+    if not enabled:
+        return None
+    state = {"last": 0.0}
+
+    def show(passes: int, objective: float, gap: float | None) -> None:
+        now = time.monotonic()
+        if now - state["last"] < 0.2:
+            return
+        state["last"] = now
+        g = "" if gap is None else f"  gap {gap:.2e}"
+        sys.stderr.write(f"\r  training: pass {passes:>6}  objective {objective:.8g}{g}   ")
+        sys.stderr.flush()
+    return show
+
+
+def cmd_fit(args) -> int:
+    from objc.frontend import check_file
+    from objc import training
+    from objc.model_io import save_model
+    spec_path = Path(args.spec)
+    checked = check_file(spec_path)
+    training.require_trainable(checked, args.local_ok)
+    tunables = _parse_settings(args.set, checked)
+    train, held, held_label = training.bind_training(checked, spec_path.parent,
+                                                     Path(args.data) if args.data else None)
+    show = _progress_printer(not args.json and sys.stderr.isatty())
+    result = training.run_backend(checked, train, args.backend, tunables, tol=args.tol, solver=args.solver,
+                                  allow_nonconvex=args.local_ok, progress=show)
+    if show:
+        sys.stderr.write("\r" + " " * 70 + "\r")
+    form = training.form_for(checked, train.input_names)
+    s_train = training.scores(form, result.params, train.X, train.y)
+    train_metrics = training.metrics(train.task, train.y, s_train, train.weights, checked)
+    held_metrics = None
+    if held is not None:
+        held_metrics = training.metrics(held.task, held.y, training.scores(form, result.params, held.X, held.y),
+                                        held.weights, checked)
+    out = Path(args.output) if args.output else Path(spec_path.stem + ".model.json")
+    doc = training.model_document(checked, spec_path, train, result, tunables, train_metrics, held_metrics,
+                                  held_label)
+    json_path = save_model(out, doc, result.params)
+    if args.json:
+        _emit_json({"command": "fit", "ok": True, "model": str(json_path), "objective": result.objective,
+                    "terms": doc["fit"]["terms"], "status": result.status, "backend": result.backend,
+                    "method": result.method, "certificate": doc["fit"]["certificate"],
+                    "passes": result.passes, "iterations": result.iterations, "seconds": result.seconds,
+                    "params": result.params, "inputs": list(train.input_names), "tunables": tunables,
+                    "training_metrics": train_metrics, "holdout_metrics": held_metrics,
+                    "holdout_source": held_label or None, "warnings": _diag_list(checked.warnings, checked.source)
+                    + _diag_list(train.warnings)})
+        return EXIT_OK
+    cert = result.certificate
+    lines = [f"trained   {spec_path}  on {train.n_rows} rows x {len(train.input_names)} inputs"
+             + (f" ({train.dropped} rows dropped for missing values)" if train.dropped else ""),
+             f"backend   {result.backend}: {result.method}  ->  {result.status}",
+             f"time      {result.seconds:.3f} s, {result.passes} passes over the data, {result.iterations} iterations",
+             f"optimal   {cert.kind}" + (f": absolute {cert.absolute:.3g}, relative {cert.relative:.3g}"
+                                        if cert.absolute is not None else "") + (f" ({cert.note})" if cert.note else ""),
+             "", _rule("objective"), f"  {result.objective:.10g}  total"]
+    for t, v in zip(checked.terms, result.term_values):
+        lines.append(f"  {v:.10g}  {t.text}")
+    lines += ["", _rule("on the training rows")] + _metric_lines(train_metrics)
+    if held_metrics is not None:
+        lines += ["", _rule(f"on {held_label}")] + _metric_lines(held_metrics)
+    for w in checked.warnings + train.warnings:
+        lines.append("")
+        lines.append(w.render(checked.source))
+    lines += ["", f"model     {json_path} (+ {json_path.with_suffix('.npz').name})"]
+    print("\n".join(lines))
+    return EXIT_OK
+
+
+def _metric_lines(m: dict) -> list[str]:
+    if "zero_one_error" in m:
+        c = m["confusion"]
+        lines = [f"  0-1 error       {m['zero_one_error']:.4f}   (weighted {m['zero_one_error_weighted']:.4f}, "
+                 f"{m['rows']} rows)",
+                 f"  confusion       +1 called +1: {c['true_pos']}   -1 called +1: {c['false_pos']}   "
+                 f"-1 called -1: {c['true_neg']}   +1 called -1: {c['false_neg']}"]
+    else:
+        lines = [f"  MAE {m['mae']:.6g}   RMSE {m['rmse']:.6g}   share at or below the prediction "
+                 f"{m['coverage']:.4f}   ({m['rows']} rows)"]
+    lines.append("  mean loss       " + "   ".join(f"{k} {v:.4g}" for k, v in m["mean_losses"].items()))
+    return lines
+
+
+# ---------------------------------------------------------------- eval / predict
+
+def cmd_eval(args) -> int:
+    from objc import tables, training
+    from objc.model_io import load_model
+    model = load_model(Path(args.model))
+    doc = model.document
+    checked = training.checked_from_model(doc, model.path)
+    if args.table:
+        data = training.bind_for_model(checked, doc, Path(args.table), need_target=True)
+        where = args.table
+    else:
+        spec_path = Path(doc["spec"]["path"])
+        train, held, held_label = training.bind_training(checked, spec_path.parent)
+        data = held if held is not None else train
+        where = held_label if held is not None else f"the training table {doc['schema']['training_table']} " \
+                                                    "(the spec has no holdout or validation table)"
+        if held is None or True:
+            std = doc["schema"]["standardization"]
+            if std is not None:  # use the model's own statistics, not ones refitted here
+                data = training.bind_for_model(checked, doc, train.source, need_target=True) if held is None else data
+    form = training.form_for(checked, tuple(doc["schema"]["inputs"]))
+    s = training.scores(form, model.params, data.X, data.y)
+    m = training.metrics(doc["task"], data.y, s, data.weights, checked)
+    if args.json:
+        _emit_json({"command": "eval", "ok": True, "model": str(model.path), "table": str(where), "metrics": m})
+    else:
+        print("\n".join([f"model     {model.path}", f"table     {where}", "", _rule("evaluation")] + _metric_lines(m)))
+    return EXIT_OK
+
+
+def cmd_predict(args) -> int:
+    import numpy as np
+    from objc import training
+    from objc.model_io import _atomic_write, load_model
+    model = load_model(Path(args.model))
+    doc = model.document
+    checked = training.checked_from_model(doc, model.path)
+    data = training.bind_for_model(checked, doc, Path(args.table), need_target=False)
+    form = training.form_for(checked, tuple(doc["schema"]["inputs"]))
+    s = training.scores(form, model.params, data.X, None)
+    out = Path(args.output)
+    import csv
+    import io
+    buf = io.StringIO()
+    writer = csv.writer(buf, lineterminator="\n")
+    if doc["task"] == "margin":
+        label_map = doc["schema"]["label_map"]
+        back = {1.0: "+1", -1.0: "-1"}
+        if label_map:
+            for raw, lab in label_map:
+                back.setdefault(float(lab), raw) if False else None
+            firsts = {}
+            for raw, lab in label_map:
+                firsts.setdefault(float(lab), raw)
+            back = {k: str(v) for k, v in firsts.items()}
+        writer.writerow(["row", "score", "label"])
+        for r, v in zip(data.rows, s):
+            writer.writerow([int(r), repr(float(v)), back[1.0 if v > 0 else -1.0]])
+    else:
+        writer.writerow(["row", "prediction"])
+        for r, v in zip(data.rows, s):
+            writer.writerow([int(r), repr(float(v))])
+    _atomic_write(out, buf.getvalue().encode("utf-8"))
+    if args.json:
+        _emit_json({"command": "predict", "ok": True, "model": str(model.path), "table": args.table,
+                    "output": str(out), "rows": int(len(s))})
+    else:
+        print(f"wrote {len(s)} predictions to {out}")
+    return EXIT_OK
+
+
+# ---------------------------------------------------------------- main
+
+def _parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="objc", description="Compile a training objective written in a spec file "
+                                "into a checked solver, then train, evaluate and ship it.")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+
+    def common(sp):
+        sp.add_argument("--json", action="store_true", help="print one JSON document instead of the report")
+
+    c = sub.add_parser("check", help="parse a spec and certify its convexity")
+    c.add_argument("spec")
+    c.add_argument("--local-ok", action="store_true",
+                   help="accept a non-convex but subdifferentiable objective (its minimum is only local)")
+    common(c)
+    b = sub.add_parser("build", help="write a standalone solver module for a spec")
+    b.add_argument("spec")
+    b.add_argument("--backend", choices=["numpy", "cvxpy"], default="numpy")
+    b.add_argument("-o", "--output", required=True, help="the .py file to write")
+    b.add_argument("--local-ok", action="store_true", help=argparse.SUPPRESS)
+    common(b)
+    f = sub.add_parser("fit", help="train on the spec's table and save a model")
+    f.add_argument("spec")
+    f.add_argument("--data", help="train on this table instead of the one the spec names")
+    f.add_argument("--backend", choices=["numpy", "cvxpy"], default="numpy")
+    f.add_argument("--solver", help="cvxpy backend: the solver to use (e.g. CLARABEL, ECOS, SCS, HIGHS, OSQP)")
+    f.add_argument("--tol", type=float, default=1e-6, help="relative certificate to stop at (numpy backend)")
+    f.add_argument("--set", action="append", metavar="NAME=VALUE", help="give a tunable a value (repeatable)")
+    f.add_argument("-o", "--output", help="model file to write (.json; the arrays go beside it as .npz)")
+    f.add_argument("--local-ok", action="store_true",
+                   help="train a non-convex but subdifferentiable objective (the result is a local minimum)")
+    common(f)
+    e = sub.add_parser("eval", help="evaluate a saved model on a table")
+    e.add_argument("model")
+    e.add_argument("table", nargs="?", help="default: the spec's held-out rows, else its training table")
+    common(e)
+    pr = sub.add_parser("predict", help="score every row of a table with a saved model")
+    pr.add_argument("model")
+    pr.add_argument("table")
+    pr.add_argument("-o", "--output", required=True, help="CSV file to write")
+    common(pr)
+    return p
+
+
+COMMANDS = {"check": cmd_check, "build": cmd_build, "fit": cmd_fit, "eval": cmd_eval, "predict": cmd_predict}
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = _parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exit_:
+        return int(exit_.code or 0)
+    if not args.command:
+        parser.print_help(sys.stderr)
+        return EXIT_USAGE
+    as_json = getattr(args, "json", False)
+    try:
+        return COMMANDS[args.command](args)
+    except SpecError as err:
+        return _report_error(err, as_json, args.command)
+    except UsageError as err:
+        if as_json:
+            _emit_json({"command": args.command, "ok": False, "usage_error": str(err)})
+        else:
+            sys.stderr.write(f"objc {args.command}: {err}\n")
+        return EXIT_USAGE
+    except KeyboardInterrupt:
+        sys.stderr.write("objc: interrupted; nothing was written\n")
+        return 130
+    except Exception as err:  # noqa: BLE001 - the promise is: never a traceback
+        msg = f"objc {args.command}: internal error ({type(err).__name__}: {err}); nothing was written. " \
+              "Please report this with the spec and data that caused it."
+        if as_json:
+            _emit_json({"command": args.command, "ok": False, "internal_error": msg})
+        else:
+            sys.stderr.write(msg + "\n")
+        return EXIT_SPEC
+
+
+if __name__ == "__main__":
+    sys.exit(main())

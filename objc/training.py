@@ -1,0 +1,223 @@
+"""From a checked spec and its table to a trained, evaluated model: the steps the commands share.
+
+No math of losses here: metrics call catalog kernels; solving is the backends' job.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import time
+from dataclasses import replace
+from pathlib import Path
+from typing import Callable, Literal
+
+import numpy as np
+
+from objc import tables
+from objc.catalog import CATALOG
+from objc.checker import CheckedObjective
+from objc.diagnostics import Diagnostic, SpecError
+from objc.fit_result import FitResult, theta_from_params
+from objc.frontend import check_text
+from objc.score_form import ScoreForm, design, score_form
+from objc.source_text import NO_SPAN
+
+Backend = Literal["numpy", "cvxpy"]
+
+
+def require_trainable(checked: CheckedObjective, allow_nonconvex: bool = False) -> None:
+    """Refuse (SpecError) a spec the checker did not accept, unless a non-convex but
+    subdifferentiable one is explicitly allowed."""
+    if checked.accepted:
+        return
+    blocking = [d for d in checked.errors if not (allow_nonconvex and checked.subdifferentiable and
+                                                    d.code in ("E311", "E312", "E313", "E314", "E315"))]
+    if blocking:
+        raise SpecError(tuple(blocking), checked.source)
+    if checked.spec.table is None:
+        raise SpecError((Diagnostic("E401", "the spec binds no table to train on", NO_SPAN,
+                                    hint='add: table NAME from "file.csv"', source_name=checked.source.name),),
+                        checked.source)
+
+
+def task_of(checked: CheckedObjective) -> tables.Task:
+    if checked.task is not None:
+        return checked.task
+    tb = checked.spec.table
+    return "margin" if tb is not None and tb.label_map is not None else "residual"
+
+
+def bind_training(checked: CheckedObjective, spec_dir: Path, data_path: Path | None = None
+                  ) -> tuple[tables.BoundData, tables.BoundData | None, str]:
+    """(training rows, held-out rows or None, a phrase saying where the held-out rows came from)."""
+    try:
+        return _bind_training(checked, spec_dir, data_path)
+    except SpecError as err:  # show the spec line the data problem belongs to
+        raise SpecError(err.diagnostics, err.source or checked.source) from None
+
+
+def _bind_training(checked: CheckedObjective, spec_dir: Path, data_path: Path | None
+                   ) -> tuple[tables.BoundData, tables.BoundData | None, str]:
+    tb = checked.spec.table
+    if tb is None:
+        raise SpecError((Diagnostic("E401", "the spec binds no table to train on", NO_SPAN,
+                                    hint='add: table NAME from "file.csv"', source_name=checked.source.name),),
+                        checked.source)
+    task = task_of(checked)
+    data = tables.bind_table(tb, spec_dir, task, source_name=checked.source.name, data_path=data_path)
+    if tb.holdout is not None:
+        train, held = tables.split_holdout(data, tb.holdout, tb.holdout_seed, span=tb.holdout_span or tb.span,
+                                           source_name=checked.source.name)
+        return train, held, f"the {tb.holdout * 100:g}% holdout (seed {tb.holdout_seed})"
+    if tb.validation_path is not None:
+        held = tables.bind_table(tb, spec_dir, task, source_name=checked.source.name,
+                                 data_path=spec_dir / tb.validation_path, file_span=tb.validation_span,
+                                 standardization=data.standardization, input_names=data.input_names,
+                                 both_classes=False)
+        return data, held, f"the validation table {tb.validation_path}"
+    return data, None, ""
+
+
+def run_backend(checked: CheckedObjective, data: tables.BoundData, backend: Backend,
+                tunables: dict[str, float] | None = None, *, tol: float = 1e-6, solver: str | None = None,
+                allow_nonconvex: bool = False, progress: Callable | None = None,
+                theta0: np.ndarray | None = None) -> FitResult:
+    start = time.perf_counter()
+    if backend == "cvxpy":
+        from objc.backends import cvxpy_problem
+        result = cvxpy_problem.fit(checked, data.X, data.y, data.weights, data.input_names, tunables,
+                                   solver=solver)
+    else:
+        from objc.backends import numpy_module
+        result = numpy_module.fit(checked, data.X, data.y, data.weights, data.input_names, tunables, tol=tol,
+                                  allow_nonconvex=allow_nonconvex, progress=progress, theta0=theta0)
+    if not result.seconds:
+        result = replace(result, seconds=time.perf_counter() - start)
+    return result
+
+
+def scores(form: ScoreForm, params: dict, X: np.ndarray, y: np.ndarray | None = None) -> np.ndarray:
+    """The score of every row under the learned parameters."""
+    theta = theta_from_params(form, params)
+    if form.standard:
+        w = theta[form.slot(form.weights_name).start:][:len(form.input_names)]
+        b = float(params[form.intercept_name]) if form.intercept_name else 0.0
+        return np.asarray(X @ w, dtype=np.float64) + b
+    A, off = design(form, X, np.zeros(X.shape[0]) if y is None else y)
+    return A @ theta + off
+
+
+def metrics(task: tables.Task, y: np.ndarray, s: np.ndarray, weights: np.ndarray,
+            checked: CheckedObjective) -> dict:
+    """Evaluation figures: for classification the 0-1 error, confusion counts and the mean of every
+    margin loss in the catalog; for regression MAE, RMSE, coverage and every residual loss."""
+    out: dict = {"rows": int(len(y))}
+    c = np.asarray(weights, dtype=float)
+    wsum = float(np.sum(c))
+
+    def wmean(v):
+        return float(np.dot(c, v) / wsum) if wsum > 0 else float("nan")
+    if task == "margin":
+        m = y * s
+        err = CATALOG["zero_one"].value(m)
+        pred = np.where(s > 0, 1.0, -1.0)
+        out["zero_one_error"] = float(np.mean(err))
+        out["zero_one_error_weighted"] = wmean(err)
+        out["accuracy"] = 1.0 - out["zero_one_error"]
+        out["confusion"] = {
+            "true_pos": int(np.sum((y > 0) & (pred > 0))), "false_pos": int(np.sum((y < 0) & (pred > 0))),
+            "true_neg": int(np.sum((y < 0) & (pred < 0))), "false_neg": int(np.sum((y > 0) & (pred < 0)))}
+        losses = {}
+        for name, entry in CATALOG.items():
+            if entry.role == "margin":
+                with np.errstate(over="ignore"):
+                    losses[name] = wmean(entry.value(m))
+        out["mean_losses"] = losses
+    else:
+        r = y - s
+        out["mae"] = float(np.mean(np.abs(r)))
+        out["rmse"] = float(np.sqrt(np.mean(r * r)))
+        out["coverage"] = float(np.mean(y <= s))  # share of rows at or below the prediction
+        used = {}
+        for t in checked.terms:
+            if t.known_loss and CATALOG[t.known_loss[0]].role == "residual":
+                used[t.known_loss[0]] = dict(t.known_loss[1])
+        losses = {}
+        for name, entry in CATALOG.items():
+            if entry.role == "residual":
+                opts = used.get(name, {})
+                key = name + ("(" + ", ".join(f"{k}={v:g}" for k, v in opts.items()) + ")" if opts else "")
+                losses[key] = wmean(entry.value(r, **opts))
+        out["mean_losses"] = losses
+    return out
+
+
+def model_document(checked: CheckedObjective, spec_path: Path, data: tables.BoundData, result: FitResult,
+                   tunables: dict[str, float], train_metrics: dict, held_metrics: dict | None,
+                   held_label: str) -> dict:
+    std = data.standardization
+    return {
+        "spec": {"path": str(spec_path), "sha256": checked.spec_hash, "text": checked.spec.text},
+        "verdict": checked.verdict,
+        "smooth": checked.smooth,
+        "task": data.task,
+        "schema": {
+            "inputs": list(data.input_names),
+            "target": data.target,
+            "label_map": [[v, l] for v, l in data.label_map.pairs] if data.label_map else None,
+            "standardization": None if std is None else {"means": list(std.means), "scales": list(std.scales)},
+            "training_table": str(data.file_label or data.source),
+            "training_table_sha256": _file_hash(data.source),
+        },
+        "tunables": tunables,
+        "fit": {
+            "backend": result.backend, "method": result.method, "status": result.status,
+            "objective": result.objective,
+            "terms": [{"text": t.text, "verdict": t.verdict, "value": v} for t, v in
+                      zip(checked.terms, result.term_values)],
+            "certificate": {"kind": result.certificate.kind, "absolute": result.certificate.absolute,
+                            "relative": result.certificate.relative, "tolerance": result.certificate.tolerance,
+                            "note": result.certificate.note},
+            "iterations": result.iterations, "passes": result.passes, "seconds": result.seconds,
+        },
+        "training_metrics": train_metrics,
+        "holdout_metrics": held_metrics,
+        "holdout_source": held_label or None,
+    }
+
+
+def _file_hash(path: Path) -> str | None:
+    try:
+        h = hashlib.sha256()
+        with open(path, "rb") as f:
+            for chunk in iter(lambda: f.read(1 << 20), b""):
+                h.update(chunk)
+        return h.hexdigest()
+    except OSError:
+        return None
+
+
+def checked_from_model(document: dict, model_path: Path) -> CheckedObjective:
+    """Re-check the spec a model carries (its text is stored whole)."""
+    return check_text(document["spec"]["text"], document["spec"]["path"])
+
+
+def bind_for_model(checked: CheckedObjective, document: dict, table: Path, *, need_target: bool
+                   ) -> tables.BoundData:
+    """Bind another table by a saved model's schema: same inputs in the same order, stored stats."""
+    tb = checked.spec.table
+    assert tb is not None  # a model is only ever saved from a spec with a table
+    schema = document["schema"]
+    std = None
+    if schema["standardization"] is not None:
+        std = tables.Standardization(tuple(schema["inputs"]), tuple(schema["standardization"]["means"]),
+                                     tuple(schema["standardization"]["scales"]))
+    if not need_target:
+        tb = replace(tb, row_weight=None, row_weight_span=None, class_weights=())
+    return tables.bind_table(tb, Path("."), document["task"], source_name=str(table), data_path=table,
+                             standardization=std, input_names=tuple(schema["inputs"]), need_target=need_target,
+                             both_classes=False)
+
+
+def form_for(checked: CheckedObjective, input_names: tuple[str, ...]) -> ScoreForm:
+    return score_form(checked, input_names)

@@ -1,0 +1,199 @@
+"""The command line as a practitioner meets it: exit codes, located messages, no tracebacks,
+nothing half-written."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from objc.cli import main
+
+HEADER = """table t from "{path}"
+  target late: yes -> +1, no -> -1
+  inputs a, b, c
+learn w over inputs, b
+score s = w . x + b
+"""
+GOOD_GOAL = "goal mean logistic(y * s) + 0.05 * l2sq(w)\n"
+
+
+def _write_table(path: Path, rows: list[dict]) -> Path:
+    cols = list(rows[0])
+    lines = [",".join(cols)] + [",".join(str(r[c]) for c in cols) for r in rows]
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def _good_rows(n: int = 40, seed: int = 0) -> list[dict]:
+    rng = np.random.default_rng(seed)
+    out = []
+    for _ in range(n):
+        a, b, c = rng.normal(size=3)
+        out.append({"a": round(a, 4), "b": round(b, 4), "c": round(c, 4),
+                    "late": "yes" if a + 0.5 * b + 0.3 * rng.normal() > 0 else "no", "prio": 1})
+    return out
+
+
+def _spec(tmp_path: Path, body: str = GOOD_GOAL, table: str = "t.csv", header: str = HEADER) -> Path:
+    p = tmp_path / "m.objc"
+    p.write_text(header.format(path=table) + body)
+    return p
+
+
+def run(argv, capsys):
+    code = main([str(a) for a in argv])
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+# ---------------------------------------------------------------- check
+
+def test_check_convex_spec_exits_zero(tmp_path, capsys):
+    code, out, _ = run(["check", _spec(tmp_path)], capsys)
+    assert code == 0
+    assert "CONVEX" in out and "intercept b: not penalized" in out
+
+
+def test_check_refused_spec_exits_one_with_location(tmp_path, capsys):
+    spec = _spec(tmp_path, "goal mean hinge(y * s) + l1(w) - 0.1 * l2sq(w)\n")
+    code, out, _ = run(["check", spec], capsys)
+    assert code == 1
+    assert f"{spec}:6:" in out and "E312" in out
+
+
+def test_check_json_is_one_document(tmp_path, capsys):
+    code, out, _ = run(["check", _spec(tmp_path), "--json"], capsys)
+    doc = json.loads(out)
+    assert code == 0 and doc["verdict"] == "convex" and doc["ok"] is True
+    assert [t["index"] for t in doc["terms"]] == [1, 2]
+
+
+def test_check_syntax_error_json(tmp_path, capsys):
+    spec = _spec(tmp_path, "goal mean hinge(y * s) +\n")
+    code, out, _ = run(["check", spec, "--json"], capsys)
+    doc = json.loads(out)
+    assert code == 1 and doc["ok"] is False
+    assert doc["errors"][0]["line"] >= 1 and doc["errors"][0]["column"] >= 1
+
+
+def test_usage_errors_exit_two(tmp_path, capsys):
+    assert run([], capsys)[0] == 2
+    assert run(["check"], capsys)[0] == 2
+    assert run(["fit", _spec(tmp_path), "--backend", "nope"], capsys)[0] == 2
+    assert run(["frobnicate"], capsys)[0] == 2
+
+
+def test_missing_spec_file(tmp_path, capsys):
+    code, _, err = run(["check", tmp_path / "nowhere.objc"], capsys)
+    assert code == 1 and "not found" in err and "nowhere.objc" in err
+
+
+def test_non_convex_accepted_only_with_flag(tmp_path, capsys):
+    spec = _spec(tmp_path, "goal mean min(1, max(0, 1 - y * s)) + l2sq(w)\n")
+    assert run(["check", spec], capsys)[0] == 1
+    assert run(["check", spec, "--local-ok"], capsys)[0] == 0
+    zero_one = _spec(tmp_path, "goal mean zero_one(y * s) + l2sq(w)\n")
+    assert run(["check", zero_one, "--local-ok"], capsys)[0] == 1  # not subdifferentiable: never trainable
+
+
+def test_check_runs_without_importing_cvxpy(tmp_path):
+    # start-up matters for `check`; cvxpy is only loaded by the backends that need it
+    code = ("import sys; from objc.cli import main; rc = main(['check', sys.argv[1]]); "
+            "assert 'cvxpy' not in sys.modules, 'cvxpy was imported'; sys.exit(rc)")
+    proc = subprocess.run([sys.executable, "-c", code, str(_spec(tmp_path))], capture_output=True, text=True)
+    assert proc.returncode == 0, proc.stderr
+
+
+# ---------------------------------------------------------------- bad input corpus for fit
+
+def _broken_cases():
+    """(name, table rows or file text, spec body change, words the message must hold)."""
+    good = _good_rows()
+    cases = []
+    rows = [dict(r) for r in good]
+    rows[3]["b"] = "n/a"
+    cases.append(("non-numeric input", rows, None, ["b", "t.csv"]))
+    rows = [dict(r) for r in good]
+    rows[5]["a"] = "nan"
+    cases.append(("NaN input", rows, None, ["a", "6"]))
+    rows = [dict(r) for r in good]
+    rows[2]["c"] = "inf"
+    cases.append(("infinite input", rows, None, ["c", "3"]))
+    rows = [{k: v for k, v in r.items() if k != "c"} for r in good]
+    cases.append(("missing input column", rows, None, ["'c'", "t.csv"]))
+    rows = [{k: v for k, v in r.items() if k != "late"} for r in good]
+    cases.append(("missing target column", rows, None, ["late", "t.csv"]))
+    rows = [dict(r) for r in good]
+    rows[7]["late"] = "maybe"
+    cases.append(("label outside the map", rows, None, ["maybe", "8"]))
+    rows = [dict(r, late="yes") for r in good]
+    cases.append(("one class only", rows, None, ["late", "one"]))
+    rows = [dict(r) for r in good]
+    rows[4]["prio"] = -2
+    cases.append(("negative row weight", rows, "rowweight", ["prio", "5"]))
+    rows = [dict(r) for r in good]
+    rows[1]["prio"] = "nan"
+    cases.append(("NaN row weight", rows, "rowweight", ["prio", "2"]))
+    rows = [dict(r, c=1.5) for r in good]
+    cases.append(("constant column under standardize", rows, "standardize", ["c", "constant"]))
+    cases.append(("empty table", "a,b,c,late,prio\n", None, ["t.csv"]))
+    cases.append(("missing table file", None, None, ["t.csv"]))
+    cases.append(("header only, garbage body", "a,b,c,late,prio\n1,2\n\"unterminated", None, ["t.csv"]))
+    rows = [dict(r) for r in good]
+    cases.append(("missing row-weight column", [{k: v for k, v in r.items() if k != "prio"} for r in rows],
+                  "rowweight", ["prio"]))
+    cases.append(("numbers where labels are strings", [dict(r, late=1 if r["late"] == "yes" else 0) for r in good],
+                  None, ["late"]))
+    cases.append(("holdout leaving nothing", good[:2], "holdout", ["holding out", "t.csv"]))
+    return cases
+
+
+@pytest.mark.parametrize("name,rows,extra,words", _broken_cases(), ids=[c[0] for c in _broken_cases()])
+def test_broken_tables_fail_cleanly(tmp_path, capsys, name, rows, extra, words):
+    header = HEADER
+    if extra == "rowweight":
+        header += "  rowweight prio\n"
+    elif extra == "standardize":
+        header += "  standardize\n"
+    elif extra == "holdout":
+        header += "  holdout 10% seed 1\n"
+    spec = _spec(tmp_path, header=header)
+    if isinstance(rows, list):
+        _write_table(tmp_path / "t.csv", rows)
+    elif isinstance(rows, str):
+        (tmp_path / "t.csv").write_text(rows)
+    out_model = tmp_path / "out" / "m.json"
+    code, out, err = run(["fit", spec, "-o", out_model], capsys)
+    assert code == 1, (name, out, err)
+    assert "Traceback" not in err + out
+    assert "internal error" not in err
+    for w in words:
+        assert w in err, (name, w, err)
+    assert not out_model.exists() and not out_model.with_suffix(".npz").exists()
+
+
+def test_broken_spec_fails_before_reading_data(tmp_path, capsys):
+    spec = _spec(tmp_path, "goal mean hinge(y * s) + tikhonov(w)\n")
+    code, _, err = run(["fit", spec, "-o", tmp_path / "m.json"], capsys)
+    assert code == 1 and "did you mean" not in err or "tikhonov" in err
+    assert f"{spec}:6:" in err
+    assert not (tmp_path / "m.json").exists()
+
+
+def test_set_outside_declared_range(tmp_path, capsys):
+    _write_table(tmp_path / "t.csv", _good_rows())
+    spec = _spec(tmp_path, "tune C = 1 within 0.1 .. 10\ngoal C * mean logistic(y * s) + 0.5 * l2sq(w)\n")
+    code, _, err = run(["fit", spec, "--set", "C=50", "-o", tmp_path / "m.json"], capsys)
+    assert code == 1 and "outside its declared range" in err
+    code, _, err = run(["fit", spec, "--set", "D=5", "-o", tmp_path / "m.json"], capsys)
+    assert code == 2 and "no tunable 'D'" in err
+
+
+def test_eval_missing_model(tmp_path, capsys):
+    code, _, err = run(["eval", tmp_path / "none.json"], capsys)
+    assert code == 1 and "none.json" in err
