@@ -185,7 +185,10 @@ class _Resolver:
 
         def walk(e: st.Expr) -> None:
             if isinstance(e, st.Name):
-                if e.id in self.params or e.id in self.tunables or e.id == BUILTIN_TARGET:
+                # learn and tune usually come after the table block, so look at the whole spec
+                later = {i.name for s in self.tree.statements if isinstance(s, st.LearnStmt) for i in s.items} | {
+                    s.name for s in self.tree.statements if isinstance(s, (st.TuneStmt, st.ScoreStmt))}
+                if e.id in self.params or e.id in self.tunables or e.id in later or e.id == BUILTIN_TARGET:
                     self.error("E217", f"a feature is computed from table columns only; '{e.id}' is not a column",
                                e.span, hint="features are fixed transformations of the data")
                 elif e.id not in found:
@@ -242,7 +245,10 @@ class _Resolver:
                 return bad
             return tt.Apply("power", (base,), (("p", float(value)),), e.span, base.shape, base.depends)
         if isinstance(e, st.Aggregate):
+            reported = len(self.errors)
             inner = self.expr(e.operand, loss_env, where)
+            if len(self.errors) > reported:
+                return bad  # the operand is already reported; its stand-in value says nothing of its shape
             if inner.shape.kind == "rows":
                 over = "rows"
             elif inner.shape.kind == "vector":
@@ -456,6 +462,11 @@ class _Resolver:
                                                                  if a.shape.kind == "rows" else ""))
                 return bad
             return tt.Apply(entry.name, args, tuple(options.items()), e.span, SCALAR, a.depends)
+        softplus_arg = _softplus_form(entry.name, args)
+        if softplus_arg is not None:
+            # log(1 + exp(u)) is softplus(u): the same function, in the form the composition rules can
+            # prove convex (and that evaluates without overflow)
+            return tt.Apply("softplus", (softplus_arg,), (), e.span, softplus_arg.shape, softplus_arg.depends)
         shape = SCALAR
         for a in args:
             if a.shape.kind != "scalar":
@@ -537,6 +548,20 @@ class _Resolver:
         return tt.ResolvedSpec(self.source.name, self.source.text, self.table, tuple(self.tunables.values()),
                                tuple(self.params.values()), self.score, goal, goal_span, tuple(constraints),
                                tuple(self.losses))
+
+
+def _softplus_form(name: str, args: tuple[tt.TExpr, ...]) -> tt.TExpr | None:
+    """The u of log(1 + exp(u)), log(exp(u) + 1) or log1p(exp(u)), else None."""
+    def exp_arg(e: tt.TExpr) -> tt.TExpr | None:
+        return e.args[0] if isinstance(e, tt.Apply) and e.entry == "exp" else None
+    if name == "log1p" and len(args) == 1:
+        return exp_arg(args[0])
+    if name == "log" and len(args) == 1 and isinstance(args[0], tt.Add):
+        left, right = args[0].left, args[0].right
+        for one, other in ((left, right), (right, left)):
+            if isinstance(one, tt.Const) and one.value == 1.0 and exp_arg(other) is not None:
+                return exp_arg(other)
+    return None
 
 
 def resolve(tree: st.SpecTree, source: SourceText) -> tt.ResolvedSpec:
