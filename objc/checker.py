@@ -6,7 +6,7 @@ composition rules cannot decide, and the warnings of the trade.
 from __future__ import annotations
 
 import hashlib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Literal
 
 import numpy as np
@@ -185,6 +185,17 @@ def _mono_word(m: Monotonicity) -> str:
 
 def analyse(e: tt.TExpr) -> Facts:
     """Curvature (in the learned parameters), sign and smoothness of a typed expression."""
+    facts = _analyse(e)
+    if facts.sign != Sign.ZERO and e.depends == "const" and not _contains(e, tt.TunableRef):
+        # sign arithmetic cannot tell that 1 - 0.3 is positive or hinge(1) zero; a pure number is evaluated
+        with np.errstate(all="ignore"):
+            v = evaluate(e, _Env([], {}, {}, np.ones(1)))
+        if np.ndim(v) == 0 and np.isfinite(v):
+            facts = replace(facts, sign=Sign.of_value(float(v)))
+    return facts
+
+
+def _analyse(e: tt.TExpr) -> Facts:
     C = Curvature
     if isinstance(e, tt.Const):
         return Facts(C.CONSTANT, Sign.of_value(e.value), True)
@@ -274,6 +285,13 @@ def analyse(e: tt.TExpr) -> Facts:
         args = [(f.curvature, entry.monotonicity(i, f.sign, opts)) for i, f in enumerate(facts)]
         curv, faults = compose(atom_curv, args)
         fault = inner_fault
+        if entry.name == "power" and _power_needs_nonneg(opts["p"]) and not facts[0].sign.is_nonneg \
+                and facts[0].curvature != C.CONSTANT:
+            p = opts["p"]
+            return Facts(C.UNKNOWN, sign, smooth, fault or Fault(
+                e.span, f"'{render(e)}': u^{p:g} is convex only where u >= 0, and the sign of "
+                f"'{render(e.args[0])}' is not known", f"write abs(u)^{p:g} or pos(u)^{p:g} for a convex "
+                "function on the whole line"), z)
         if curv == C.UNKNOWN and fault is None:
             fault = _apply_fault(e, entry, atom_curv, faults, facts)
         return Facts(curv, sign, smooth, fault, z)
@@ -320,6 +338,13 @@ def _apply_fault(e: tt.Apply, entry, atom_curv: Curvature, faults: tuple[Argumen
     else:
         hint = "rewrite so the argument is affine, or use an atom whose monotonicity fits"
     return Fault(e.span, msg, hint)
+
+
+def _power_needs_nonneg(p: float) -> bool:
+    """u^p is convex on the whole line only for even integer p; for other p > 1 and for p < 0 the
+    composition rules hold only on u >= 0 (elsewhere it is concave or undefined)."""
+    even = float(p).is_integer() and int(p) % 2 == 0
+    return (p > 1 and not even) or p < 0
 
 
 def _kink_at_zero_only(e: tt.TExpr) -> bool:
@@ -470,7 +495,9 @@ def find_witness(e: tt.TExpr, spec: tt.ResolvedSpec, seed: int = 0, trials: int 
     best: Witness | None = None
     best_gap = 0.0
     with np.errstate(all="ignore"):
-        if _contains_rows(e) and spec.score is not None:
+        # (only when parameters appear nowhere but in the score: a product with a penalty needs them drawn)
+        score_affine = spec.score is not None and analyse(spec.score.expr).curvature.is_affine
+        if _contains_rows(e) and score_affine and not _contains(_strip_scores(e), tt.ParamRef):
             # the score is affine and data are free, so convexity in the parameters is convexity in the
             # score value of each row: search along that one variable, for each label
             grid = np.concatenate([np.linspace(-6.0, 6.0, 61), rng.uniform(-12.0, 12.0, 60)])
@@ -498,11 +525,13 @@ def find_witness(e: tt.TExpr, spec: tt.ResolvedSpec, seed: int = 0, trials: int 
                                        ", ".join(f"{k2} = {v:g}" for k2, v in tun.items()))
             return best
         base = {c: rng.normal(size=1) for c in cols}
+        for c in cols:
+            base[c] = np.array([1.0 + abs(float(base[c][0]))])  # data away from 0 so products show their shape
         for tun in settings:
             for _ in range(trials // len(settings)):
-                def draw():
-                    return {prm.name: (rng.normal(scale=3.0, size=len(inputs)) if prm.vector else
-                                       float(rng.normal(scale=3.0))) for prm in spec.parameters}
+                def draw(scale=float(rng.choice([0.3, 1.0, 3.0]))):
+                    return {prm.name: (rng.normal(scale=scale, size=len(inputs)) if prm.vector else
+                                       float(rng.normal(scale=scale))) for prm in spec.parameters}
                 pa, pb = draw(), draw()
 
                 def f(params, tun=tun):
@@ -696,6 +725,10 @@ def check(spec: tt.ResolvedSpec, source: SourceText | None = None) -> CheckedObj
                 if r:
                     roles.add(r)
                 losses.append(node.name if isinstance(node, tt.CustomLoss) else node.entry)
+            for node in _contains(body, tt.Mul) + _contains(body, tt.Add):
+                r = loss_role(node)
+                if r in ("margin", "residual"):
+                    roles.add(r)
             if isinstance(body, tt.Apply) and CATALOG[body.entry].kind == "loss" and \
                     loss_role(body.args[0]) == CATALOG[body.entry].role:
                 known = (body.entry, body.options)
@@ -785,7 +818,7 @@ def check(spec: tt.ResolvedSpec, source: SourceText | None = None) -> CheckedObj
                 note = _calibration_note(node)
                 if note:
                     warn("W302", f"custom loss {node.name} {note}", node.definition_span)
-        for tn in _contains(t.core, tt.TunableRef):
+        for tn in _contains(t.expr, tt.TunableRef):
             if tn.low < 0 < tn.high or tn.high <= 0 and tn.low < 0:
                 if t.verdict in ("convex", "affine"):
                     warn("W303", f"tunable '{tn.name}' may be negative ({tn.low:g} .. {tn.high:g})", tn.span,
@@ -950,7 +983,7 @@ def _expanded(spec: tt.ResolvedSpec, terms: list[Term], cinfo: list[ConstraintIn
         lead = "    " if k == 0 else "  + "
         coef = t.coefficient_text
         if t.kind == "rows" and t.body is not None:
-            body = render(t.body).replace("y * s", "y_i * s_i").replace("y - s", "y_i - s_i")
+            body = render(t.body, 3).replace("y * s", "y_i * s_i").replace("y - s", "y_i - s_i")
             agg = "(1 / sum_i c_i) * sum_i c_i * " if t.aggregate == "mean" else "sum_i c_i * "
             core = f"{agg}{body}"
         else:
