@@ -234,7 +234,8 @@ def cmd_fit(args) -> int:
     lines = [f"trained   {spec_path}  on {train.n_rows} rows x {len(train.input_names)} inputs"
              + (f" ({train.dropped} rows dropped for missing values)" if train.dropped else ""),
              f"backend   {result.backend}: {result.method}  ->  {result.status}",
-             f"time      {result.seconds:.3f} s, {result.passes} passes over the data, {result.iterations} iterations",
+             f"time      {result.seconds:.3f} s" + (f", {result.passes} passes over the data" if result.passes else "")
+             + f", {result.iterations} iterations",
              f"optimal   {cert.kind}" + (f": absolute {cert.absolute:.3g}, relative {cert.relative:.3g}"
                                         if cert.absolute is not None else "") + (f" ({cert.note})" if cert.note else ""),
              "", _rule("objective"), f"  {result.objective:.10g}  total"]
