@@ -5,10 +5,23 @@ The public surface:
     from objc import check_text, check_file, SpecError
     checked = check_text(open("spec.objc").read(), "spec.objc")
     checked.verdict, checked.accepted, checked.terms, checked.warnings, checked.expanded
+
+    from objc import fit_spec, load_trained
+    model = fit_spec("spec.objc", backend="numpy")      # or backend="cvxpy"
+    model.predict(X); model.decision_function(X); model.predict_table("new.csv")
+    model.save("out/model.json"); load_trained("out/model.json")
 """
 
 from objc.diagnostics import Diagnostic, SpecError
 from objc.frontend import check_file, check_text
 
 __version__ = "0.1.0"
-__all__ = ["check_text", "check_file", "SpecError", "Diagnostic", "__version__"]
+__all__ = ["check_text", "check_file", "fit_spec", "load_trained", "SpecError", "Diagnostic", "__version__"]
+
+
+def __getattr__(name: str):
+    # training pulls in pandas and the backends; keep `import objc` (and `objc check`) light
+    if name in ("fit_spec", "load_trained", "TrainedModel"):
+        from objc import training
+        return getattr(training, name)
+    raise AttributeError(f"module 'objc' has no attribute {name!r}")

@@ -221,3 +221,84 @@ def bind_for_model(checked: CheckedObjective, document: dict, table: Path, *, ne
 
 def form_for(checked: CheckedObjective, input_names: tuple[str, ...]) -> ScoreForm:
     return score_form(checked, input_names)
+
+
+# ---------------------------------------------------------------- the Python API's model
+
+from dataclasses import dataclass  # noqa: E402
+
+
+@dataclass(frozen=True)
+class TrainedModel:
+    """A trained model: the saved document (schema, verdict, fit report) and the learned parameters.
+
+    `decision_function(X)` and `predict(X)` take raw (unstandardized) arrays whose columns follow
+    `input_names`; `predict_table(path)` reads a table by the model's schema (columns by name)."""
+
+    document: dict
+    params: dict
+    checked: CheckedObjective
+
+    @property
+    def input_names(self) -> tuple[str, ...]:
+        return tuple(self.document["schema"]["inputs"])
+
+    @property
+    def task(self) -> str:
+        return self.document["task"]
+
+    def _standardize(self, X: np.ndarray) -> np.ndarray:
+        X = np.asarray(X, dtype=np.float64)
+        if X.ndim != 2 or X.shape[1] != len(self.input_names):
+            raise ValueError(f"X must have {len(self.input_names)} columns ({', '.join(self.input_names)})")
+        std = self.document["schema"]["standardization"]
+        if std is None:
+            return X
+        return (X - np.asarray(std["means"])) / np.asarray(std["scales"])
+
+    def decision_function(self, X: np.ndarray) -> np.ndarray:
+        return scores(form_for(self.checked, self.input_names), self.params, self._standardize(X))
+
+    def predict(self, X: np.ndarray) -> np.ndarray:
+        s = self.decision_function(X)
+        return np.where(s > 0, 1.0, -1.0) if self.task == "margin" else s
+
+    def predict_table(self, path: str | Path) -> np.ndarray:
+        data = bind_for_model(self.checked, self.document, Path(path), need_target=False)
+        s = scores(form_for(self.checked, self.input_names), self.params, data.X)
+        return np.where(s > 0, 1.0, -1.0) if self.task == "margin" else s
+
+    def save(self, path: str | Path) -> Path:
+        from objc.model_io import save_model
+        return save_model(Path(path), self.document, self.params)
+
+
+def fit_spec(spec: str | Path, *, data: str | Path | None = None, backend: Backend = "numpy",
+             tunables: dict[str, float] | None = None, tol: float = 1e-6, solver: str | None = None,
+             allow_nonconvex: bool = False) -> TrainedModel:
+    """Check a spec file, bind its table (or `data`), train, and evaluate on the training rows and
+    the held-out part. Raises SpecError for a wrong spec or table."""
+    from objc.frontend import check_file
+    spec_path = Path(spec)
+    checked = check_file(spec_path)
+    require_trainable(checked, allow_nonconvex)
+    values = {t.name: t.default for t in checked.spec.tunables}
+    for name, v in (tunables or {}).items():
+        if name not in values:
+            raise ValueError(f"the spec has no tunable '{name}'")
+        values[name] = float(v)
+    train, held, held_label = bind_training(checked, spec_path.parent, Path(data) if data else None)
+    result = run_backend(checked, train, backend, values, tol=tol, solver=solver, allow_nonconvex=allow_nonconvex)
+    form = form_for(checked, train.input_names)
+    train_m = metrics(train.task, train.y, scores(form, result.params, train.X, train.y), train.weights, checked)
+    held_m = None if held is None else metrics(held.task, held.y, scores(form, result.params, held.X, held.y),
+                                               held.weights, checked)
+    doc = model_document(checked, spec_path, train, result, values, train_m, held_m, held_label)
+    return TrainedModel(doc, dict(result.params), checked)
+
+
+def load_trained(path: str | Path) -> TrainedModel:
+    """Read a model that `objc fit` or TrainedModel.save wrote."""
+    from objc.model_io import load_model
+    saved = load_model(Path(path))
+    return TrainedModel(saved.document, saved.params, checked_from_model(saved.document, saved.path))

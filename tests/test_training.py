@@ -1,0 +1,148 @@
+"""Training end to end: metrics against scikit-learn's, the saved-model format, every example spec
+through fit, eval and predict."""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from sklearn import datasets, metrics as skm
+
+import objc
+from objc.cli import main
+from objc.diagnostics import SpecError
+
+ROOT = Path(__file__).resolve().parent.parent
+SPECS = sorted((ROOT / "specs").glob("*.objc"))
+
+
+def _cancer_table(tmp_path: Path) -> Path:
+    # breast cancer: UCI Wisconsin Diagnostic Breast Cancer (Street, Wolberg & Mangasarian 1993), shipped in sklearn
+    d = datasets.load_breast_cancer()
+    X = d.data[:, :6]
+    frame = pd.DataFrame(X, columns=[f"f{i}" for i in range(6)])
+    frame["diag"] = np.where(d.target == 1, "benign", "malignant")
+    frame["wt"] = 1.0 + (np.arange(len(frame)) % 3)
+    path = tmp_path / "cancer.csv"
+    frame.to_csv(path, index=False)
+    return path
+
+
+CANCER_SPEC = """table c from "cancer.csv"
+  target diag: benign -> +1, malignant -> -1
+  inputs like "f*"
+  rowweight wt
+  standardize
+learn w over inputs, b
+score s = w . x + b
+goal mean logistic(y * s) + 0.01 * l2sq(w)
+"""
+
+
+def test_zero_one_error_equals_sklearn_accuracy_complement(tmp_path):
+    _cancer_table(tmp_path)
+    (tmp_path / "c.objc").write_text(CANCER_SPEC)
+    model = objc.fit_spec(tmp_path / "c.objc", backend="cvxpy")
+    m = model.document["training_metrics"]
+    frame = pd.read_csv(tmp_path / "cancer.csv")
+    y = np.where(frame["diag"] == "benign", 1.0, -1.0)
+    pred = model.predict(frame[[f"f{i}" for i in range(6)]].to_numpy())
+    # scikit-learn's accuracy_score with and without sample_weight (its own definition of accuracy)
+    assert m["zero_one_error"] == pytest.approx(1 - skm.accuracy_score(y, pred), abs=1e-12)
+    assert m["zero_one_error_weighted"] == pytest.approx(
+        1 - skm.accuracy_score(y, pred, sample_weight=frame["wt"]), abs=1e-12)
+    cm = skm.confusion_matrix(y, pred, labels=[1.0, -1.0])
+    c = m["confusion"]
+    assert [[c["true_pos"], c["false_neg"]], [c["false_pos"], c["true_neg"]]] == cm.tolist()
+    # the mean logistic loss reported equals scikit-learn's log loss (natural log) with the same weights
+    s = model.decision_function(frame[[f"f{i}" for i in range(6)]].to_numpy())
+    p = 1 / (1 + np.exp(-s))
+    assert m["mean_losses"]["logistic"] == pytest.approx(
+        skm.log_loss(y, p, sample_weight=frame["wt"], labels=[-1.0, 1.0]), rel=1e-9)
+
+
+def test_regression_metrics_match_sklearn(tmp_path):
+    # diabetes: Efron, Hastie, Johnstone & Tibshirani 2004, shipped in sklearn
+    d = datasets.load_diabetes()
+    frame = pd.DataFrame(d.data[:, :4], columns=["age", "sex", "bmi", "bp"])
+    frame["prog"] = d.target
+    frame.to_csv(tmp_path / "d.csv", index=False)
+    (tmp_path / "d.objc").write_text('table d from "d.csv"\n  target prog\n  inputs age, sex, bmi, bp\n'
+                                     'learn w over inputs, b\nscore s = w . x + b\n'
+                                     'goal mean pinball(y - s, 0.8) + 0.01 * l1(w)\n')
+    model = objc.fit_spec(tmp_path / "d.objc", backend="cvxpy")
+    m = model.document["training_metrics"]
+    pred = model.predict(frame[["age", "sex", "bmi", "bp"]].to_numpy())
+    assert m["mae"] == pytest.approx(skm.mean_absolute_error(frame["prog"], pred), rel=1e-12)
+    assert m["rmse"] == pytest.approx(np.sqrt(skm.mean_squared_error(frame["prog"], pred)), rel=1e-12)
+    # scikit-learn's mean_pinball_loss at alpha = 0.8 is the pinball loss objc trained on
+    assert m["mean_losses"]["pinball(t=0.8)"] == pytest.approx(
+        skm.mean_pinball_loss(frame["prog"], pred, alpha=0.8), rel=1e-9)
+    # a quantile-0.8 fit leaves about 80% of rows at or below it (Koenker & Bassett 1978)
+    assert abs(m["coverage"] - 0.8) < 0.03
+
+
+def test_saved_model_round_trip_and_tamper_check(tmp_path):
+    _cancer_table(tmp_path)
+    (tmp_path / "c.objc").write_text(CANCER_SPEC)
+    model = objc.fit_spec(tmp_path / "c.objc", backend="cvxpy")
+    path = model.save(tmp_path / "out" / "m.json")
+    doc = json.loads(path.read_text())
+    assert doc["format"] == "objc-model/1" and doc["verdict"] == "convex"
+    assert doc["schema"]["inputs"] == [f"f{i}" for i in range(6)]
+    assert doc["schema"]["standardization"] is not None and doc["spec"]["text"] == CANCER_SPEC
+    again = objc.load_trained(path)
+    for k, v in model.params.items():
+        np.testing.assert_array_equal(np.asarray(again.params[k]), np.asarray(v))
+    npz = path.with_suffix(".npz")
+    data = bytearray(npz.read_bytes())
+    data[-30] ^= 0xFF
+    npz.write_bytes(bytes(data))
+    with pytest.raises(SpecError, match="checksum"):
+        objc.load_trained(path)
+
+
+def test_predict_matches_columns_by_name(tmp_path, capsys):
+    _cancer_table(tmp_path)
+    (tmp_path / "c.objc").write_text(CANCER_SPEC)
+    assert main(["fit", str(tmp_path / "c.objc"), "--backend", "cvxpy", "-o", str(tmp_path / "m.json"), "--json"]) == 0
+    capsys.readouterr()
+    frame = pd.read_csv(tmp_path / "cancer.csv")
+    shuffled = frame[["wt", "f5", "f3", "f1", "f0", "f2", "f4"]]  # reordered, no target
+    shuffled.to_csv(tmp_path / "new.csv", index=False)
+    assert main(["predict", str(tmp_path / "m.json"), str(frame_path := tmp_path / "cancer.csv"), "-o",
+                 str(tmp_path / "a.csv")]) == 0
+    assert main(["predict", str(tmp_path / "m.json"), str(tmp_path / "new.csv"), "-o", str(tmp_path / "b.csv")]) == 0
+    a, b = pd.read_csv(tmp_path / "a.csv"), pd.read_csv(tmp_path / "b.csv")
+    np.testing.assert_allclose(a["score"], b["score"], rtol=0, atol=1e-12)
+    assert set(a["label"]) <= {"benign", "malignant"}
+    frame.drop(columns=["f2"]).to_csv(tmp_path / "missing.csv", index=False)
+    capsys.readouterr()
+    assert main(["predict", str(tmp_path / "m.json"), str(tmp_path / "missing.csv"), "-o", str(tmp_path / "c.csv")]) == 1
+    err = capsys.readouterr().err
+    assert "f2" in err and "missing.csv" in err
+    assert not (tmp_path / "c.csv").exists()
+    assert frame_path.exists()
+
+
+@pytest.mark.parametrize("spec", SPECS, ids=[p.name for p in SPECS])
+def test_every_example_spec_fits_evaluates_and_predicts_with_cvxpy(tmp_path, capsys, spec):
+    work = tmp_path / "specs"
+    shutil.copytree(ROOT / "specs", work, ignore=shutil.ignore_patterns("refused", "*.py"))
+    target = work / spec.name
+    model = tmp_path / "out" / "model.json"
+    assert main(["fit", str(target), "--backend", "cvxpy", "-o", str(model), "--json"]) == 0
+    fit_doc = json.loads(capsys.readouterr().out)
+    assert np.isfinite(fit_doc["objective"]) and fit_doc["status"].startswith("optimal")
+    assert sum(t["value"] for t in fit_doc["terms"]) == pytest.approx(fit_doc["objective"], rel=1e-6, abs=1e-9)
+    assert main(["eval", str(model), "--json"]) == 0
+    ev = json.loads(capsys.readouterr().out)["metrics"]
+    assert ("zero_one_error" in ev) == (fit_doc["training_metrics"].get("zero_one_error") is not None)
+    tb = objc.check_file(target).spec.table
+    assert main(["predict", str(model), str(work / tb.path), "-o", str(tmp_path / "p.csv"), "--json"]) == 0
+    pred = pd.read_csv(tmp_path / "p.csv")
+    assert len(pred) > 0 and np.isfinite(pred.iloc[:, 1]).all()
