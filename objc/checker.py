@@ -839,6 +839,14 @@ def check(spec: tt.ResolvedSpec, source: SourceText | None = None) -> CheckedObj
     if overall == Curvature.AFFINE and not spec.constraints:
         warn("W306", "the goal is affine in the learned parameters: it is unbounded below unless constraints "
              "bound it", spec.goal_span)
+    if spec.table is not None:
+        columns = set(spec.table.explicit_inputs() or ()) | {i.text for i in spec.table.inputs if i.kind == "column"}
+        for p in list(spec.parameters) + list(spec.tunables):
+            if p.name in columns:
+                warn("W308", f"'{p.name}' names both an input column and a {'tunable' if isinstance(p, tt.Tunable) else 'learned parameter'}; "
+                     f"in expressions it means the {'tunable' if isinstance(p, tt.Tunable) else 'parameter'}",
+                     p.span, hint=f"use x[{p.name}] for the column, or rename the "
+                     f"{'tunable' if isinstance(p, tt.Tunable) else 'parameter'}")
     used_params = {p.name for p in _contains(spec.goal, tt.ParamRef)} | (
         {p.name for p in _contains(spec.score.expr, tt.ParamRef)} if spec.score else set())
     for p in spec.parameters:

@@ -16,8 +16,14 @@ def check_text(text: str, source_name: str = "<spec>") -> CheckedObjective:
     a readable spec that is not convex comes back with `errors` set and `accepted` False."""
     source = SourceText(source_name, text)
     tree = parse(source)
-    resolved = resolve(tree, source)
-    return check(resolved, source)
+    try:
+        resolved = resolve(tree, source)
+        return check(resolved, source)
+    except RecursionError:
+        # custom losses are inlined where used, so a long chain of them can nest deeper than the parser saw
+        raise SpecError((Diagnostic("E106", "the spec nests too deeply once its custom losses are expanded",
+                                    Span(1, 1, 1, 2), hint="define fewer losses in terms of each other",
+                                    source_name=source_name),), source) from None
 
 
 def check_file(path: str | Path) -> CheckedObjective:

@@ -5,6 +5,7 @@ parameter-level expressions apart. Every problem is collected; one SpecError is 
 from __future__ import annotations
 
 import difflib
+import math
 from dataclasses import replace
 
 from objc import syntax_tree as st
@@ -124,7 +125,7 @@ class _Resolver:
                                        p.span, hint=f"write {p.value} -> +1 or {p.value} -> -1")
                     if len(set(map(str, values))) != len(values):
                         self.error("E210", "the same target value is mapped twice", s.span)
-                    if {p.label for p in s.labels} != {1.0, -1.0}:
+                    if all(p.label in (1.0, -1.0) for p in s.labels) and {p.label for p in s.labels} != {1.0, -1.0}:
                         self.error("E211", "the label map must send at least one value to +1 and one to -1", s.span)
                     parts["label_map"] = tt.LabelMap(tuple((p.value, p.label) for p in s.labels), s.span)
         elif isinstance(s, st.InputsClause):
@@ -220,6 +221,8 @@ class _Resolver:
         """Resolve one expression; on an error, record it and return a harmless constant."""
         bad = tt.Const(0.0, e.span)
         if isinstance(e, st.Number):
+            if not math.isfinite(e.value):
+                self.error("E248", "this number is too large to represent", e.span, hint="use a smaller value")
             return tt.Const(e.value, e.span)
         if isinstance(e, st.Name):
             return self._name(e, loss_env, where) or bad
@@ -242,6 +245,14 @@ class _Resolver:
                 return bad
             if base.shape.kind == "matrix":
                 self.error("E220", "x is the input matrix; raise a column or a feature instead", base.span)
+                return bad
+            if not math.isfinite(value):
+                self.error("E248", "this number is too large to represent", exp.span, hint="use a smaller value")
+                return bad
+            folded = base.value if isinstance(base, tt.Const) else (
+                -base.operand.value if isinstance(base, tt.Neg) and isinstance(base.operand, tt.Const) else None)
+            if folded is not None and folded < 0 and not float(value).is_integer():
+                self.error("E249", f"a negative number to the power {value:g} is not a real number", e.span)
                 return bad
             return tt.Apply("power", (base,), (("p", float(value)),), e.span, base.shape, base.depends)
         if isinstance(e, st.Aggregate):
@@ -319,9 +330,12 @@ class _Resolver:
         return None
 
     def _binary(self, e: st.Binary, loss_env, where: str) -> tt.TExpr:
+        reported = len(self.errors)
         left = self.expr(e.left, loss_env, where)
         right = self.expr(e.right, loss_env, where)
         bad = tt.Const(0.0, e.span)
+        if len(self.errors) > reported:
+            return bad  # a side is already reported; its stand-in says nothing of its shape
         dep = _max_dep(left, right)
         if e.op == ".":
             return self._dot(left, right, e.span) or bad
@@ -432,7 +446,10 @@ class _Resolver:
             self.error("E237", f"{e.func} takes {entry.arity} argument(s), got {len(e.args)}", e.span,
                        hint=f"{e.func}: {entry.formula}")
             return bad
+        reported = len(self.errors)
         args = tuple(self.expr(a, loss_env, where) for a in e.args[:n_expr])
+        if len(self.errors) > reported:
+            return bad  # an argument is already reported; its stand-in says nothing of its shape
         literal_options = []
         for a in e.args[n_expr:]:
             v = a.value if isinstance(a, st.Number) else (
@@ -544,7 +561,8 @@ class _Resolver:
         for name, stmt in self.losses.items():  # a loss defined but never used is still checked
             self.expr(stmt.expr, {stmt.param: tt.Const(0.0, stmt.span)}, "loss")
         if self.errors:
-            raise SpecError(tuple(self.errors), self.source)
+            # a loss body is resolved at each use and once more on its own: report each problem once
+            raise SpecError(tuple(dict.fromkeys(self.errors)), self.source)
         return tt.ResolvedSpec(self.source.name, self.source.text, self.table, tuple(self.tunables.values()),
                                tuple(self.params.values()), self.score, goal, goal_span, tuple(constraints),
                                tuple(self.losses))

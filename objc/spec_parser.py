@@ -6,6 +6,7 @@ the text parsed again, so every broken statement in a spec is reported in one go
 
 from __future__ import annotations
 
+import difflib
 import re
 from functools import lru_cache
 from importlib import resources
@@ -32,6 +33,8 @@ _TERMINAL_WORDS = {
 }
 
 MAX_SYNTAX_ERRORS = 20
+# Later stages walk expressions recursively; a deeper one gets a message instead of a RecursionError.
+MAX_NESTING = 100
 
 
 def grammar_text() -> str:
@@ -209,7 +212,8 @@ def _expected_words(expected) -> str:
             continue
         else:
             words.append(t.lower())
-    words = sorted(set(words))
+    # operators and punctuation first: after a broken expression they are the likely fix
+    words = sorted(set(words), key=lambda w: (w.startswith("'"), w))
     if len(words) > 8:
         return ", ".join(words[:8]) + ", ..."
     return ", ".join(words)
@@ -260,6 +264,16 @@ def _diagnose(err: lark.exceptions.LarkError, source: SourceText) -> Diagnostic:
             msg = f"the statement before '{word}' is unfinished"
             hint = f"before '{word}' it expected {_expected_words(err.expected)}"
             return Diagnostic("E104", msg, span, hint=hint, source_name=source.name)
+        starters = sorted(k for k in STATEMENT_KEYWORDS if k.upper() in err.expected)
+        if at_line_start and tok.type == "NAME" and starters:
+            close = difflib.get_close_matches(word, STATEMENT_KEYWORDS, n=1, cutoff=0.5)
+            hint = ("a statement starts with one of: " + ", ".join(f"'{k}'" for k in starters) +
+                    (f"; did you mean '{close[0]}'?" if close else ""))
+            if "goal" not in starters:
+                hint += "; the objective is written `goal ...`"
+            else:
+                hint += " (the objective is written `goal ...`)"
+            return Diagnostic("E103", msg, span, hint=hint, source_name=source.name)
         if word in RESERVED_WORDS and "NAME" in err.expected:
             msg = f"'{word}' is a reserved word and cannot be used as a name here"
             hint = f"pick another name, or quote a column name: \"{word}\""
@@ -294,6 +308,15 @@ def parse(source: SourceText) -> st.SpecTree:
             text = blanked
     if diagnostics:
         raise SpecError(tuple(diagnostics), source)
+    for stmt in tree.children:
+        stack = [(stmt, 1)]
+        while stack:
+            node, depth = stack.pop()
+            if depth > MAX_NESTING:
+                raise SpecError((Diagnostic("E105", f"this statement nests more than {MAX_NESTING} levels deep",
+                                            _span(stmt.meta), hint="split it: define a `loss`, or shorten the sum",
+                                            source_name=source.name),), source)
+            stack.extend((c, depth + 1) for c in node.children if isinstance(c, lark.Tree))
     try:
         return _ToTree().transform(tree)
     except lark.exceptions.VisitError as err:  # a transformer bug, reported rather than leaked

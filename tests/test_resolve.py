@@ -1,0 +1,135 @@
+"""Resolution errors as a practitioner meets them: the exact line and column, the words that say
+what is wrong, and every problem of a spec reported together.
+
+Each broken spec below is the same small valid spec with one thing changed, so the location of the
+mistake can be read off the text; the check also compares the text under the reported span with the
+offending word.
+"""
+
+from __future__ import annotations
+
+import pytest
+
+from objc import SpecError, check_text
+from objc.diagnostics import Diagnostic
+
+HEADER = """table rows from "rows.csv"
+  target label: yes -> +1, no -> -1
+  inputs a, b, c
+learn w over inputs, b
+score s = w . x + b
+"""
+GOAL_LINE = HEADER.count("\n") + 1  # the line of a goal appended to HEADER
+
+
+def errors_of(text: str) -> tuple[Diagnostic, ...]:
+    with pytest.raises(SpecError) as info:
+        check_text(text, "broken.objc")
+    err = info.value
+    assert err.diagnostics
+    # the rendered message carries file, line and column for a person to find
+    first = err.diagnostics[0]
+    assert f"broken.objc:{first.span.line}:{first.span.column}" in str(err)
+    return err.diagnostics
+
+
+def snippet(text: str, d: Diagnostic) -> str:
+    line = text.split("\n")[d.span.line - 1]
+    end = d.span.end_column if d.span.end_line == d.span.line else len(line) + 1
+    return line[d.span.column - 1:end - 1]
+
+
+# (id, spec, code, line, column, text under the span or None, words the message or hint must hold)
+CASES = [
+    ("misspelled loss", HEADER + "goal mean hinje(y * s)\n",
+     "E236", GOAL_LINE, 11, "hinje", ["unknown function 'hinje'", "did you mean 'hinge'"]),
+    ("misspelled norm", HEADER + "goal mean hinge(y * s) + 0.5 * l2sqr(w)\n",
+     "E236", GOAL_LINE, 32, "l2sqr", ["did you mean 'l2sq'"]),
+    ("unknown name", HEADER + "goal mean hinge(y * z)\n",
+     "E227", GOAL_LINE, 21, "z", ["unknown name 'z'"]),
+    ("unknown name close to a tunable",
+     HEADER + "tune lam = 0.1 within 0 .. 1\ngoal mean hinge(y * s) + lamb * l2sq(w)\n",
+     "E227", GOAL_LINE + 1, 26, "lamb", ["unknown name 'lamb'", "did you mean 'lam'"]),
+    ("duplicate declaration", HEADER + "tune w = 1 within 0 .. 2\ngoal l2sq(w)\n",
+     "E202", GOAL_LINE, 1, None, ["'w' is declared twice", "line 4"]),
+    ("declaring a built-in name", HEADER + "tune y = 1 within 0 .. 2\ngoal l2sq(w)\n",
+     "E201", GOAL_LINE, 1, None, ["'y' is built in"]),
+    ("catalog name redeclared", HEADER + "loss hinge(m) = max(0, 1 - m)\ngoal l2sq(w)\n",
+     "E203", GOAL_LINE, 1, None, ["catalog function"]),
+    ("tunable default outside its range", HEADER + "tune C = 5 within 0 .. 2\ngoal C * l2sq(w)\n",
+     "E205", GOAL_LINE, 1, None, ["default 5 outside its range 0 .. 2"]),
+    ("label mapped to 2", HEADER.replace("no -> -1", "no -> 2") + "goal l2sq(w)\n",
+     "E209", 2, 28, "no -> 2", ["maps to 2", "+1 or -1"]),
+    ("missing goal", HEADER,
+     "E244", 1, 1, None, ["no `goal`"]),
+    ("two goals", HEADER + "goal l2sq(w)\ngoal l1(w)\n",
+     "E245", GOAL_LINE + 1, 1, "goal l1(w)", ["one goal"]),
+    ("norm of a per-row expression", HEADER + "goal l1(y * s)\n",
+     "E240", GOAL_LINE, 6, "l1(y * s)", ["norm of a weight vector", "one value per row"]),
+    ("mean of a scalar", HEADER + "goal mean l2sq(w)\n",
+     "E221", GOAL_LINE, 6, "mean l2sq(w)", ["`mean` needs one value per row or a vector", "a single number"]),
+    ("x outside a dot product", HEADER + "goal mean hinge(y * s) + l2sq(w) * x\n",
+     "E228", GOAL_LINE, 36, "x", ["input matrix", "dot product"]),
+    ("x added in the score", HEADER.replace("w . x + b", "x + b") + "goal l2sq(w)\n",
+     "E228", 5, 11, "x", ["dot product"]),
+    ("exponent not a literal", HEADER + "tune C = 1 within 0 .. 2\ngoal l2sq(w) ^ C\n",
+     "E219", GOAL_LINE + 1, 16, "C", ["exponent must be a literal number"]),
+    ("huber option not a literal", HEADER + "tune C = 1 within 0 .. 2\ngoal mean huber(y - s, C)\n",
+     "E238", GOAL_LINE + 1, 24, "C", ["setting of huber must be a literal number"]),
+    ("huber option out of range", HEADER + "goal mean huber(y - s, -1)\n",
+     "E239", GOAL_LINE, 11, "huber(y - s, -1)", ["huber's d must lie in (0, inf]", "-1"]),
+    ("pinball t = 1.5", HEADER + "goal mean pinball(y - s, 1.5)\n",
+     "E239", GOAL_LINE, 11, "pinball(y - s, 1.5)", ["pinball's t must lie in (0, 1)", "1.5"]),
+    ("feature using a learned parameter",
+     HEADER.replace("  inputs a, b, c\n", "  inputs a, b, c\n  feature wa = log1p(w)\n") + "goal l2sq(w)\n",
+     "E217", 4, 22, "w", ["computed from table columns only", "'w'"]),
+    ("feature using the target",
+     HEADER.replace("  inputs a, b, c\n", "  inputs a, b, c\n  feature ya = y * a\n") + "goal l2sq(w)\n",
+     "E217", 4, 16, "y", ["computed from table columns only"]),
+    ("loss body using a learned parameter", HEADER + "loss bad(m) = max(0, 1 - m) + b\ngoal mean bad(y * s)\n",
+     "E222", GOAL_LINE, 31, "b", ["one variable", "'b'"]),
+    ("selecting an unknown input", HEADER + "goal l1(w[a, d])\n",
+     "E234", GOAL_LINE, 9, "w[a, d]", ["'d' is not one of the inputs"]),
+    ("group_l2 without groups", HEADER + "goal group_l2(w)\n",
+     "E242", GOAL_LINE, 6, "group_l2(w)", ["declares no `group`"]),
+    ("table clause without a table", "inputs a, b\nlearn w over inputs\ngoal l2sq(w)\n",
+     "E207", 1, 1, "inputs a, b", ["no `table` statement"]),
+    ("y without a target", HEADER.replace("  target label: yes -> +1, no -> -1\n", "")
+     + "goal mean hinge(y * s)\n", "E225", GOAL_LINE - 1, 17, "y", ["no `target` clause"]),
+    ("score referring to itself", HEADER.replace("w . x + b", "w . x + s") + "goal l2sq(w)\n",
+     "E223", 5, 19, "s", ["cannot refer to itself"]),
+]
+
+
+@pytest.mark.parametrize("text, code, line, column, under, words", [c[1:] for c in CASES],
+                         ids=[c[0] for c in CASES])
+def test_error_location_and_message(text: str, code: str, line: int, column: int, under, words) -> None:
+    diags = errors_of(text)
+    assert [d.code for d in diags] == [code], [(d.code, d.message) for d in diags]
+    d = diags[0]
+    assert (d.span.line, d.span.column) == (line, column), d.span
+    if under is not None:
+        assert snippet(text, d) == under
+    said = d.message + " " + d.hint + " " + " ".join(d.notes)
+    for w in words:
+        assert w in said, said
+
+
+def test_several_errors_are_reported_together() -> None:
+    text = HEADER + "tune C = 5 within 0 .. 2\ngoal mean hinje(y * z) + l1(y * s)\ngoal l1(w)\n"
+    diags = errors_of(text)
+    got = sorted((d.span.line, d.span.column, d.code) for d in diags)
+    assert [(c, line, col) for line, col, c in got] == [("E205", GOAL_LINE, 1), ("E236", GOAL_LINE + 1, 11), ("E240", GOAL_LINE + 1, 26),
+                   ("E245", GOAL_LINE + 2, 1)]
+
+
+def test_an_error_inside_mean_is_not_reported_twice() -> None:
+    # a misspelled loss inside `mean` is one mistake: no second message about what `mean` received
+    diags = errors_of(HEADER + "goal mean hinje(y * s) + mean pinball(y - s, 2)\n")
+    assert [d.code for d in diags] == ["E236", "E239"]
+
+
+def test_the_unbroken_spec_resolves() -> None:
+    # the same header with a valid goal resolves: each case above fails for its one change only
+    result = check_text(HEADER + "goal mean hinge(y * s) + 0.5 * l2sq(w)\n", "ok.objc")
+    assert result.accepted
