@@ -338,6 +338,123 @@ def cmd_predict(args) -> int:
     return EXIT_OK
 
 
+# ---------------------------------------------------------------- sweep / plot
+
+def _parse_span(text: str | None, t) -> tuple[float, float]:
+    if text is None:
+        return t.low, t.high
+    lo, sep, hi = text.partition("..")
+    try:
+        if not sep:
+            raise ValueError
+        return float(lo), float(hi)
+    except ValueError:
+        raise UsageError(f"--span takes LOW..HIGH, e.g. 0.01..100; got '{text}'") from None
+
+
+def cmd_sweep(args) -> int:
+    from objc.frontend import check_file
+    from objc import training
+    spec_path = Path(args.spec)
+    checked = check_file(spec_path)
+    training.require_trainable(checked)
+    known = {t.name: t for t in checked.spec.tunables}
+    if args.tunable not in known:
+        raise UsageError(f"the spec has no tunable '{args.tunable}' (tunables: {', '.join(known) or 'none'})")
+    t = known[args.tunable]
+    low, high = _parse_span(args.span, t)
+    if not (t.low <= low <= high <= t.high):
+        raise SpecError((Diagnostic("E402", f"the span {low:g} .. {high:g} leaves {t.name}'s declared range "
+                                    f"{t.low:g} .. {t.high:g}", t.span, hint="sweep inside the declared range, or "
+                                    "widen it in the spec", source_name=checked.source.name),), checked.source)
+    if args.steps < 1:
+        raise UsageError("--steps must be at least 1")
+    base = _parse_settings(args.set, checked)
+    values = training.sweep_grid(low, high, args.steps, args.linear)
+    show = None
+    if not args.json and sys.stderr.isatty():
+        def show(k, total, point):
+            sys.stderr.write(f"\r  sweeping {t.name}: {k}/{total}  ({t.name} = {point['value']:.4g})   ")
+            sys.stderr.flush()
+    result = training.sweep(checked, spec_path.parent, t.name, values, backend=args.backend,
+                            data_path=Path(args.data) if args.data else None, tunables=base, tol=args.tol,
+                            solver=args.solver, progress=show)
+    if show:
+        sys.stderr.write("\r" + " " * 60 + "\r")
+    written = []
+    if args.plot:
+        from objc.plots import sweep_curve
+        written.append(str(sweep_curve(result, Path(args.plot))))
+    if args.save_best:
+        from objc.model_io import save_model
+        best = result["best"]["value"]
+        setting = dict(base, **{t.name: best})
+        train, held, held_label = training.bind_training(checked, spec_path.parent, Path(args.data) if args.data else None)
+        fit = training.run_backend(checked, train, args.backend, setting, tol=args.tol, solver=args.solver)
+        form = training.form_for(checked, train.input_names)
+        tm = training.metrics(train.task, train.y, training.scores(form, fit.params, train.X, train.y), train.weights,
+                              checked)
+        hm = None if held is None else training.metrics(held.task, held.y, training.scores(
+            form, fit.params, held.X, held.y), held.weights, checked)
+        doc = training.model_document(checked, spec_path, train, fit, setting, tm, hm, held_label)
+        written.append(str(save_model(Path(args.save_best), doc, fit.params)))
+    if args.json:
+        _emit_json(dict(result, command="sweep", ok=True, written=written))
+        return EXIT_OK
+    key = "held" if result["points"][0]["held"] is not None else "train"
+    lines = [f"sweep     {t.name} over {len(values)} values, {low:g} .. {high:g}"
+             f" ({'linear' if args.linear or low <= 0 else 'log'} grid), {result['backend']} backend, warm starts",
+             f"ranked    by {_metric_label(result['metric'])} on {result['ranked_on']}", "",
+             f"  {t.name:>12}  {'objective':>14}  {'training':>10}  {'held out':>10}  {'certificate':>11}  passes"]
+    for k, pnt in enumerate(result["points"]):
+        mark = "  <- chosen" if k == result["best"]["index"] else ""
+        rel = pnt["certificate"]["relative"]
+        held = "-" if pnt["held"] is None else f"{pnt['held']:.4f}"
+        lines.append(f"  {pnt['value']:>12.5g}  {pnt['objective']:>14.8g}  {pnt['train']:>10.4f}  {held:>10}  "
+                     f"{'-' if rel is None else format(rel, '.1e'):>11}  {pnt['passes'] or '-':>6}{mark}")
+    lines += [f"  wrote {w}" for w in written]
+    print("\n".join(lines))
+    return EXIT_OK
+
+
+def _metric_label(metric: str) -> str:
+    return {"zero_one_error": "0-1 error", "rmse": "RMSE"}.get(metric, metric.replace("mean_losses:", "mean "))
+
+
+def cmd_plot(args) -> int:
+    from objc import plots
+    out = Path(args.output)
+    if args.kind == "losses":
+        from objc.frontend import check_file
+        checked = check_file(args.source)
+        written = plots.loss_curves(checked, out)
+    elif args.kind == "convergence":
+        from objc import training
+        model = training.load_trained(args.source)
+        history = model.document["fit"].get("history") or []
+        if len(history) < 2:
+            raise SpecError((Diagnostic("P601", "this model holds no convergence history (the cvxpy backend "
+                                        "records none)", NO_SPAN, hint="fit with the numpy backend",
+                                        source_name=str(args.source)),))
+        written = plots.convergence_curve(history, out, f"convergence of {Path(args.source).name}: "
+                                          f"{model.document['fit']['method']}")
+    else:
+        try:
+            doc = json.loads(Path(args.source).read_text(encoding="utf-8"))
+            if doc.get("command") != "sweep":
+                raise ValueError("not the output of `objc sweep --json`")
+        except (OSError, ValueError) as err:
+            raise SpecError((Diagnostic("P602", f"cannot read a sweep from {args.source}: {err}", NO_SPAN,
+                                        hint="save `objc sweep SPEC T --json > sweep.json` first",
+                                        source_name=str(args.source)),)) from None
+        written = plots.sweep_curve(doc, out)
+    if args.json:
+        _emit_json({"command": "plot", "ok": True, "kind": args.kind, "output": str(written)})
+    else:
+        print(f"wrote {written}")
+    return EXIT_OK
+
+
 # ---------------------------------------------------------------- main
 
 def _parser() -> argparse.ArgumentParser:
@@ -379,10 +496,30 @@ def _parser() -> argparse.ArgumentParser:
     pr.add_argument("table")
     pr.add_argument("-o", "--output", required=True, help="CSV file to write")
     common(pr)
+    sw = sub.add_parser("sweep", help="fit over a grid of one tunable with warm starts; rank by held-out rows")
+    sw.add_argument("spec")
+    sw.add_argument("tunable")
+    sw.add_argument("--span", help="LOW..HIGH (default: the tunable's declared range)")
+    sw.add_argument("--steps", type=int, default=9, help="how many values (default 9)")
+    sw.add_argument("--linear", action="store_true", help="evenly spaced values instead of a log grid")
+    sw.add_argument("--data", help="use this table instead of the one the spec names")
+    sw.add_argument("--backend", choices=["numpy", "cvxpy"], default="numpy")
+    sw.add_argument("--solver", help="cvxpy backend: the solver to use")
+    sw.add_argument("--tol", type=float, default=1e-6)
+    sw.add_argument("--set", action="append", metavar="NAME=VALUE", help="hold another tunable at a value")
+    sw.add_argument("--plot", metavar="PNG", help="also draw the sweep to this PNG file")
+    sw.add_argument("--save-best", metavar="MODEL", help="refit at the chosen value and save the model")
+    common(sw)
+    pl = sub.add_parser("plot", help="draw a PNG: a spec's losses, a model's convergence, or a sweep")
+    pl.add_argument("kind", choices=["losses", "convergence", "sweep"])
+    pl.add_argument("source", help="losses: a spec; convergence: a model; sweep: the JSON of `objc sweep --json`")
+    pl.add_argument("-o", "--output", required=True, help="PNG file to write")
+    common(pl)
     return p
 
 
-COMMANDS = {"check": cmd_check, "build": cmd_build, "fit": cmd_fit, "eval": cmd_eval, "predict": cmd_predict}
+COMMANDS = {"check": cmd_check, "build": cmd_build, "fit": cmd_fit, "eval": cmd_eval, "predict": cmd_predict,
+            "sweep": cmd_sweep, "plot": cmd_plot}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -302,3 +302,75 @@ def load_trained(path: str | Path) -> TrainedModel:
     from objc.model_io import load_model
     saved = load_model(Path(path))
     return TrainedModel(saved.document, saved.params, checked_from_model(saved.document, saved.path))
+
+
+# ---------------------------------------------------------------- sweeps
+
+def sweep_grid(low: float, high: float, steps: int, linear: bool = False) -> list[float]:
+    """`steps` values from low to high: evenly spaced on a log scale when both ends are positive
+    (hyperparameters that weigh terms act multiplicatively), else evenly spaced."""
+    if steps < 2:
+        return [float(low)]
+    if not linear and low > 0 and high > 0:
+        return [float(v) for v in np.geomspace(low, high, steps)]
+    return [float(v) for v in np.linspace(low, high, steps)]
+
+
+def validation_metric(checked: CheckedObjective, task: str) -> str:
+    """What a sweep ranks by: the 0-1 error for classification; for regression the mean of the
+    trained residual loss where there is one (pinball at its quantile, Huber at its threshold), else RMSE."""
+    if task == "margin":
+        return "zero_one_error"
+    for t in checked.terms:
+        if t.known_loss and CATALOG[t.known_loss[0]].role == "residual":
+            name, opts = t.known_loss
+            return "mean_losses:" + name + ("(" + ", ".join(f"{k}={v:g}" for k, v in opts) + ")" if opts else "")
+    return "rmse"
+
+
+def _metric_value(m: dict, metric: str) -> float:
+    if metric.startswith("mean_losses:"):
+        return float(m["mean_losses"][metric.split(":", 1)[1]])
+    return float(m[metric])
+
+
+def sweep(checked: CheckedObjective, spec_dir: Path, tunable: str, values: list[float], *,
+          backend: Backend = "numpy", data_path: Path | None = None, tunables: dict[str, float] | None = None,
+          tol: float = 1e-6, solver: str | None = None, progress: Callable | None = None) -> dict:
+    """Fit once per value of one tunable, warm-starting each fit from the previous answer, and rank
+    the values by the held-out figure (or the training figure when the spec holds nothing out)."""
+    known = {t.name: t for t in checked.spec.tunables}
+    base = {n: t.default for n, t in known.items()}
+    base.update(tunables or {})
+    train, held, held_label = bind_training(checked, spec_dir, data_path)
+    form = form_for(checked, train.input_names)
+    metric = validation_metric(checked, train.task)
+    points = []
+    theta = None
+    built = None
+    if backend == "cvxpy":
+        from objc.backends import cvxpy_problem
+        built = cvxpy_problem.build_problem(checked, train.X, train.y, train.weights, train.input_names, base)
+    for k, v in enumerate(values):
+        setting = dict(base, **{tunable: float(v)})
+        if built is not None:
+            from objc.backends import cvxpy_problem
+            result = cvxpy_problem.solve_build(built, setting, solver=solver, warm_start=k > 0)
+        else:
+            result = run_backend(checked, train, backend, setting, tol=tol, theta0=theta)
+            theta = theta_from_params(form, result.params)
+        tm = metrics(train.task, train.y, scores(form, result.params, train.X, train.y), train.weights, checked)
+        hm = None if held is None else metrics(held.task, held.y, scores(form, result.params, held.X, held.y),
+                                               held.weights, checked)
+        points.append({"value": float(v), "objective": result.objective, "status": result.status,
+                       "train": _metric_value(tm, metric), "held": None if hm is None else _metric_value(hm, metric),
+                       "certificate": {"kind": result.certificate.kind, "relative": result.certificate.relative},
+                       "passes": result.passes, "seconds": result.seconds, "params": result.params})
+        if progress is not None:
+            progress(k + 1, len(values), points[-1])
+    key = "held" if held is not None else "train"
+    best_i = min(range(len(points)), key=lambda i: (points[i][key], i))
+    return {"tunable": tunable, "metric": metric, "ranked_on": held_label or "the training rows (nothing is held out)",
+            "backend": backend, "points": points, "best": {"value": points[best_i]["value"], "index": best_i,
+                                                           key: points[best_i][key]},
+            "input_names": list(train.input_names)}

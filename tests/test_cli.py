@@ -197,3 +197,65 @@ def test_set_outside_declared_range(tmp_path, capsys):
 def test_eval_missing_model(tmp_path, capsys):
     code, _, err = run(["eval", tmp_path / "none.json"], capsys)
     assert code == 1 and "none.json" in err
+
+
+# ---------------------------------------------------------------- sweep and plot
+
+SWEEP_SPEC = """table t from "t.csv"
+  target late: yes -> +1, no -> -1
+  inputs a, b, c
+  holdout 25% seed 3
+tune lam = 0.1 within 0.001 .. 10
+learn w over inputs, b
+score s = w . x + b
+goal mean logistic(y * s) + lam * l2sq(w)
+"""
+
+
+def test_sweep_ranks_by_held_out_rows_and_matches_single_fits(tmp_path, capsys):
+    _write_table(tmp_path / "t.csv", _good_rows(120, seed=4))
+    spec = tmp_path / "sw.objc"
+    spec.write_text(SWEEP_SPEC)
+    code, out, _ = run(["sweep", spec, "lam", "--span", "0.001..1", "--steps", "4", "--backend", "cvxpy",
+                        "--json", "--plot", tmp_path / "sweep.png", "--save-best", tmp_path / "best.json"], capsys)
+    assert code == 0
+    doc = json.loads(out)
+    values = [p["value"] for p in doc["points"]]
+    np.testing.assert_allclose(values, np.geomspace(0.001, 1, 4))
+    held = [p["held"] for p in doc["points"]]
+    assert doc["best"]["held"] == min(held) and doc["best"]["value"] == values[held.index(min(held))]
+    # each point of the warm-started sweep is the same optimum as a fresh fit at that value
+    for p in doc["points"][1:3]:
+        code, out, _ = run(["fit", spec, "--backend", "cvxpy", "--set", f"lam={p['value']!r}", "-o",
+                            tmp_path / "one.json", "--json"], capsys)
+        assert json.loads(out)["objective"] == pytest.approx(p["objective"], rel=1e-6)
+    assert (tmp_path / "sweep.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    best = json.loads((tmp_path / "best.json").read_text())
+    assert best["tunables"]["lam"] == doc["best"]["value"]
+    # the sweep's JSON can be drawn again later
+    (tmp_path / "sweep.json").write_text(json.dumps(doc))
+    assert run(["plot", "sweep", tmp_path / "sweep.json", "-o", tmp_path / "again.png"], capsys)[0] == 0
+
+
+def test_sweep_span_outside_declared_range(tmp_path, capsys):
+    _write_table(tmp_path / "t.csv", _good_rows(60))
+    spec = tmp_path / "sw.objc"
+    spec.write_text(SWEEP_SPEC)
+    code, _, err = run(["sweep", spec, "lam", "--span", "0.0001..1"], capsys)
+    assert code == 1 and "declared range" in err
+    assert run(["sweep", spec, "mu"], capsys)[0] == 2
+    assert run(["sweep", spec, "lam", "--span", "oops"], capsys)[0] == 2
+
+
+def test_plot_losses_writes_a_png(tmp_path, capsys):
+    spec = _spec(tmp_path, "loss blend(m) = 0.5 * max(0, 1 - m)^2 + 0.5 * log(1 + exp(-m))\n"
+                           "goal mean blend(y * s) + 0.8 * mean hinge(y * s) + 0.01 * l2sq(w)\n")
+    code, out, _ = run(["plot", "losses", spec, "-o", tmp_path / "l.png", "--json"], capsys)
+    assert code == 0 and json.loads(out)["output"].endswith("l.png")
+    assert (tmp_path / "l.png").read_bytes()[:4] == b"\x89PNG"
+
+
+def test_plot_sweep_rejects_other_json(tmp_path, capsys):
+    (tmp_path / "x.json").write_text("{}")
+    code, _, err = run(["plot", "sweep", tmp_path / "x.json", "-o", tmp_path / "x.png"], capsys)
+    assert code == 1 and "P602" in err and not (tmp_path / "x.png").exists()

@@ -1,0 +1,114 @@
+"""PNG plots a person can open: the goal's per-row losses against the margin (or residual), a
+sweep's validation curve, and a fit's convergence. matplotlib draws them off-screen (Agg)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from objc import typed_tree as tt
+from objc.checker import CheckedObjective, _Env, _rows_body, evaluate, render
+
+# our own palette: ink for the 0-1 reference, warm-to-cool for the terms
+_INK = "#2b2b2b"
+_PALETTE = ("#c8553d", "#2a7f62", "#3d5a98", "#d8a31a", "#7a4b94", "#1f9aa8", "#8c6d46")
+
+
+def _figure(title: str):
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    fig, ax = plt.subplots(figsize=(7.2, 4.4), dpi=120)
+    ax.set_title(title, loc="left", fontsize=11)
+    ax.grid(True, color="#e3e0da", linewidth=0.8)
+    ax.set_facecolor("#fbfaf7")
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    return fig, ax, plt
+
+
+def _save(fig, plt, out: Path) -> Path:
+    from objc.model_io import _atomic_write
+    import io
+    buf = io.BytesIO()
+    fig.tight_layout()
+    fig.savefig(buf, format="png")
+    plt.close(fig)
+    _atomic_write(Path(out), buf.getvalue())
+    return Path(out)
+
+
+def loss_curves(checked: CheckedObjective, out: Path, span: float = 3.0) -> Path:
+    """Each per-row term of the goal as a function of the margin m = y s (or the residual r = y - s),
+    with the 0-1 loss drawn for classification."""
+    margin = checked.task != "residual"
+    grid = np.linspace(-span, span, 601)
+    fig, ax, plt = _figure(f"per-row losses of {Path(checked.source.name).name}")
+    # score values that give the wanted margin (y = +1) or residual (y = 0, s = -r)
+    score = grid if margin else -grid
+    y = np.ones_like(grid) if margin else np.zeros_like(grid)
+    env = _Env(["_"], {}, {}, y, score, {t.name: t.default for t in checked.spec.tunables})
+    k = 0
+    for t in checked.terms:
+        if t.kind != "rows" or t.body is None:
+            continue
+        with np.errstate(all="ignore"):
+            v = np.broadcast_to(np.asarray(evaluate(_rows_body(t.body), env), dtype=float), grid.shape)
+        ax.plot(grid, v, color=_PALETTE[k % len(_PALETTE)], linewidth=2.0,
+                label=f"term {t.index + 1}: {render(t.body)}")
+        k += 1
+    if margin:
+        ax.step(grid, np.where(grid <= 0, 1.0, 0.0), where="post", color=_INK, linewidth=1.2, linestyle=(0, (4, 3)),
+                label="0-1 loss (what is counted)")
+        ax.set_xlabel("margin m = y * s")
+    else:
+        ax.set_xlabel("residual r = y - s")
+    ax.set_ylabel("loss of one row")
+    top = ax.get_ylim()[1]
+    ax.set_ylim(bottom=min(0.0, ax.get_ylim()[0]), top=min(top, 8.0))
+    ax.legend(frameon=False, fontsize=8)
+    return _save(fig, plt, out)
+
+
+def sweep_curve(sweep: dict, out: Path) -> Path:
+    """Training and held-out figures against the swept tunable (log axis when the grid is positive)."""
+    rows = sweep["points"]
+    name = sweep["tunable"]
+    xs = np.array([r["value"] for r in rows], dtype=float)
+    metric = sweep["metric"]
+    label = {"zero_one_error": "0-1 error", "rmse": "RMSE"}.get(metric, metric.replace("mean_losses:", "mean "))
+    fig, ax, plt = _figure(f"sweep of {name}: {label} on {sweep.get('ranked_on', 'the rows')}")
+    ax.plot(xs, [r["train"] for r in rows], color=_PALETTE[2], marker="o", linewidth=1.6, label="training rows")
+    if any(r.get("held") is not None for r in rows):
+        ax.plot(xs, [r["held"] for r in rows], color=_PALETTE[0], marker="s", linewidth=2.0, label="held-out rows")
+    best = sweep.get("best")
+    if best is not None:
+        ax.axvline(best["value"], color=_INK, linewidth=1.0, linestyle=(0, (2, 2)))
+        ax.annotate(f"chosen {name} = {best['value']:.3g}", (best["value"], ax.get_ylim()[1]), fontsize=8,
+                    ha="left", va="top", xytext=(4, -4), textcoords="offset points")
+    if np.all(xs > 0) and xs.max() / xs.min() > 20:
+        ax.set_xscale("log")
+    ax.set_xlabel(name)
+    ax.set_ylabel(label)
+    ax.legend(frameon=False, fontsize=8)
+    return _save(fig, plt, out)
+
+
+def convergence_curve(history: list[dict], out: Path, title: str) -> Path:
+    """The certificate (gap or residual) against passes over the data, on a log scale."""
+    fig, ax, plt = _figure(title)
+    passes = [h["passes"] for h in history]
+    gaps = [h.get("gap") for h in history]
+    objs = [h["objective"] for h in history]
+    if any(g is not None and g > 0 for g in gaps):
+        ax.semilogy(passes, [g if g and g > 0 else np.nan for g in gaps], color=_PALETTE[1], linewidth=2.0,
+                    label="certificate (relative)")
+        ax.set_ylabel("relative gap or residual")
+    else:
+        best = min(objs)
+        ax.semilogy(passes, [o - best + 1e-16 for o in objs], color=_PALETTE[1], linewidth=2.0,
+                    label="objective above the last value")
+    ax.set_xlabel("passes over the data")
+    ax.legend(frameon=False, fontsize=8)
+    return _save(fig, plt, out)
