@@ -189,7 +189,7 @@ def analyse(e: tt.TExpr) -> Facts:
     if facts.sign != Sign.ZERO and e.depends == "const" and not _contains(e, tt.TunableRef):
         # sign arithmetic cannot tell that 1 - 0.3 is positive or hinge(1) zero; a pure number is evaluated
         with np.errstate(all="ignore"):
-            v = evaluate(e, _Env([], {}, {}, np.ones(1)))
+            v = evaluate(e, EvalEnv([], {}, {}, np.ones(1)))
         if np.ndim(v) == 0 and np.isfinite(v):
             facts = replace(facts, sign=Sign.of_value(float(v)))
     return facts
@@ -366,7 +366,7 @@ def _is_sum_with_square(e: tt.TExpr) -> bool:
 # ---------------------------------------------------------------- numerical evaluation (witnesses)
 
 @dataclass
-class _Env:
+class EvalEnv:
     """Values for one numerical evaluation: learned parameters, data of a few rows, tunables."""
 
     inputs: list[str]
@@ -378,7 +378,7 @@ class _Env:
     weights: np.ndarray | None = None  # row x class weights; None: every row weighs 1
 
 
-def evaluate(e: tt.TExpr, env: _Env):
+def evaluate(e: tt.TExpr, env: EvalEnv):
     """Numeric value of a typed expression (scalars, per-row arrays, or vectors)."""
     if isinstance(e, tt.Const):
         return e.value
@@ -446,7 +446,7 @@ def _inputs_for(spec: tt.ResolvedSpec) -> list[str]:
     def collect(e):
         if isinstance(e, tt.ParamRef) and e.entries:
             names.extend(n for n in e.entries if n not in names)
-        for child in _children(e):
+        for child in tt.children(e):
             collect(child)
     collect(spec.goal)
     if spec.score is not None:
@@ -456,26 +456,10 @@ def _inputs_for(spec: tt.ResolvedSpec) -> list[str]:
     return names
 
 
-def _children(e: tt.TExpr) -> tuple[tt.TExpr, ...]:
-    if isinstance(e, (tt.Add, tt.Mul, tt.Div, tt.Dot)):
-        return (e.left, e.right)
-    if isinstance(e, (tt.Neg,)):
-        return (e.operand,)
-    if isinstance(e, tt.Aggregate):
-        return (e.operand,)
-    if isinstance(e, tt.Apply):
-        return e.args
-    if isinstance(e, tt.CustomLoss):
-        return (e.arg, e.body)
-    if isinstance(e, tt.ScoreRef):
-        return (e.expr,)
-    return ()
-
-
 def _data_columns(e: tt.TExpr, out: set[str]) -> set[str]:
     if isinstance(e, tt.DataRef) and e.kind in ("column", "feature"):
         out.add(e.name)
-    for c in _children(e):
+    for c in tt.children(e):
         _data_columns(c, out)
     return out
 
@@ -508,7 +492,7 @@ def find_witness(e: tt.TExpr, spec: tt.ResolvedSpec, seed: int = 0, trials: int 
             for tun in settings:
                 for label in (1.0, -1.0):
                     def f(t, label=label, tun=tun):
-                        env = _Env(inputs, {}, base, np.full(n, label), t, tun)
+                        env = EvalEnv(inputs, {}, base, np.full(n, label), t, tun)
                         v = evaluate(_rows_body(e), env)
                         return np.broadcast_to(np.asarray(v, dtype=float), (n,))
                     fa, fb, fm = f(a), f(b), f((a + b) / 2)
@@ -535,7 +519,7 @@ def find_witness(e: tt.TExpr, spec: tt.ResolvedSpec, seed: int = 0, trials: int 
                 pa, pb = draw(), draw()
 
                 def f(params, tun=tun):
-                    return float(np.sum(evaluate(e, _Env(inputs, params, base, np.ones(1), None, tun))))
+                    return float(np.sum(evaluate(e, EvalEnv(inputs, params, base, np.ones(1), None, tun))))
                 mid = {k: (pa[k] + pb[k]) / 2 for k in pa}
                 fa, fb, fm = f(pa), f(pb), f(mid)
                 avg = (fa + fb) / 2
@@ -573,12 +557,12 @@ def _margin_only(e: tt.TExpr) -> bool:
 def _contains_rows(e: tt.TExpr) -> bool:
     if isinstance(e, tt.Aggregate) and e.over == "rows":
         return True
-    return any(_contains_rows(c) for c in _children(e))
+    return any(_contains_rows(c) for c in tt.children(e))
 
 
 def _contains(e: tt.TExpr, kind) -> list[tt.TExpr]:
     found = [e] if isinstance(e, kind) else []
-    for c in _children(e):
+    for c in tt.children(e):
         found.extend(_contains(c, kind))
     return found
 
@@ -619,7 +603,7 @@ def _coefficient(factors: list[tt.TExpr], negated: bool) -> tuple[float | None, 
         for t in _contains(f, tt.TunableRef):
             names.append(t.name)
         try:
-            v = evaluate(f, _Env([], {}, {}, np.ones(1)))
+            v = evaluate(f, EvalEnv([], {}, {}, np.ones(1)))
             value = None if value is None or np.ndim(v) else value * float(v)
         except (KeyError, ValueError, TypeError):
             value = None
@@ -629,7 +613,7 @@ def _coefficient(factors: list[tt.TExpr], negated: bool) -> tuple[float | None, 
         if isinstance(f, tt.TunableRef):
             text_parts.append(f.name)
         elif not _contains(f, tt.TunableRef) and not _contains(f, tt.DataRef):
-            numeric *= float(evaluate(f, _Env([], {}, {}, np.ones(1))))
+            numeric *= float(evaluate(f, EvalEnv([], {}, {}, np.ones(1))))
         else:
             text_parts.append(f"({render(f)})")
     if negated:
@@ -964,7 +948,7 @@ def _calibration_note(node: tt.CustomLoss) -> str:
     """Bartlett, Jordan & McAuliffe (2006): a convex margin loss is classification-calibrated iff it is
     differentiable at 0 with a negative derivative. Checked numerically on the loss body."""
     def phi(m: float) -> float:
-        env = _Env(["_a", "_b", "_c"], {}, {}, np.ones(1), np.array([m]))
+        env = EvalEnv(["_a", "_b", "_c"], {}, {}, np.ones(1), np.array([m]))
         return float(np.sum(evaluate(node.body, env)))
     h = 1e-6
     with np.errstate(all="ignore"):
@@ -1035,3 +1019,8 @@ def _expanded(spec: tt.ResolvedSpec, terms: list[Term], cinfo: list[ConstraintIn
         lines.append("subject to:")
         lines.extend(f"    {c.text}" for c in cinfo)
     return "\n".join(lines)
+
+
+# older private names, kept while other modules move to the public ones
+_Env = EvalEnv
+_children = tt.children

@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from objc.diagnostics import Diagnostic, SpecError
+from objc.model_io import jsonable
 from objc.source_text import NO_SPAN
 
 EXIT_OK, EXIT_SPEC, EXIT_USAGE = 0, 1, 2
@@ -26,18 +27,7 @@ class UsageError(Exception):
 # ---------------------------------------------------------------- output helpers
 
 def _emit_json(doc: dict) -> None:
-    sys.stdout.write(json.dumps(doc, indent=2, default=_plain) + "\n")
-
-
-def _plain(v: Any):
-    import numpy as np
-    if isinstance(v, np.generic):
-        return v.item()
-    if isinstance(v, np.ndarray):
-        return v.tolist()
-    if isinstance(v, Path):
-        return str(v)
-    return str(v)
+    sys.stdout.write(json.dumps(doc, indent=2, default=jsonable) + "\n")
 
 
 def _diag_list(diags, source=None) -> list[dict]:

@@ -10,7 +10,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from objc.checker import CheckedObjective, _Env, evaluate
+from objc.checker import CheckedObjective, EvalEnv, evaluate
 from objc.score_form import ScoreForm, design
 
 
@@ -59,7 +59,7 @@ def objective_terms(checked: CheckedObjective, form: ScoreForm, X: np.ndarray, y
     """The objective and each goal term at `params`, evaluated from the typed tree."""
     A, off = design(form, X, y)
     score = A @ theta_from_params(form, params) + off
-    env = _Env(list(form.input_names), dict(params), {n: X[:, i] for i, n in enumerate(form.input_names)}, y,
+    env = EvalEnv(list(form.input_names), dict(params), {n: X[:, i] for i, n in enumerate(form.input_names)}, y,
                score, dict(tunables or {}), weights)
     with np.errstate(over="ignore"):
         values = tuple(float(np.sum(evaluate(t.expr, env))) for t in checked.terms)

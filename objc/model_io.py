@@ -65,13 +65,14 @@ def save_model(out: Path, document: dict, params: dict[str, np.ndarray | float])
     doc["format"] = MODEL_FORMAT
     doc["arrays"] = {"file": npz_path.name, "sha256": hashlib.sha256(arrays).hexdigest(),
                      "names": sorted(params)}
-    text = json.dumps(doc, indent=2, sort_keys=False, default=_jsonable).encode("utf-8") + b"\n"
+    text = json.dumps(doc, indent=2, sort_keys=False, default=jsonable).encode("utf-8") + b"\n"
     _atomic_write(npz_path, arrays)
     _atomic_write(json_path, text)
     return json_path
 
 
-def _jsonable(v):
+def jsonable(v):
+    """NumPy scalars and arrays and paths as plain JSON values (json.dumps's `default`)."""
     if isinstance(v, np.generic):
         return v.item()
     if isinstance(v, np.ndarray):

@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 
 from objc import typed_tree as tt
-from objc.checker import CheckedObjective, _Env, _rows_body, evaluate, render
+from objc.checker import CheckedObjective, EvalEnv, _rows_body, evaluate, render
 
 # our own palette: ink for the 0-1 reference, warm-to-cool for the terms
 _INK = "#2b2b2b"
@@ -48,7 +48,7 @@ def loss_curves(checked: CheckedObjective, out: Path, span: float = 3.0) -> Path
     # score values that give the wanted margin (y = +1) or residual (y = 0, s = -r)
     score = grid if margin else -grid
     y = np.ones_like(grid) if margin else np.zeros_like(grid)
-    env = _Env(["_"], {}, {}, y, score, {t.name: t.default for t in checked.spec.tunables})
+    env = EvalEnv(["_"], {}, {}, y, score, {t.name: t.default for t in checked.spec.tunables})
     k = 0
     for t in checked.terms:
         if t.kind != "rows" or t.body is None:

@@ -11,7 +11,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from objc import typed_tree as tt
-from objc.checker import CheckedObjective, _Env, evaluate
+from objc.checker import CheckedObjective, EvalEnv, evaluate
 
 
 @dataclass(frozen=True)
@@ -120,10 +120,10 @@ def score_form(checked: CheckedObjective, input_names: tuple[str, ...]) -> Score
                      scalar_blocks[0].param if standard and scalar_blocks else None)
 
 
-def data_env(X: np.ndarray, y: np.ndarray, input_names: tuple[str, ...]) -> _Env:
+def data_env(X: np.ndarray, y: np.ndarray, input_names: tuple[str, ...]) -> EvalEnv:
     """An evaluation environment whose columns are the (possibly standardized) inputs."""
     cols = {n: X[:, i] for i, n in enumerate(input_names)}
-    return _Env(list(input_names), {}, cols, y)
+    return EvalEnv(list(input_names), {}, cols, y)
 
 
 def design(form: ScoreForm, X: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

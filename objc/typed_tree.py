@@ -234,6 +234,22 @@ class Aggregate:
 TExpr = Union[Const, TunableRef, DataRef, ParamRef, ScoreRef, Apply, CustomLoss, Add, Neg, Mul, Div, Dot, Aggregate]
 
 
+def children(e: TExpr) -> tuple[TExpr, ...]:
+    """The direct subexpressions of a typed node (a score's expression and a custom loss's argument
+    and body included), for the walks every later stage makes."""
+    if isinstance(e, (Add, Mul, Div, Dot)):
+        return (e.left, e.right)
+    if isinstance(e, (Neg, Aggregate)):
+        return (e.operand,)
+    if isinstance(e, Apply):
+        return e.args
+    if isinstance(e, CustomLoss):
+        return (e.arg, e.body)
+    if isinstance(e, ScoreRef):
+        return (e.expr,)
+    return ()
+
+
 # ---------------------------------------------------------------- the resolved spec
 
 @dataclass(frozen=True)

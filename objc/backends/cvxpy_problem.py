@@ -53,7 +53,7 @@ import numpy as np
 from objc import catalog as catalog_module
 from objc import typed_tree as tt
 from objc.catalog import CATALOG, Entry
-from objc.checker import CheckedObjective, _children, _Env, analyse, evaluate, render
+from objc.checker import CheckedObjective, EvalEnv, analyse, evaluate, render
 from objc.diagnostics import Diagnostic, SpecError
 from objc.fit_result import Certificate, FitResult, objective_terms
 from objc.score_form import score_form
@@ -220,7 +220,7 @@ def _require_accepted(checked: CheckedObjective) -> None:
 # ---------------------------------------------------------------- tree helpers
 
 def _has_tunable(e: tt.TExpr) -> bool:
-    return isinstance(e, tt.TunableRef) or any(_has_tunable(c) for c in _children(e))
+    return isinstance(e, tt.TunableRef) or any(_has_tunable(c) for c in tt.children(e))
 
 
 def _param_affine(e: tt.TExpr) -> bool:
@@ -255,7 +255,7 @@ def _needs_input_order(e: tt.TExpr) -> bool:
         return True
     if isinstance(e, tt.ParamRef) and e.entries is not None:
         return True
-    return any(_needs_input_order(c) for c in _children(e))
+    return any(_needs_input_order(c) for c in tt.children(e))
 
 
 def _all_exprs(checked: CheckedObjective) -> list[tt.TExpr]:
@@ -323,7 +323,7 @@ class _Translator:
         allows, otherwise one derived parameter."""
         if not _has_tunable(e):
             with np.errstate(all="ignore"):
-                return float(evaluate(e, _Env([], {}, {}, np.ones(1))))
+                return float(evaluate(e, EvalEnv([], {}, {}, np.ones(1))))
         if not _param_affine(e):
             return self.host.derived(e)
         if isinstance(e, tt.TunableRef):
@@ -377,8 +377,8 @@ class _Translator:
 
 
 def _numeric_env(input_names: Sequence[str], X: np.ndarray, y: np.ndarray, weights: np.ndarray,
-                 tunables: Mapping[str, float]) -> _Env:
-    return _Env(list(input_names), {}, {n: X[:, i] for i, n in enumerate(input_names)}, y, None,
+                 tunables: Mapping[str, float]) -> EvalEnv:
+    return EvalEnv(list(input_names), {}, {n: X[:, i] for i, n in enumerate(input_names)}, y, None,
                 dict(tunables), weights)
 
 
@@ -445,7 +445,7 @@ class _RealHost:
         return out
 
 
-def _derived_value(e: tt.TExpr, env: _Env, checked: CheckedObjective) -> float:
+def _derived_value(e: tt.TExpr, env: EvalEnv, checked: CheckedObjective) -> float:
     with np.errstate(all="ignore"):
         value = float(evaluate(e, env))
     if not np.isfinite(value):
