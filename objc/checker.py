@@ -980,12 +980,12 @@ def _expanded(spec: tt.ResolvedSpec, terms: list[Term], cinfo: list[ConstraintIn
             core = f"{agg}{body}"
         else:
             core = render(t.core)
+        negative = coef.startswith("-")
+        if negative:
+            coef = coef[1:]
+            coef = coef[4:] if coef.startswith("1 * ") else coef
+            lead = "  - "
         text = core if coef in ("1", "") else f"{coef} * [{core}]"
-        if coef.startswith("-"):
-            lead = "  - " if k else "    -"
-            text = text if not coef.startswith("-1 *") else text[5:]
-            if coef.startswith("-") and not coef.startswith("-1 *"):
-                text = f"{coef[1:]} * [{core}]"
         lines.append(f"{lead}{text}")
     if spec.score is not None:
         lines.append(f"where {spec.score.name} = {render(spec.score.expr)}, one value per row i")
