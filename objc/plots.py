@@ -20,7 +20,8 @@ def _figure(title: str):
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
     fig, ax = plt.subplots(figsize=(7.2, 4.4), dpi=120)
-    ax.set_title(title, loc="left", fontsize=11)
+    import textwrap
+    ax.set_title("\n".join(textwrap.wrap(title, 78)), loc="left", fontsize=10)
     ax.grid(True, color="#e3e0da", linewidth=0.8)
     ax.set_facecolor("#fbfaf7")
     for side in ("top", "right"):

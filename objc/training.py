@@ -89,8 +89,17 @@ def run_backend(checked: CheckedObjective, data: tables.BoundData, backend: Back
                                    solver=solver)
     else:
         from objc.backends import numpy_module
+        history: list[dict] = []
+
+        def record(passes: int, objective: float, gap: float | None) -> None:
+            history.append({"passes": int(passes), "objective": float(objective),
+                            "gap": None if gap is None else float(gap)})
+            if progress is not None:
+                progress(passes, objective, gap)
         result = numpy_module.fit(checked, data.X, data.y, data.weights, data.input_names, tunables, tol=tol,
-                                  allow_nonconvex=allow_nonconvex, progress=progress, theta0=theta0)
+                                  allow_nonconvex=allow_nonconvex, progress=record, theta0=theta0)
+        step = max(1, len(history) // 200)  # a few hundred points draw the curve; keep the model file small
+        result = replace(result, extra=dict(result.extra, history=history[::step] + history[-1:]))
     if not result.seconds:
         result = replace(result, seconds=time.perf_counter() - start)
     return result
@@ -179,6 +188,7 @@ def model_document(checked: CheckedObjective, spec_path: Path, data: tables.Boun
                             "relative": result.certificate.relative, "tolerance": result.certificate.tolerance,
                             "note": result.certificate.note},
             "iterations": result.iterations, "passes": result.passes, "seconds": result.seconds,
+            "history": result.extra.get("history", []),
         },
         "training_metrics": train_metrics,
         "holdout_metrics": held_metrics,

@@ -259,3 +259,13 @@ def test_plot_sweep_rejects_other_json(tmp_path, capsys):
     (tmp_path / "x.json").write_text("{}")
     code, _, err = run(["plot", "sweep", tmp_path / "x.json", "-o", tmp_path / "x.png"], capsys)
     assert code == 1 and "P602" in err and not (tmp_path / "x.png").exists()
+
+
+def test_numpy_fit_records_convergence_for_plotting(tmp_path, capsys):
+    _write_table(tmp_path / "t.csv", _good_rows(80))
+    spec = _spec(tmp_path)
+    assert run(["fit", spec, "-o", tmp_path / "m.json", "--json"], capsys)[0] == 0
+    history = json.loads((tmp_path / "m.json").read_text())["fit"]["history"]
+    assert len(history) >= 2 and history[-1]["passes"] >= history[0]["passes"]
+    assert run(["plot", "convergence", tmp_path / "m.json", "-o", tmp_path / "c.png"], capsys)[0] == 0
+    assert (tmp_path / "c.png").read_bytes()[:4] == b"\x89PNG"

@@ -1,0 +1,432 @@
+"""The estimator and the command line of every generated NumPy module, copied from here by source.
+
+Like numpy_solvers_src.py, every top-level function and class here is copied into the generated
+module (imports excluded); names such as SPEC, run_solver and decision_values are the module's
+own. The generated module adds `class Model(EstimatorBase)` with the spec's tunables as keyword
+arguments.
+"""
+
+import math
+import sys
+
+import numpy as np
+
+
+# ---------------------------------------------------------------- the estimator
+
+class EstimatorBase:
+    """scikit-learn conventions without scikit-learn: fit / predict / decision_function / score,
+    get_params / set_params, fitted attributes ending in '_'."""
+
+    _param_names = ()
+
+    def get_params(self, deep=True):
+        return {name: getattr(self, name) for name in self._param_names}
+
+    def set_params(self, **params):
+        for key, value in params.items():
+            if key not in self._param_names:
+                raise ValueError(f"Invalid parameter {key!r} for estimator {type(self).__name__}. "
+                                 f"Valid parameters are: {sorted(self._param_names)!r}.")
+            setattr(self, key, value)
+        return self
+
+    def __repr__(self):
+        args = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items())
+        return f"{type(self).__name__}({args})"
+
+    def __sklearn_tags__(self):
+        # only scikit-learn calls this, so importing it here adds no dependency
+        from sklearn.utils import ClassifierTags, InputTags, RegressorTags, Tags, TargetTags
+        classifier = SPEC["task"] == "margin"
+        return Tags(estimator_type="classifier" if classifier else "regressor",
+                    target_tags=TargetTags(required=True),
+                    classifier_tags=ClassifierTags(multi_class=False) if classifier else None,
+                    regressor_tags=None if classifier else RegressorTags(),
+                    input_tags=InputTags(sparse=True))
+
+    # ---- helpers
+
+    def _tunable_values(self):
+        return {spec_name: float(getattr(self, arg)) for spec_name, arg in SPEC["tunable_arguments"].items()}
+
+    def _matrix(self, X, reset):
+        if X is None:
+            raise ValueError(f"{type(self).__name__} needs X (a 2D array), got None")
+        names = None
+        if hasattr(X, "columns") and not _is_sparse(X):
+            names = tuple(str(c) for c in X.columns)
+        if not _is_sparse(X):
+            X = np.asarray(X)
+            if np.iscomplexobj(X):
+                raise ValueError("Complex data not supported")
+            if X.dtype == object:
+                X = X.astype(np.float64)  # a TypeError or ValueError here names the bad value
+            if X.ndim == 1:
+                raise ValueError("Expected 2D array, got 1D array instead. Reshape your data either using "
+                                 "array.reshape(-1, 1) if your data has a single feature or array.reshape(1, -1) "
+                                 "if it contains a single sample.")
+        X = as_data_matrix(X)
+        n, p = X.shape
+        if n == 0:
+            raise ValueError(f"Found array with 0 sample(s) (shape={X.shape}) while a minimum of 1 is required.")
+        if p == 0:
+            raise ValueError(f"Found array with 0 feature(s) (shape={X.shape}) while a minimum of 1 is required.")
+        if reset:
+            self.n_features_in_ = p
+            if names is not None:
+                self.feature_names_in_ = np.asarray(names, dtype=object)
+            elif hasattr(self, "feature_names_in_"):
+                del self.feature_names_in_
+        elif p != self.n_features_in_:
+            raise ValueError(f"X has {p} features, but {type(self).__name__} is expecting {self.n_features_in_} "
+                             "features as input.")
+        return X, names
+
+    def _input_names(self, names, p):
+        if names is not None:
+            return names
+        return _default_input_names(SPEC, p)
+
+    def _standardized(self, X, fitting):
+        table = SPEC["table"]
+        if table is None or not table["standardize"]:
+            return X
+        if _is_sparse(X):
+            raise ValueError("the spec standardizes its inputs, which would densify a sparse X; pass a dense array")
+        if fitting:
+            self.input_mean_ = X.mean(axis=0)
+            scale = X.std(axis=0)
+            self.input_scale_ = np.where(scale > 0, scale, 1.0)  # a constant input stays as it is
+        return (X - self.input_mean_) / self.input_scale_
+
+    def _check_fitted(self):
+        if not hasattr(self, "params_"):
+            message = (f"This {type(self).__name__} instance is not fitted yet. Call 'fit' with appropriate "
+                       "arguments before using this estimator.")
+            # scikit-learn's own error type when scikit-learn is already loaded (never imported here)
+            loaded = sys.modules.get("sklearn.exceptions")
+            raise (loaded.NotFittedError if loaded is not None else _NotFitted)(message)
+
+    # ---- the public methods
+
+    def fit(self, X, y=None, sample_weight=None):
+        if y is None:
+            raise ValueError(f"{type(self).__name__} requires y to be passed, but the target y is None")
+        X, names = self._matrix(X, reset=True)
+        n, p = X.shape
+        y = np.asarray(y)
+        if y.ndim == 2 and y.shape[1] == 1:
+            y = y.ravel()
+        if y.ndim != 1 or y.shape[0] != n:
+            raise ValueError(f"y must hold one value per row of X ({n}), got shape {y.shape}")
+        c = np.ones(n) if sample_weight is None else np.asarray(sample_weight, dtype=np.float64).ravel()
+        if c.shape[0] != n:
+            raise ValueError(f"sample_weight has {c.shape[0]} values for {n} rows")
+        if SPEC["task"] == "margin":
+            if y.dtype.kind == "f" and not np.all(np.isfinite(y)):
+                raise ValueError("y holds NaN or infinity")
+            if y.dtype.kind == "f" and np.any(y != np.round(y)):
+                raise ValueError("Unknown label type: continuous target; this model separates two classes")
+            self.classes_, labels = np.unique(y, return_inverse=True)
+            if len(self.classes_) != 2:
+                count = len(self.classes_)
+                raise ValueError(f"Only binary classification is supported: this model separates two classes; "
+                                 f"y holds {count} class"
+                                 f"{'' if count == 1 else 'es'} ({', '.join(map(str, self.classes_[:5]))})")
+            target = np.where(labels == 1, 1.0, -1.0)  # classes_[1] is the positive class
+            table = SPEC["table"]
+            if table is not None:
+                for label, weight in table["class_weights"]:
+                    c = np.where(target == label, c * weight, c)
+        else:
+            try:
+                target = y.astype(np.float64)
+            except (TypeError, ValueError) as err:
+                raise ValueError(f"y must be numeric for this regression spec: {err}") from None
+        if not np.all(np.isfinite(target)):
+            raise ValueError("y holds NaN or infinity")
+        X = self._standardized(X, fitting=True)
+        self.input_names_ = self._input_names(names, p)
+        out = run_solver(SPEC, X, target, c, self.input_names_, self._tunable_values(), self.tol, self.max_passes,
+                         self.allow_nonconvex, None, None, self.use_scipy)
+        self.params_ = out["params"]
+        score_table = SPEC["score"]
+        w_name, b_name = score_table["weights"], score_table["intercept"]
+        if w_name is not None:
+            self.coef_ = np.asarray(self.params_[w_name], dtype=np.float64)
+            self.intercept_ = float(self.params_[b_name]) if b_name is not None else 0.0
+        self.objective_ = out["objective"]
+        self.certificate_ = out["certificate"]
+        self.status_ = out["status"]
+        self.method_ = out["method"]
+        self.n_iter_ = out["iterations"]
+        self.passes_ = out["passes"]
+        return self
+
+    def _decision(self, X):
+        self._check_fitted()
+        X, names = self._matrix(X, reset=False)
+        X = self._standardized(X, fitting=False)
+        return decision_values(SPEC, self.params_, X, self.input_names_, self._tunable_values())
+
+    def predict(self, X):
+        s = self._decision(X)
+        if SPEC["task"] == "margin":
+            return self.classes_[(s > 0).astype(int)]
+        return s
+
+    def score(self, X, y, sample_weight=None):
+        """Accuracy for a margin spec, R^2 otherwise (scikit-learn's defaults)."""
+        y = np.asarray(y)
+        pred = self.predict(X)
+        w = np.ones(len(y)) if sample_weight is None else np.asarray(sample_weight, dtype=np.float64)
+        if SPEC["task"] == "margin":
+            return float(np.sum(w * (pred == y)) / np.sum(w))
+        y = y.astype(np.float64)
+        mean = np.sum(w * y) / np.sum(w)
+        total = np.sum(w * (y - mean) ** 2)
+        residual = np.sum(w * (y - pred) ** 2)
+        return float(1.0 - residual / total) if total > 0 else (1.0 if residual == 0 else 0.0)
+
+
+class ClassifierBase(EstimatorBase):
+    """A margin spec: labels from the sign of the score, which decision_function returns."""
+
+    def decision_function(self, X):
+        return self._decision(X)
+
+
+class _NotFitted(ValueError, AttributeError):
+    pass
+
+
+# ---------------------------------------------------------------- the command line
+
+class TableError(Exception):
+    """Bad input to the command line: printed as one message, exit status 1."""
+
+
+def _read_csv(path):
+    import csv
+    try:
+        with open(path, newline="", encoding="utf-8") as handle:
+            rows = list(csv.reader(handle))
+    except OSError as err:
+        raise TableError(f"{path}: cannot read the table: {err.strerror or err}") from None
+    except UnicodeDecodeError as err:
+        raise TableError(f"{path}: not UTF-8 text ({err.reason} at byte {err.start})") from None
+    except csv.Error as err:
+        raise TableError(f"{path}: not a readable CSV file: {err}") from None
+    if not rows:
+        raise TableError(f"{path}: the file is empty")
+    header = [h.strip() for h in rows[0]]
+    if len(set(header)) != len(header):
+        raise TableError(f"{path}: line 1: a column name appears twice")
+    body = [r for r in rows[1:] if any(cell.strip() for cell in r)]
+    for k, r in enumerate(rows[1:], start=2):
+        if any(cell.strip() for cell in r) and len(r) != len(header):
+            raise TableError(f"{path}: line {k}: {len(r)} fields, the header has {len(header)}")
+    columns = {name: [r[j].strip() for r in body] for j, name in enumerate(header)}
+    return header, columns, len(body)
+
+
+_MISSING = {"", "na", "nan", "n/a", "null", "none"}
+
+
+def _numeric(path, name, cells):
+    values = np.empty(len(cells))
+    for i, cell in enumerate(cells):
+        if cell.lower() in _MISSING:
+            values[i] = np.nan
+            continue
+        try:
+            values[i] = float(cell)
+        except ValueError:
+            raise TableError(f"{path}: data row {i + 1}, column {name!r}: {cell!r} is not a number") from None
+        if not math.isfinite(values[i]):
+            raise TableError(f"{path}: data row {i + 1}, column {name!r}: {cell!r} is not a finite number")
+    return values
+
+
+def _choose_inputs(path, table, header, columns):
+    import fnmatch
+    reserved = {c for c in (table["target"], table["row_weight"]) if c is not None}
+    chosen = []
+    for kind, text in table["inputs"]:
+        if kind == "column":
+            if text not in columns:
+                raise TableError(f"{path}: input column {text!r} is not in the table")
+            chosen.append(text)
+        elif kind == "pattern":
+            matched = [c for c in header if fnmatch.fnmatchcase(c, text) and c not in reserved]
+            if not matched:
+                raise TableError(f"{path}: pattern {text!r} matches no column")
+            chosen += matched
+        else:
+            for c in header:
+                if c in reserved or c in table["excluded"]:
+                    continue
+                try:
+                    [float(v) for v in columns[c] if v.lower() not in _MISSING]
+                except ValueError:
+                    continue
+                chosen.append(c)
+    chosen = [c for c in dict.fromkeys(chosen) if c not in table["excluded"]]
+    if not chosen:
+        raise TableError(f"{path}: no input column selected")
+    return chosen
+
+
+def _target_values(path, table, columns):
+    name = table["target"]
+    if name is None:
+        raise TableError("the spec names no target column")
+    if name not in columns:
+        raise TableError(f"{path}: target column {name!r} is not in the table")
+    cells = columns[name]
+    if table["label_map"] is None:
+        return _numeric(path, name, cells)
+    y = np.full(len(cells), np.nan)
+    for i, cell in enumerate(cells):
+        for value, label in table["label_map"]:
+            same = cell == value if isinstance(value, str) else _same_number(cell, value)
+            if same:
+                y[i] = label
+                break
+        else:
+            if cell.lower() not in _MISSING:
+                raise TableError(f"{path}: data row {i + 1}, column {name!r}: {cell!r} is not in the spec's label map")
+    return y
+
+
+def _same_number(cell, value):
+    try:
+        return float(cell) == float(value)
+    except ValueError:
+        return False
+
+
+def load_table(path):
+    """X, y, row weights and input names from a CSV, by the spec's table clauses; also the
+    standardization used (or None)."""
+    table = SPEC["table"]
+    if table is None:
+        raise TableError("the spec has no table clause, so the command line cannot read a table")
+    header, columns, n = _read_csv(path)
+    if n == 0:
+        raise TableError(f"{path}: the table has no data rows")
+    inputs = _choose_inputs(path, table, header, columns)
+    data = {name: _numeric(path, name, columns[name]) for name in inputs}
+    for fname, fn in table["features"]:
+        with np.errstate(all="ignore"):
+            data[fname] = np.broadcast_to(fn(_LazyNumeric(path, columns, data)), (n,)).astype(np.float64)
+        inputs.append(fname)
+    y = _target_values(path, table, columns) if SPEC["needs_target"] else np.zeros(n)
+    c = np.ones(n)
+    if table["row_weight"] is not None:
+        if table["row_weight"] not in columns:
+            raise TableError(f"{path}: row-weight column {table['row_weight']!r} is not in the table")
+        c = _numeric(path, table["row_weight"], columns[table["row_weight"]])
+    X = np.column_stack([data[name] for name in inputs])
+    bad = ~np.isfinite(X).all(axis=1) | ~np.isfinite(y) | ~np.isfinite(c)
+    if np.any(bad):
+        if table["missing"] != "drop":
+            first = int(np.flatnonzero(bad)[0]) + 1
+            raise TableError(f"{path}: data row {first} has a missing value (the spec says `missing fail`)")
+        X, y, c = X[~bad], y[~bad], c[~bad]
+    if np.any(c < 0):
+        raise TableError(f"{path}: data row {int(np.flatnonzero(c < 0)[0]) + 1}: a negative row weight")
+    for label, weight in table["class_weights"]:
+        c = np.where(y == label, c * weight, c)
+    if table["holdout"] is not None:
+        fraction, seed = table["holdout"]
+        k = int(round(fraction * len(y)))
+        order = np.random.default_rng(seed).permutation(len(y))  # the same split as `objc fit`
+        keep = np.sort(order[k:])
+        X, y, c = X[keep], y[keep], c[keep]
+    stats = None
+    if table["standardize"]:
+        mean, scale = X.mean(axis=0), X.std(axis=0)
+        for j, name in enumerate(inputs):
+            if not scale[j] > 0:
+                raise TableError(f"{path}: input {name!r} is constant; `standardize` would divide by zero")
+        X = (X - mean) / scale
+        stats = {"names": list(inputs), "means": mean.tolist(), "scales": scale.tolist()}
+    return X, y, c, tuple(inputs), stats
+
+
+class _LazyNumeric:
+    def __init__(self, path, columns, data):
+        self.path, self.columns, self.data = path, columns, data
+
+    def __getitem__(self, name):
+        if name not in self.data:
+            if name not in self.columns:
+                raise TableError(f"{self.path}: a derived input reads column {name!r}, which is not in the table")
+            self.data[name] = _numeric(self.path, name, self.columns[name])
+        return self.data[name]
+
+
+def _write_json_atomic(path, payload):
+    import json
+    import os
+    import tempfile
+    folder = os.path.dirname(os.path.abspath(path))
+    handle, temp = tempfile.mkstemp(prefix=".model-", suffix=".json", dir=folder)
+    try:
+        with os.fdopen(handle, "w", encoding="utf-8") as out:
+            json.dump(payload, out, indent=2, allow_nan=False)
+            out.write("\n")
+        os.replace(temp, path)
+    except BaseException:
+        if os.path.exists(temp):
+            os.remove(temp)
+        raise
+
+
+def main(argv=None):
+    """python module.py TABLE.csv -o model.json [--tol T] [--max-passes N] [--set NAME=VALUE]"""
+    import argparse
+    parser = argparse.ArgumentParser(description=f"Train the objective of {SPEC['name']!r} on a CSV table and "
+                                                 "write the weights as JSON.")
+    parser.add_argument("table", help="CSV file with a header row")
+    parser.add_argument("-o", "--output", required=True, help="JSON file to write")
+    parser.add_argument("--tol", type=float, default=1e-6, help="relative certificate to reach (default 1e-6)")
+    parser.add_argument("--max-passes", type=int, default=None, help="budget of passes over the data")
+    parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE", help="a tunable's value")
+    parser.add_argument("--allow-nonconvex", action="store_true", help="run a local method on a non-convex spec")
+    args = parser.parse_args(argv)
+    try:
+        tunables = {}
+        for item in args.set:
+            name, sep, value = item.partition("=")
+            if not sep:
+                raise TableError(f"--set {item!r}: write NAME=VALUE")
+            try:
+                tunables[name.strip()] = float(value)
+            except ValueError:
+                raise TableError(f"--set {item!r}: {value!r} is not a number") from None
+        X, y, c, names, stats = load_table(args.table)
+        out = run_solver(SPEC, X, y, c, names, tunables, args.tol, args.max_passes, args.allow_nonconvex)
+    except (TableError, ValueError) as err:
+        print(f"error: {err}", file=sys.stderr)
+        return 1
+    params = {}
+    for name, value in out["params"].items():
+        params[name] = dict(zip(names, np.asarray(value).tolist())) if np.ndim(value) else float(value)
+    payload = {
+        "spec": SPEC["name"], "spec_sha256": SPEC["sha256"], "verdict": SPEC["verdict"], "inputs": list(names),
+        "params": params, "objective": out["objective"], "status": out["status"], "method": out["method"],
+        "certificate": out["certificate"], "passes": out["passes"], "standardization": stats,
+        "tunables": resolve_tunables(SPEC, tunables),
+    }
+    try:
+        _write_json_atomic(args.output, payload)
+    except (OSError, ValueError) as err:
+        print(f"error: cannot write {args.output}: {err}", file=sys.stderr)
+        return 1
+    cert = out["certificate"]
+    print(f"{out['status']}: objective {out['objective']:.10g}, {cert['kind']} {cert['absolute']:.3g} "
+          f"(relative {cert['relative']:.3g}), {out['passes']} passes; wrote {args.output}")
+    return 0

@@ -1,0 +1,880 @@
+"""The NumPy backend: one standalone Python module per spec, built as a syntax tree.
+
+`emit_module(checked)` returns the module's source. It holds, in this order: a header docstring
+(spec text, its sha256, the verdict, the method and the expanded objective), the catalog kernels
+the spec uses (copied from objc/catalog.py by their source, so a loss's math lives only there),
+the spec-specific code generated from the typed tree (per-row value and derivative in the score by
+the chain rule, the penalties with their gradients, coefficients, bounds, the derived features),
+the `SPEC` table that lists them, the generic solver and estimator code (copied by source from
+numpy_solvers_src.py and numpy_estimator_src.py in this folder), and a command line entry point.
+
+Generated code never pastes text: names from a spec become identifiers only after validation
+(tunables as estimator arguments), every other spec string (column names, the spec text) is an
+`ast.Constant`, so neither a spec nor a data file can inject code. The same spec always yields
+byte-identical source.
+
+`fit(...)` compiles that very source, executes it in a fresh namespace and calls its solver, so
+the module users ship is the one that was tested.
+"""
+
+from __future__ import annotations
+
+import ast
+import inspect
+import math
+import keyword
+import textwrap
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+
+from objc import catalog
+from objc import typed_tree as tt
+from objc.catalog import CATALOG
+from objc.checker import CheckedObjective, Term, render
+from objc.fit_result import Certificate, FitResult
+from objc.score_form import score_form
+
+__all__ = ["emit_module", "fit", "load_module", "NotSupported", "plan_method"]
+
+_HERE = Path(__file__).resolve().parent
+_RUNTIME_FILES = ("numpy_solvers_src.py", "numpy_estimator_src.py")
+
+# arguments every generated estimator takes besides the spec's tunables
+FIXED_ARGUMENTS = ("tol", "max_passes", "allow_nonconvex", "use_scipy")
+# kernels the generic solver code calls whatever the spec uses
+_RUNTIME_KERNELS = ("_k_l1_prox", "_k_l2_prox")
+
+
+class NotSupported(ValueError):
+    """The spec is valid, but this backend cannot solve it; the message says why and where."""
+
+
+# ---------------------------------------------------------------- small ast helpers
+
+def _name(identifier: str) -> ast.Name:
+    return ast.Name(id=identifier, ctx=ast.Load())
+
+
+def _const(value: Any) -> ast.expr:
+    if isinstance(value, float) and not np.isfinite(value):
+        # inf/nan have no literal: spell them as float('inf') so the source stays valid
+        return ast.Call(_name("float"), [ast.Constant(repr(value))], [])
+    if isinstance(value, (tuple, list)):
+        return ast.Tuple([_const(v) for v in value], ast.Load())
+    if isinstance(value, dict):
+        return ast.Dict([ast.Constant(k) for k in value], [_const(v) for v in value.values()])
+    if isinstance(value, (int, float)) and not isinstance(value, bool) and math.copysign(1.0, value) < 0:
+        # a negative literal is a minus sign applied to a number in Python's own syntax tree
+        return ast.UnaryOp(ast.USub(), ast.Constant(-value))
+    return ast.Constant(value)
+
+
+def _call(func: str | ast.expr, *args: ast.expr, **kwargs: ast.expr) -> ast.Call:
+    f = _name(func) if isinstance(func, str) else func
+    return ast.Call(f, list(args), [ast.keyword(arg=k, value=v) for k, v in kwargs.items()])
+
+
+def _attr(obj: str, attr: str) -> ast.Attribute:
+    return ast.Attribute(_name(obj), attr, ast.Load())
+
+
+def _binop(a: ast.expr, op: ast.operator, b: ast.expr) -> ast.expr:
+    return ast.BinOp(a, op, b)
+
+
+def _is_const(e: ast.expr | None, value: float) -> bool:
+    return isinstance(e, ast.Constant) and e.value == value
+
+
+def _is_minus_one(e: ast.expr | None) -> bool:
+    return isinstance(e, ast.UnaryOp) and isinstance(e.op, ast.USub) and _is_const(e.operand, 1.0)
+
+
+def _mul(a: ast.expr | None, b: ast.expr | None) -> ast.expr | None:
+    """a * b, folding the constants 0 (None) and +-1 so the generated code stays readable."""
+    if a is None or b is None:
+        return None
+    if _is_const(a, 1.0):
+        return b
+    if _is_const(b, 1.0):
+        return a
+    if _is_minus_one(a):
+        return ast.UnaryOp(ast.USub(), b)
+    if _is_minus_one(b):
+        return ast.UnaryOp(ast.USub(), a)
+    return _binop(a, ast.Mult(), b)
+
+
+def _add(a: ast.expr | None, b: ast.expr | None) -> ast.expr | None:
+    if a is None:
+        return b
+    if b is None:
+        return a
+    return _binop(a, ast.Add(), b)
+
+
+def _neg(a: ast.expr | None) -> ast.expr | None:
+    if a is None:
+        return None
+    if isinstance(a, ast.Constant) and isinstance(a.value, float):
+        return _const(-a.value)
+    return ast.UnaryOp(ast.USub(), a)
+
+
+def _function(name: str, args: list[str], doc: str, body: list[ast.stmt]) -> ast.FunctionDef:
+    arguments = ast.arguments(posonlyargs=[], args=[ast.arg(a) for a in args], vararg=None, kwonlyargs=[],
+                              kw_defaults=[], kwarg=None, defaults=[])
+    return ast.FunctionDef(name=name, args=arguments, body=[ast.Expr(ast.Constant(doc))] + body,
+                           decorator_list=[], returns=None, type_params=[])
+
+
+# ---------------------------------------------------------------- kernels copied from the catalog
+
+def _kernel_name(fn: Callable) -> str:
+    name = getattr(fn, "__name__", "")
+    if not name.startswith("_k_") or getattr(catalog, name, None) is not fn:
+        raise NotSupported(f"catalog function {name or fn!r} is not a copyable kernel (a `_k_*` function)")
+    return name
+
+
+def _kernel_defs(names: set[str]) -> list[ast.stmt]:
+    """The kernels by source (and the kernels they call), in the catalog's own order."""
+    wanted, todo = set(), list(names)
+    parsed: dict[str, ast.FunctionDef] = {}
+    while todo:
+        name = todo.pop()
+        if name in wanted:
+            continue
+        fn = getattr(catalog, name, None)
+        if fn is None or not name.startswith("_k_"):
+            raise NotSupported(f"no catalog kernel named {name}")
+        tree = ast.parse(textwrap.dedent(inspect.getsource(fn)))
+        node = tree.body[0]
+        assert isinstance(node, ast.FunctionDef)
+        parsed[name] = node
+        wanted.add(name)
+        for sub in ast.walk(node):
+            if isinstance(sub, ast.Name) and sub.id.startswith("_k_") and sub.id not in wanted:
+                todo.append(sub.id)
+    order = [n for n in vars(catalog) if n in wanted]
+    return [parsed[n] for n in order]
+
+
+def _runtime_defs() -> list[ast.stmt]:
+    """Every function and class of the runtime sources (their imports are the module header's)."""
+    out: list[ast.stmt] = []
+    for file in _RUNTIME_FILES:
+        tree = ast.parse((_HERE / file).read_text(encoding="utf-8"))
+        for node in tree.body:
+            if isinstance(node, (ast.FunctionDef, ast.ClassDef, ast.Assign)):
+                out.append(node)
+    return out
+
+
+# ---------------------------------------------------------------- straight-line code from the typed tree
+
+class _Code:
+    """One generated function body: each node's value (and derivative) assigned to a fresh local.
+
+    `variable` says what the derivative is taken in: "s" (the score of a row) for row terms, a
+    parameter reference for penalties, None for constants (coefficients, bounds, features).
+    """
+
+    def __init__(self, emitter: "_Emitter", variable: str | tuple[str, tuple[str, ...] | None] | None,
+                 where: str):
+        self.emitter, self.variable, self.where = emitter, variable, where
+        self.body: list[ast.stmt] = []
+        self.count = 0
+
+    def let(self, value: ast.expr, stem: str) -> ast.expr:
+        if isinstance(value, (ast.Name, ast.Constant)):
+            return value
+        name = f"{stem}{self.count}"
+        self.body.append(ast.Assign([ast.Name(name, ast.Store())], value))
+        return _name(name)
+
+    def fresh(self) -> None:
+        self.count += 1
+
+    def unsupported(self, e: tt.TExpr, what: str) -> NotSupported:
+        return NotSupported(f"spec line {e.span.line}, column {e.span.column}: {what} in {self.where} is not "
+                            "supported by the NumPy backend (the cvxpy backend may solve it)")
+
+    def walk(self, e: tt.TExpr) -> tuple[ast.expr, ast.expr | None]:
+        """(value, derivative) of e; derivative None means zero."""
+        if isinstance(e, tt.Const):
+            return _const(float(e.value)), None
+        if isinstance(e, tt.TunableRef):
+            return ast.Subscript(_name("tun"), ast.Constant(e.name), ast.Load()), None
+        if isinstance(e, tt.DataRef):
+            if self.variable != "s" and self.variable != "data":
+                raise self.unsupported(e, f"data ('{e.name}')")
+            if e.kind == "target":
+                return _name("y"), None
+            if e.kind == "inputs":
+                raise self.unsupported(e, "the input matrix x outside the score")
+            return ast.Subscript(_name("cols"), ast.Constant(e.name), ast.Load()), None
+        if isinstance(e, tt.ScoreRef):
+            if self.variable != "s":
+                raise self.unsupported(e, "the score")
+            return _name("s"), ast.Constant(1.0)
+        if isinstance(e, tt.ParamRef):
+            if not isinstance(self.variable, tuple) or (e.name, e.entries) != self.variable:
+                raise self.unsupported(e, f"the learned parameter '{render(e)}'")
+            return _name("v"), ast.Constant(1.0)
+        if isinstance(e, tt.CustomLoss):
+            return self.walk(e.body)
+        if isinstance(e, tt.Neg):
+            a, da = self.walk(e.operand)
+            return self._store(ast.UnaryOp(ast.USub(), a), _neg(da))
+        if isinstance(e, tt.Add):
+            a, da = self.walk(e.left)
+            b, db = self.walk(e.right)
+            return self._store(_binop(a, ast.Add(), b), _add(da, db))
+        if isinstance(e, tt.Mul):
+            a, da = self.walk(e.left)
+            b, db = self.walk(e.right)
+            return self._store(_binop(a, ast.Mult(), b), _add(_mul(da, b), _mul(a, db)))
+        if isinstance(e, tt.Div):
+            a, da = self.walk(e.left)
+            b, db = self.walk(e.right)
+            d = None
+            if da is not None and db is None:
+                d = _binop(da, ast.Div(), b)
+            elif db is not None:
+                top = _add(_mul(da, b), _neg(_mul(a, db)))
+                d = _binop(top, ast.Div(), _binop(b, ast.Mult(), b))
+            return self._store(_binop(a, ast.Div(), b), d)
+        if isinstance(e, tt.Aggregate):
+            if e.over != "entries" or not isinstance(self.variable, tuple):
+                raise self.unsupported(e, f"'{e.kind}' over rows")
+            a, da = self.walk(e.operand)
+            value = _call(_attr("np", "sum" if e.kind == "sum" else "mean"), a)
+            d = da
+            if e.kind == "mean" and da is not None:
+                d = _binop(da, ast.Div(), _call(_attr("np", "size"), a))
+            return self._store(value, d)
+        if isinstance(e, tt.Apply):
+            return self._apply(e)
+        if isinstance(e, tt.Dot):
+            raise self.unsupported(e, "a dot product")
+        raise self.unsupported(e, type(e).__name__)
+
+    def _store(self, value: ast.expr, d: ast.expr | None) -> tuple[ast.expr, ast.expr | None]:
+        v = self.let(value, "v")
+        dd = self.let(d, "d") if d is not None else None
+        self.fresh()
+        return v, dd
+
+    def _apply(self, e: tt.Apply) -> tuple[ast.expr, ast.expr | None]:
+        entry = CATALOG[e.entry]
+        if not entry.trainable:
+            raise self.unsupported(e, f"the {entry.name} loss (evaluation only)")
+        args = [self.walk(a) for a in e.args]
+        opts = {k: ast.Constant(float(v)) for k, v in e.options}
+        value_fn = self.emitter.kernel(entry.value)
+        values = [a for a, _ in args]
+        value = _call(value_fn, *values, **opts)
+        if all(d is None for _, d in args):
+            return self._store(value, None)
+        deriv_fn = self.emitter.kernel(entry.derivative)
+        if len(args) == 1:
+            d = _mul(_call(deriv_fn, *values, **opts), args[0][1])
+            return self._store(value, d)
+        parts = self.let(_call(deriv_fn, *values, **opts), "parts")
+        d = None
+        for i, (_, da) in enumerate(args):
+            if da is not None:
+                d = _add(d, _mul(ast.Subscript(parts, ast.Constant(i), ast.Load()), da))
+        return self._store(value, d)
+
+
+# ---------------------------------------------------------------- the emitter
+
+def _python_arguments(tunables: tuple[str, ...]) -> dict[str, str]:
+    """Estimator argument name for each tunable: its own name when that is a usable Python name."""
+    taken = set(FIXED_ARGUMENTS)
+    out: dict[str, str] = {}
+    for name in tunables:
+        candidate = name
+        if not candidate.isidentifier() or keyword.iskeyword(candidate) or candidate in taken or \
+                candidate.startswith("_") or candidate.endswith("_") or candidate == "self":
+            candidate = f"{name.strip('_') or 'tunable'}_value"
+            k = 2
+            while candidate in taken or not candidate.isidentifier() or keyword.iskeyword(candidate):
+                candidate = f"{name.strip('_') or 'tunable'}_value{k}"
+                k += 1
+        taken.add(candidate)
+        out[name] = candidate
+    return out
+
+
+def _penalty_target(t: Term) -> tuple[str, tuple[str, ...] | None, bool]:
+    """The one learned parameter (and chosen entries) a penalty term reads."""
+    refs: list[tt.ParamRef] = []
+
+    def collect(e: tt.TExpr) -> None:
+        if isinstance(e, tt.ParamRef):
+            refs.append(e)
+        for child in _children(e):
+            collect(child)
+    collect(t.core)
+    keys = {(r.name, r.entries) for r in refs}
+    if len(keys) != 1:
+        raise NotSupported(f"spec line {t.span.line}: term {t.index + 1} ('{t.text}') reads "
+                           f"{'no' if not keys else 'several'} learned parameter selections; the NumPy backend "
+                           "needs a penalty on one parameter (or one selection of it)")
+    ref = refs[0]
+    return ref.name, ref.entries, ref.vector
+
+
+def _children(e: tt.TExpr) -> tuple[tt.TExpr, ...]:
+    if isinstance(e, (tt.Add, tt.Mul, tt.Div, tt.Dot)):
+        return (e.left, e.right)
+    if isinstance(e, tt.Neg):
+        return (e.operand,)
+    if isinstance(e, tt.Aggregate):
+        return (e.operand,)
+    if isinstance(e, tt.Apply):
+        return e.args
+    if isinstance(e, tt.CustomLoss):
+        return (e.body,)
+    return ()
+
+
+def _penalty_form(core: tt.TExpr) -> str | None:
+    """'l1', 'l2' or 'l2sq' when the penalty is exactly that norm of a parameter (the prox is known)."""
+    def is_param(e: tt.TExpr) -> bool:
+        return isinstance(e, tt.ParamRef)
+    if isinstance(core, tt.Apply) and core.entry in ("l1", "l2", "l2sq") and is_param(core.args[0]):
+        return core.entry
+    if isinstance(core, tt.Apply) and core.entry == "abs" and is_param(core.args[0]) and \
+            core.args[0].shape.kind == "scalar":
+        return "l1"
+    if isinstance(core, tt.Apply) and core.entry == "power" and core.option_dict.get("p") == 2.0 and \
+            is_param(core.args[0]) and core.args[0].shape.kind == "scalar":
+        return "l2sq"
+    if isinstance(core, tt.Aggregate) and core.kind == "sum" and core.over == "entries" and \
+            isinstance(core.operand, tt.Apply) and is_param(core.operand.args[0]):
+        inner = core.operand
+        if inner.entry == "abs":
+            return "l1"
+        if inner.entry == "power" and inner.option_dict.get("p") == 2.0:
+            return "l2sq"
+    return None
+
+
+def _coefficient_factors(t: Term) -> tuple[list[tt.TExpr], bool]:
+    """The constant factors in front of a term's core, and whether it is negated."""
+    factors: list[tt.TExpr] = []
+    negated = False
+    e = t.expr
+    while e is not t.core:
+        if isinstance(e, tt.Neg):
+            negated = not negated
+            e = e.operand
+        elif isinstance(e, tt.Mul):
+            factors.append(e.left)
+            e = e.right
+        else:  # pragma: no cover - the checker builds terms this way only
+            raise NotSupported(f"spec line {t.span.line}: cannot read the coefficient of term {t.index + 1}")
+    return factors, negated
+
+
+def plan_method(checked: CheckedObjective) -> str:
+    """The solver family the analysis asks for (the module may switch to a prox variant at run time
+    when the data give a penalty weight or a bound): 'lbfgs', 'fista', 'smoothing',
+    'smoothing+fista' or 'subgradient'."""
+    if not checked.accepted:
+        return "subgradient"
+    prox_part = bool(checked.constraints)
+    rows_nonsmooth = False
+    for t in checked.terms:
+        if t.kind == "params" and not t.smooth:
+            if _penalty_form(t.core) in ("l1", "l2"):
+                prox_part = True
+            else:
+                return "subgradient"
+        if t.kind == "rows" and not t.smooth:
+            rows_nonsmooth = True
+    if rows_nonsmooth:
+        return "smoothing+fista" if prox_part else "smoothing"
+    return "fista" if prox_part else "lbfgs"
+
+
+_METHOD_TEXT = {
+    "lbfgs": "L-BFGS (SciPy's L-BFGS-B when importable, else the module's own two-loop recursion); "
+             "smooth objective",
+    "fista": "accelerated proximal gradient (FISTA with restart and backtracking) with the catalog's prox "
+             "for the nonsmooth penalties and projections for the constraints",
+    "smoothing": "smoothing with continuation: each nonsmooth loss replaced by its Moreau envelope (through "
+                 "the catalog's prox), minimized by L-BFGS, the envelope parameter shrunk until the "
+                 "certificate holds",
+    "smoothing+fista": "smoothing with continuation (Moreau envelopes through the catalog's prox) and "
+                       "accelerated proximal gradient for the penalties and constraints",
+    "subgradient": "subgradient method with diminishing steps: the objective is not certified convex, so the "
+                   "result is at best a local minimum (runs only with allow_nonconvex=True)",
+}
+
+
+class _Emitter:
+    def __init__(self, checked: CheckedObjective):
+        self.checked = checked
+        self.kernels: set[str] = set(_RUNTIME_KERNELS)
+        self.defs: list[ast.stmt] = []
+
+    def kernel(self, fn: Callable) -> str:
+        name = _kernel_name(fn)
+        self.kernels.add(name)
+        return name
+
+    # ---- spec-specific functions
+
+    def value_function(self, name: str, args: list[str], doc: str, e: tt.TExpr, variable) -> str:
+        code = _Code(self, variable, doc)
+        v, _ = code.walk(e)
+        self.defs.append(_function(name, args, doc, code.body + [ast.Return(v)]))
+        return name
+
+    def constant_function(self, name: str, doc: str, factors: list[tt.TExpr], negated: bool) -> str:
+        code = _Code(self, None, doc)
+        value: ast.expr = _const(-1.0 if negated else 1.0)
+        for f in factors:
+            fv, _ = code.walk(f)
+            value = fv if _is_const(value, 1.0) else _binop(value, ast.Mult(), fv)
+        self.defs.append(_function(name, ["tun"], doc, code.body + [ast.Return(value)]))
+        return name
+
+    def rows_function(self, t: Term) -> str:
+        name = f"term_{t.index}_rows"
+        doc = (f"Term {t.index + 1} (spec line {t.span.line}): {t.text}\n\n    "
+               f"Per row: the value of {render(t.body)} and its derivative in the score s.\n    ")
+        code = _Code(self, "s", f"term {t.index + 1}")
+        v, d = code.walk(t.body)
+        ret = ast.Return(ast.Tuple([v, d if d is not None else ast.Constant(0.0)], ast.Load()))
+        self.defs.append(_function(name, ["s", "y", "cols", "tun"], doc, code.body + [ret]))
+        return name
+
+    def penalty_function(self, t: Term, param: str, entries) -> str:
+        name = f"term_{t.index}_penalty"
+        doc = (f"Term {t.index + 1} (spec line {t.span.line}): {t.text}\n\n    "
+               f"Value of {render(t.core)} at v (the entries of {param} it reads) and its gradient in v.\n    ")
+        code = _Code(self, (param, entries), f"term {t.index + 1}")
+        v, d = code.walk(t.core)
+        value = _call(_name("float"), _call(_attr("np", "sum"), v))
+        grad = _call(_attr("np", "broadcast_to"), d if d is not None else ast.Constant(0.0), _attr("v", "shape"))
+        ret = ast.Return(ast.Tuple([value, grad], ast.Load()))
+        self.defs.append(_function(name, ["v", "tun"], doc, code.body + [ret]))
+        return name
+
+    # ---- tables
+
+    def term_table(self, t: Term) -> ast.expr:
+        factors, negated = _coefficient_factors(t)
+        coef = self.constant_function(f"term_{t.index}_coefficient",
+                                      f"Term {t.index + 1} (spec line {t.span.line}): the coefficient "
+                                      f"{t.coefficient_text or '1'}.", factors, negated)
+        common: dict[str, ast.expr] = {"index": ast.Constant(t.index), "line": ast.Constant(t.span.line),
+                                       "text": ast.Constant(t.text), "coefficient": _name(coef)}
+        if t.kind == "rows":
+            fields = dict(common, kind=ast.Constant("rows"), aggregate=ast.Constant(t.aggregate),
+                          rows=_name(self.rows_function(t)), smooth=ast.Constant(bool(t.smooth)))
+            if t.known_loss is not None:
+                entry = CATALOG[t.known_loss[0]]
+                fields.update(loss=ast.Constant(entry.name), role=ast.Constant(t.role),
+                              options=_const({k: float(v) for k, v in t.known_loss[1]}))
+                fields["prox"] = _name(self.kernel(entry.prox)) if entry.prox is not None else ast.Constant(None)
+                fields["conjugate"] = _name(self.kernel(entry.conjugate)) if entry.conjugate is not None else \
+                    ast.Constant(None)
+                lip = entry.lipschitz({k: float(v) for k, v in t.known_loss[1]})
+                fields["lipschitz"] = _const(float(lip) if lip is not None else None)
+            return ast.Dict([ast.Constant(k) for k in fields], list(fields.values()))
+        if t.kind == "params":
+            param, entries, _vector = _penalty_target(t)
+            fields = dict(common, kind=ast.Constant("params"), param=ast.Constant(param),
+                          entries=_const(entries), form=ast.Constant(_penalty_form(t.core)),
+                          smooth=ast.Constant(bool(t.smooth)), penalty=_name(self.penalty_function(t, param, entries)))
+            return ast.Dict([ast.Constant(k) for k in fields], list(fields.values()))
+        if t.kind == "constant":
+            value = self.value_function(f"term_{t.index}_constant", ["tun"],
+                                        f"Term {t.index + 1} (spec line {t.span.line}): a constant.", t.core, None)
+            fields = dict(common, kind=ast.Constant("constant"), constant=_name(value))
+            return ast.Dict([ast.Constant(k) for k in fields], list(fields.values()))
+        raise NotSupported(f"spec line {t.span.line}: term {t.index + 1} mixes per-row aggregates with other "
+                           "expressions; only the cvxpy backend can solve it")
+
+    def constraint_table(self, k: int) -> ast.expr:
+        c = self.checked.spec.constraints[k]
+        info = self.checked.constraints[k]
+        where = f"Constraint (spec line {c.span.line}): {info.text}"
+        left, op, right = c.left, c.op, c.right
+        if left.depends != "params":
+            left, right = right, left
+            op = {"<=": ">=", ">=": "<=", "==": "=="}[op]
+        fields: dict[str, ast.expr] = {"line": ast.Constant(c.span.line), "text": ast.Constant(info.text)}
+        bound_name = f"constraint_{k}_bound"
+        if isinstance(left, tt.ParamRef) and right.depends == "const":
+            low = high = None
+            self.value_function(bound_name, ["tun"], where, right, None)
+            if op in (">=", "=="):
+                low = _name(bound_name)
+            if op in ("<=", "=="):
+                high = _name(bound_name)
+            fields.update(kind=ast.Constant("interval"), param=ast.Constant(left.name), entries=_const(left.entries),
+                          low=low or ast.Constant(None), high=high or ast.Constant(None))
+        elif isinstance(left, tt.Apply) and left.entry in ("abs", "l1", "l2") and op == "<=" and \
+                isinstance(left.args[0], tt.ParamRef) and right.depends == "const":
+            ref = left.args[0]
+            self.value_function(bound_name, ["tun"], where, right, None)
+            if left.entry == "abs":
+                negative = f"constraint_{k}_negative_bound"
+                self.value_function(negative, ["tun"], where, tt.Neg(right, right.span), None)
+                fields.update(kind=ast.Constant("interval"), low=_name(negative), high=_name(bound_name))
+            else:
+                fields.update(kind=ast.Constant(f"{left.entry} ball"), radius=_name(bound_name))
+            fields.update(param=ast.Constant(ref.name), entries=_const(ref.entries))
+        else:
+            raise NotSupported(f"spec line {c.span.line}: constraint '{info.text}' is not a sign, bound, box, L1 ball "
+                               "or L2 ball on a learned parameter; the NumPy backend cannot project on it "
+                               "(the cvxpy backend can)")
+        return ast.Dict([ast.Constant(k2) for k2 in fields], list(fields.values()))
+
+    def score_table(self) -> ast.expr:
+        spec = self.checked.spec
+        if spec.score is None:
+            raise NotSupported("the spec has no score")
+        try:
+            form = score_form(self.checked, tuple(spec.table.explicit_inputs() or ()) if spec.table else ())
+        except ValueError as err:
+            raise NotSupported(f"spec line {spec.score.span.line}: {err}") from None
+        dots, scalars = [], []
+        for k, b in enumerate(form.blocks):
+            if b.dot:
+                dots.append(ast.Tuple([ast.Constant(b.param), _const(b.entries if b.entries else None),
+                                       ast.Constant(b.sign)], ast.Load()))
+            else:
+                coef: ast.expr = ast.Constant(None)
+                if b.coefficient is not None:
+                    fname = f"score_coefficient_{k}"
+                    self.value_function(fname, ["cols", "tun"], f"The score (spec line {spec.score.span.line}): the "
+                                        f"factor {render(b.coefficient)} of {b.param}.", b.coefficient, "data")
+                    coef = _name(fname)
+                scalars.append(ast.Tuple([ast.Constant(b.param), _const(b.entries), ast.Constant(b.sign), coef],
+                                         ast.Load()))
+        offset: ast.expr = ast.Constant(None)
+        if form.offset:
+            total = form.offset[0]
+            for piece in form.offset[1:]:
+                total = tt.Add(total, piece, piece.span, piece.shape, piece.depends)
+            self.value_function("score_offset", ["cols", "tun"], f"The score (spec line {spec.score.span.line}): "
+                                f"the part without learned parameters, {render(total)}.", total, "data")
+            offset = _name("score_offset")
+        fields = {"standard": ast.Constant(bool(form.standard)), "dots": ast.Tuple(dots, ast.Load()),
+                  "scalars": ast.Tuple(scalars, ast.Load()), "offset": offset,
+                  "weights": ast.Constant(form.weights_name), "intercept": ast.Constant(form.intercept_name)}
+        return ast.Dict([ast.Constant(k) for k in fields], list(fields.values()))
+
+    def table_table(self) -> ast.expr:
+        """How the command line reads a CSV: the spec's table clauses as plain data."""
+        tb = self.checked.spec.table
+        if tb is None:
+            return ast.Constant(None)
+        features = []
+        for k, f in enumerate(tb.features):
+            fname = f"feature_{k}"
+            self.feature_function(fname, f)
+            features.append(ast.Tuple([ast.Constant(f.name), _name(fname)], ast.Load()))
+        label_map = None
+        if tb.label_map is not None and tb.label_map.pairs:
+            label_map = tuple((v, float(lab)) for v, lab in tb.label_map.pairs)
+        fields = {
+            "path": ast.Constant(tb.path), "target": ast.Constant(tb.target), "label_map": _const(label_map),
+            "inputs": _const(tuple((i.kind, i.text) for i in tb.inputs)),
+            "excluded": _const(tuple(e.text for e in tb.excluded)),
+            "features": ast.Tuple(features, ast.Load()),
+            "row_weight": ast.Constant(tb.row_weight),
+            "class_weights": _const(tuple((float(a), float(b)) for a, b in tb.class_weights)),
+            "standardize": ast.Constant(bool(tb.standardize)),
+            "holdout": _const((float(tb.holdout), int(tb.holdout_seed)) if tb.holdout is not None else None),
+            "missing": ast.Constant(tb.missing),
+        }
+        return ast.Dict([ast.Constant(k) for k in fields], list(fields.values()))
+
+    def feature_function(self, fname: str, f: tt.DerivedFeature) -> None:
+        from objc import syntax_tree as st
+        body: list[ast.stmt] = []
+
+        def walk(e) -> ast.expr:
+            if isinstance(e, st.Number):
+                return _const(float(e.value))
+            if isinstance(e, st.Name):
+                return ast.Subscript(_name("cols"), ast.Constant(e.id), ast.Load())
+            if isinstance(e, st.Negate):
+                return ast.UnaryOp(ast.USub(), walk(e.operand))
+            if isinstance(e, st.Binary) and e.op in "+-*/":
+                op = {"+": ast.Add(), "-": ast.Sub(), "*": ast.Mult(), "/": ast.Div()}[e.op]
+                return _binop(walk(e.left), op, walk(e.right))
+            if isinstance(e, st.Power) and isinstance(e.exponent, st.Number):
+                return _call(self.kernel(CATALOG["power"].value), walk(e.base), p=ast.Constant(float(e.exponent.value)))
+            if isinstance(e, st.Call) and e.func in CATALOG:
+                entry = CATALOG[e.func]
+                n_args = len(e.args) if entry.arity == 0 else entry.arity
+                args = [walk(a) for a in e.args[:n_args]]
+                literal = [a.value if isinstance(a, st.Number) else None for a in e.args[n_args:]]
+                if any(v is None for v in literal):
+                    raise NotSupported(f"spec line {e.span.line}: options must be literal numbers")
+                opts = entry.resolve_options(tuple(float(v) for v in literal))
+                return _call(self.kernel(entry.value), *args, **{k: ast.Constant(v) for k, v in opts.items()})
+            raise NotSupported(f"spec line {f.span.line}: feature {f.name!r} uses an expression the NumPy module "
+                               "cannot compute")
+        value = walk(f.expr)
+        doc = f"Derived input {f.name!r} (spec line {f.span.line}) from the table's columns."
+        body.append(ast.Return(_call(_attr("np", "asarray"), value, dtype=_attr("np", "float64"))))
+        self.defs.append(_function(fname, ["cols"], doc, body))
+
+    # ---- the module
+
+    def spec_table(self) -> ast.expr:
+        c = self.checked
+        spec = c.spec
+        terms = [self.term_table(t) for t in c.terms]
+        constraints = [self.constraint_table(k) for k in range(len(spec.constraints))]
+        score = self.score_table()
+        table = self.table_table()
+        method = plan_method(c)
+        trainable = c.verdict != "not subdifferentiable"
+        refusal = "" if trainable else ("the objective is not subdifferentiable (it uses the 0-1 loss, which is "
+                                        "for evaluation only): nothing can be trained on it")
+        needs_target = any(_uses_target(t.core) for t in c.terms)
+        tunables = {t.name: float(t.default) for t in spec.tunables}
+        ranges = {t.name: (float(t.low), float(t.high)) for t in spec.tunables}
+        arguments = _python_arguments(tuple(tunables))
+        inputs = tuple(spec.table.explicit_inputs()) if spec.table is not None and \
+            spec.table.explicit_inputs() is not None else None
+        fields: dict[str, ast.expr] = {
+            "name": ast.Constant(spec.source_name), "sha256": ast.Constant(c.spec_hash),
+            "verdict": ast.Constant(c.verdict), "accepted": ast.Constant(bool(c.accepted)),
+            "trainable": ast.Constant(trainable), "refusal": ast.Constant(refusal),
+            "method": ast.Constant(method), "method_text": ast.Constant(_METHOD_TEXT[method]),
+            "task": ast.Constant(c.task), "needs_target": ast.Constant(needs_target),
+            "parameters": _const(tuple((p.name, bool(p.vector)) for p in spec.parameters)),
+            "inputs": _const(inputs),
+            "tunables": _const(tunables), "tunable_ranges": _const(ranges),
+            "tunable_arguments": _const(arguments),
+            "score": score, "terms": ast.Tuple(terms, ast.Load()),
+            "constraints": ast.Tuple(constraints, ast.Load()), "table": table,
+            "text": _name("SPEC_TEXT"),
+        }
+        return ast.Dict([ast.Constant(k) for k in fields], list(fields.values()))
+
+    def estimator_class(self) -> ast.ClassDef:
+        """`Model`: the scikit-learn style estimator, with the tunables as constructor arguments."""
+        spec = self.checked.spec
+        arguments = _python_arguments(tuple(t.name for t in spec.tunables))
+        defaults = {arguments[t.name]: float(t.default) for t in spec.tunables}
+        fixed = {"tol": 1e-6, "max_passes": None, "allow_nonconvex": False, "use_scipy": True}
+        names = list(defaults) + list(fixed)
+        values = list(defaults.values()) + list(fixed.values())
+        args = ast.arguments(posonlyargs=[], args=[ast.arg("self")], vararg=None,
+                             kwonlyargs=[ast.arg(n) for n in names], kw_defaults=[_const(v) for v in values],
+                             kwarg=None, defaults=[])
+        body: list[ast.stmt] = [ast.Expr(ast.Constant(
+            "Estimator for the spec above. Keyword arguments: the spec's tunables (by name), then the solver "
+            "settings tol, max_passes, allow_nonconvex, use_scipy."))]
+        for n in names:
+            body.append(ast.Assign([ast.Attribute(_name("self"), n, ast.Store())], _name(n)))
+        init = ast.FunctionDef(name="__init__", args=args, body=body, decorator_list=[], returns=None,
+                               type_params=[])
+        doc = ast.Expr(ast.Constant(
+            f"A linear model trained on the objective of {spec.source_name!r}, following scikit-learn's "
+            "conventions (fit, predict, decision_function, score, get_params, set_params; fitted attributes "
+            "end in '_') without importing scikit-learn."))
+        param_names = ast.Assign([ast.Name("_param_names", ast.Store())], _const(tuple(names)))
+        base = "ClassifierBase" if self.checked.task == "margin" else "EstimatorBase"
+        return ast.ClassDef(name="Model", bases=[_name(base)], keywords=[],
+                            body=[doc, param_names, init], decorator_list=[], type_params=[])
+
+
+def _uses_target(e: tt.TExpr) -> bool:
+    if isinstance(e, tt.DataRef) and e.kind == "target":
+        return True
+    if isinstance(e, tt.ScoreRef):
+        return False
+    return any(_uses_target(c) for c in _children(e) + ((e.body,) if isinstance(e, tt.CustomLoss) else ()))
+
+
+def _header(checked: CheckedObjective) -> str:
+    spec = checked.spec
+    method = plan_method(checked)
+    lines = [
+        f"objc NumPy module for the spec {spec.source_name!r}.",
+        "",
+        "Generated by objc from the spec below: regenerate it rather than edit it. Needs only NumPy",
+        "(SciPy's L-BFGS-B and threadpoolctl are used when importable).",
+        "",
+        f"spec sha256: {checked.spec_hash}",
+        f"verdict: {checked.verdict}" + (" (smooth)" if checked.smooth else " (nonsmooth)"),
+        f"method: {_METHOD_TEXT[method]}",
+        "certificate: the duality gap where every conjugate is known, else an optimality residual",
+        "",
+        "Use: `from <this module> import Model` (fit / predict / decision_function), `solve(X, y, ...)`,",
+        "or as a script: `python <this file> TABLE.csv -o model.json`.",
+        "",
+        "The objective, expanded:",
+        "",
+        textwrap.indent(checked.expanded, "    "),
+        "",
+        "The spec:",
+        "",
+        textwrap.indent(spec.text.rstrip("\n"), "    "),
+    ]
+    return "\n".join(lines) + "\n"
+
+
+def emit_module(checked: CheckedObjective) -> str:
+    """The standalone NumPy module for a checked objective (byte-identical for the same spec).
+
+    Raises NotSupported when the spec holds something this backend cannot solve (a constraint it
+    cannot project on, a term mixing rows and other expressions), with the spec line.
+    """
+    if checked.verdict == "not subdifferentiable":
+        raise NotSupported("the objective is not subdifferentiable: the 0-1 loss is for evaluation only, so "
+                           "nothing can be trained on it (train a surrogate such as hinge or logistic)")
+    em = _Emitter(checked)
+    spec_table = em.spec_table()
+    estimator = em.estimator_class()
+    body: list[ast.stmt] = [ast.Expr(ast.Constant(_header(checked)))]
+    body += ast.parse(_IMPORTS).body
+    body.append(ast.Assign([ast.Name("SPEC_TEXT", ast.Store())], ast.Constant(checked.spec.text)))
+    body.append(ast.Assign([ast.Name("SPEC_SHA256", ast.Store())], ast.Constant(checked.spec_hash)))
+    body.append(ast.Assign([ast.Name("VERDICT", ast.Store())], ast.Constant(checked.verdict)))
+    body.append(ast.Assign([ast.Name("METHOD", ast.Store())], ast.Constant(_METHOD_TEXT[plan_method(checked)])))
+    body += _kernel_defs(em.kernels)
+    body += em.defs
+    body.append(ast.Assign([ast.Name("SPEC", ast.Store())], spec_table))
+    body += _runtime_defs()
+    body.append(estimator)
+    body += ast.parse(_TAIL).body
+    module = ast.Module(body=body, type_ignores=[])
+    ast.fix_missing_locations(module)
+    source = _add_section_comments(ast.unparse(module))
+    source = source.replace(ast.unparse(body[[i for i, b in enumerate(body) if _assigns(b, "SPEC")][0]]),
+                            "SPEC = " + _layout(spec_table, 0), 1)
+    # the layout only adds line breaks: the tree must be the very one built above
+    if ast.dump(ast.parse(source)) != ast.dump(module):
+        raise AssertionError("the laid-out module differs from its syntax tree")
+    return source
+
+
+def _assigns(node: ast.stmt, name: str) -> bool:
+    return isinstance(node, ast.Assign) and isinstance(node.targets[0], ast.Name) and node.targets[0].id == name
+
+
+def _layout(node: ast.expr, depth: int, width: int = 100) -> str:
+    """A dict or tuple literal spread over lines, one entry per line, when it is too long for one."""
+    flat = ast.unparse(node)
+    if len(flat) + 4 * depth <= width or not isinstance(node, (ast.Dict, ast.Tuple)):
+        return flat
+    pad = "    " * (depth + 1)
+    if isinstance(node, ast.Dict):
+        items = [f"{pad}{ast.unparse(k)}: {_layout(v, depth + 1, width)}," for k, v in zip(node.keys, node.values)]
+        return "{\n" + "\n".join(items) + "\n" + "    " * depth + "}"
+    items = [f"{pad}{_layout(v, depth + 1, width)}," for v in node.elts]
+    return "(\n" + "\n".join(items) + "\n" + "    " * depth + ")"
+
+
+_IMPORTS = '''
+import math
+import sys
+import numpy as np
+try:
+    import scipy.optimize as _scipy_optimize
+except ImportError:
+    _scipy_optimize = None
+try:
+    import threadpoolctl as _threadpoolctl
+except ImportError:
+    _threadpoolctl = None
+'''
+
+_TAIL = '''
+def solve(X, y, weights=None, input_names=None, tunables=None, tol=1e-06, max_passes=None, allow_nonconvex=False,
+          theta0=None, progress=None, use_scipy=True):
+    """Fit the spec's objective: X (rows x inputs, dense or CSR), y, optional row weights, input names
+    (default: the spec's inputs), tunable values by spec name. Returns a dict: params, objective,
+    term_values, status, method, certificate, iterations, passes, seconds."""
+    return run_solver(SPEC, X, y, weights, input_names, tunables, tol, max_passes, allow_nonconvex, theta0,
+                      progress, use_scipy)
+
+
+def decision_function(params, X, input_names=None, tunables=None):
+    """The score s = w . x + b (as the spec defines it) of each row, from fitted parameters."""
+    return decision_values(SPEC, params, X, input_names, tunables)
+
+
+def predict(params, X, input_names=None, tunables=None):
+    """Labels +1/-1 for a margin spec (the sign of the score, 0 counted as -1), else the score."""
+    s = decision_function(params, X, input_names, tunables)
+    return np.where(s > 0, 1.0, -1.0) if SPEC["task"] == "margin" else s
+
+
+if __name__ == "__main__":
+    sys.exit(main())
+'''
+
+
+def _add_section_comments(source: str) -> str:
+    """Comment lines before each generated section (ast drops comments; these are inserted after
+    unparsing, at fixed anchors, so the output stays deterministic)."""
+    anchors = [
+        ("SPEC_TEXT = ", "# ---- the spec, verbatim (its sha256 and verdict follow)"),
+        ("def _k_", "# ---- catalog kernels, copied by source from objc/catalog.py"),
+        ("def term_", "# ---- generated from the spec's typed tree (each docstring names its spec line)"),
+        ("SPEC = {", "# ---- the spec as a table the solver reads"),
+        ("class SolverInputError", "# ---- generic solver code, copied by source from objc/backends/"),
+        ("class Model(", "# ---- the estimator for this spec"),
+        ("def solve(", "# ---- functions for use without the estimator"),
+    ]
+    lines = source.split("\n")
+    out: list[str] = []
+    done: set[str] = set()
+    for line in lines:
+        for anchor, comment in anchors:
+            if anchor not in done and line.startswith(anchor):
+                done.add(anchor)
+                if out and out[-1] != "":
+                    out.append("")
+                out.append(comment)
+        out.append(line)
+    return "\n".join(out) + ("\n" if not source.endswith("\n") else "")
+
+
+# ---------------------------------------------------------------- in-process training
+
+def load_module(source: str, name: str = "objc_generated") -> dict[str, Any]:
+    """Compile and execute generated source in a fresh namespace (what `python module.py` would run)."""
+    namespace: dict[str, Any] = {"__name__": name}
+    exec(compile(source, f"<{name}>", "exec"), namespace)  # noqa: S102 - our own generated source
+    return namespace
+
+
+def fit(checked: CheckedObjective, X: Any, y: Any, weights: Any, input_names: tuple[str, ...] | list[str],
+        tunables: dict[str, float] | None = None, tol: float = 1e-6, max_passes: int | None = None,
+        allow_nonconvex: bool = False, theta0: Any = None, progress: Callable[[int, float, float], None] | None = None,
+        use_scipy: bool = True) -> FitResult:
+    """Train with the generated module itself: emit, compile, execute, call its solver.
+
+    Raises NotSupported for specs this backend cannot solve and ValueError for unusable data or
+    settings (the message says which)."""
+    ns = load_module(emit_module(checked), "objc_fit")
+    out = ns["solve"](X, y, weights, tuple(input_names) if input_names is not None else None, tunables, tol,
+                      max_passes, allow_nonconvex, theta0, progress, use_scipy)
+    cert = out["certificate"]
+    return FitResult(params=out["params"], objective=float(out["objective"]), term_values=tuple(out["term_values"]),
+                     status=out["status"], backend="numpy", method=out["method"],
+                     certificate=Certificate(cert["kind"], cert["absolute"], cert["relative"], cert["tolerance"],
+                                             cert["note"]),
+                     iterations=int(out["iterations"]), passes=int(out["passes"]), seconds=float(out["seconds"]),
+                     extra={"theta": out["theta"], "input_names": out["input_names"]})
