@@ -259,7 +259,7 @@ def _metric_lines(m: dict) -> list[str]:
 # ---------------------------------------------------------------- eval / predict
 
 def cmd_eval(args) -> int:
-    from objc import tables, training
+    from objc import training
     from objc.model_io import load_model
     model = load_model(Path(args.model))
     doc = model.document
@@ -268,15 +268,12 @@ def cmd_eval(args) -> int:
         data = training.bind_for_model(checked, doc, Path(args.table), need_target=True)
         where = args.table
     else:
-        spec_path = Path(doc["spec"]["path"])
-        train, held, held_label = training.bind_training(checked, spec_path.parent)
-        data = held if held is not None else train
-        where = held_label if held is not None else f"the training table {doc['schema']['training_table']} " \
-                                                    "(the spec has no holdout or validation table)"
-        if held is None or True:
-            std = doc["schema"]["standardization"]
-            if std is not None:  # use the model's own statistics, not ones refitted here
-                data = training.bind_for_model(checked, doc, train.source, need_target=True) if held is None else data
+        train, held, held_label = training.bind_training(checked, training.spec_dir_of(doc))
+        if held is not None:
+            data, where = held, held_label
+        else:  # bound again by the model's schema, so its own standardization statistics apply
+            data = training.bind_for_model(checked, doc, train.source, need_target=True)
+            where = f"the training table {doc['schema']['training_table']} (the spec holds no rows out)"
     form = training.form_for(checked, tuple(doc["schema"]["inputs"]))
     s = training.scores(form, model.params, data.X, data.y)
     m = training.metrics(doc["task"], data.y, s, data.weights, checked)
@@ -303,15 +300,10 @@ def cmd_predict(args) -> int:
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
     if doc["task"] == "margin":
-        label_map = doc["schema"]["label_map"]
+        # each label is written back as the first table value the spec maps to it
         back = {1.0: "+1", -1.0: "-1"}
-        if label_map:
-            for raw, lab in label_map:
-                back.setdefault(float(lab), raw) if False else None
-            firsts = {}
-            for raw, lab in label_map:
-                firsts.setdefault(float(lab), raw)
-            back = {k: str(v) for k, v in firsts.items()}
+        for raw, lab in reversed(doc["schema"]["label_map"] or []):
+            back[float(lab)] = str(raw)
         writer.writerow(["row", "score", "label"])
         for r, v in zip(data.rows, s):
             writer.writerow([int(r), repr(float(v)), back[1.0 if v > 0 else -1.0]])

@@ -166,7 +166,8 @@ def model_document(checked: CheckedObjective, spec_path: Path, data: tables.Boun
                    held_label: str) -> dict:
     std = data.standardization
     return {
-        "spec": {"path": str(spec_path), "sha256": checked.spec_hash, "text": checked.spec.text},
+        "spec": {"path": str(spec_path), "resolved_path": str(Path(spec_path).resolve()),
+                 "sha256": checked.spec_hash, "text": checked.spec.text},
         "verdict": checked.verdict,
         "smooth": checked.smooth,
         "task": data.task,
@@ -205,6 +206,15 @@ def _file_hash(path: Path) -> str | None:
         return h.hexdigest()
     except OSError:
         return None
+
+
+def spec_dir_of(document: dict) -> Path:
+    """The folder the model's spec was in (its table paths are relative to it): the path as given
+    when it still exists from here, else the absolute path recorded at training time."""
+    given = Path(document["spec"]["path"])
+    if given.exists():
+        return given.parent
+    return Path(document["spec"].get("resolved_path", given)).parent
 
 
 def checked_from_model(document: dict, model_path: Path) -> CheckedObjective:
