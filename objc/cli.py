@@ -524,6 +524,11 @@ def main(argv: list[str] | None = None) -> int:
         else:
             sys.stderr.write(f"objc {args.command}: {err}\n")
         return EXIT_USAGE
+    except BrokenPipeError:
+        # the reader of our output went away (e.g. `| head`): stop quietly, as other command-line tools do
+        import os
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_OK
     except KeyboardInterrupt:
         sys.stderr.write("objc: interrupted; nothing was written\n")
         return 130
