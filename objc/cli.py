@@ -226,7 +226,7 @@ def cmd_fit(args) -> int:
              f"backend   {result.backend}: {result.method}  ->  {result.status}",
              f"time      {result.seconds:.3f} s" + (f", {result.passes} passes over the data" if result.passes else "")
              + f", {result.iterations} iterations",
-             f"optimal   {cert.kind}" + (f": absolute {cert.absolute:.3g}, relative {cert.relative:.3g}"
+             f"stopped   on the {cert.kind}" + (f": absolute {cert.absolute:.3g}, relative {cert.relative:.3g}"
                                         if cert.absolute is not None else "") + (f" ({cert.note})" if cert.note else ""),
              "", _rule("objective"), f"  {result.objective:.10g}  total"]
     for t, v in zip(checked.terms, result.term_values):
