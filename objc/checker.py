@@ -536,15 +536,7 @@ def _rows_body(e: tt.TExpr) -> tt.TExpr:
     """e with every row aggregate replaced by its per-row operand (so rows can be evaluated one by one)."""
     if isinstance(e, tt.Aggregate) and e.over == "rows":
         return e.operand
-    if isinstance(e, tt.Add):
-        return tt.Add(_rows_body(e.left), _rows_body(e.right), e.span, e.shape, e.depends)
-    if isinstance(e, tt.Mul):
-        return tt.Mul(_rows_body(e.left), _rows_body(e.right), e.span, e.shape, e.depends)
-    if isinstance(e, tt.Div):
-        return tt.Div(_rows_body(e.left), _rows_body(e.right), e.span, e.shape, e.depends)
-    if isinstance(e, tt.Neg):
-        return tt.Neg(_rows_body(e.operand), e.span, e.shape, e.depends)
-    return e
+    return tt.map_children(e, _rows_body)
 
 
 def _margin_only(e: tt.TExpr) -> bool:
@@ -890,24 +882,8 @@ def check(spec: tt.ResolvedSpec, source: SourceText | None = None) -> CheckedObj
 
 def _substitute_arg(node: tt.CustomLoss) -> tt.TExpr:
     """The custom loss body with its argument shown as the loss's own variable again."""
-    arg = node.arg
-
-    def sub(e):
-        if e == arg:
-            return tt.DataRef(node.param, "column", e.span)
-        if isinstance(e, tt.Add):
-            return tt.Add(sub(e.left), sub(e.right), e.span, e.shape, e.depends)
-        if isinstance(e, tt.Mul):
-            return tt.Mul(sub(e.left), sub(e.right), e.span, e.shape, e.depends)
-        if isinstance(e, tt.Div):
-            return tt.Div(sub(e.left), sub(e.right), e.span, e.shape, e.depends)
-        if isinstance(e, tt.Neg):
-            return tt.Neg(sub(e.operand), e.span, e.shape, e.depends)
-        if isinstance(e, tt.Apply):
-            return tt.Apply(e.entry, tuple(sub(a) for a in e.args), e.options, e.span, e.shape, e.depends)
-        if isinstance(e, tt.CustomLoss):
-            return tt.CustomLoss(e.name, sub(e.arg), e.body, e.param, e.definition_span, e.span, e.shape, e.depends)
-        return e
+    def sub(e: tt.TExpr) -> tt.TExpr:
+        return tt.DataRef(node.param, "column", e.span) if e == node.arg else tt.map_children(e, sub)
     return sub(node.body)
 
 
@@ -922,26 +898,7 @@ def _within(inner: Span, outer: Span) -> bool:
 
 def _strip_scores(e: tt.TExpr) -> tt.TExpr:
     """The expression with every score reference replaced by a constant (to find stray parameters)."""
-    if isinstance(e, tt.ScoreRef):
-        return tt.Const(0.0, e.span)
-    if isinstance(e, tt.Add):
-        return tt.Add(_strip_scores(e.left), _strip_scores(e.right), e.span, e.shape, e.depends)
-    if isinstance(e, tt.Mul):
-        return tt.Mul(_strip_scores(e.left), _strip_scores(e.right), e.span, e.shape, e.depends)
-    if isinstance(e, tt.Div):
-        return tt.Div(_strip_scores(e.left), _strip_scores(e.right), e.span, e.shape, e.depends)
-    if isinstance(e, tt.Dot):
-        return tt.Dot(_strip_scores(e.left), _strip_scores(e.right), e.span, e.shape, e.depends)
-    if isinstance(e, tt.Neg):
-        return tt.Neg(_strip_scores(e.operand), e.span, e.shape, e.depends)
-    if isinstance(e, tt.Aggregate):
-        return tt.Aggregate(e.kind, _strip_scores(e.operand), e.over, e.span, e.shape, e.depends)
-    if isinstance(e, tt.Apply):
-        return tt.Apply(e.entry, tuple(_strip_scores(a) for a in e.args), e.options, e.span, e.shape, e.depends)
-    if isinstance(e, tt.CustomLoss):
-        return tt.CustomLoss(e.name, _strip_scores(e.arg), _strip_scores(e.body), e.param, e.definition_span,
-                             e.span, e.shape, e.depends)
-    return e
+    return tt.Const(0.0, e.span) if isinstance(e, tt.ScoreRef) else tt.map_children(e, _strip_scores)
 
 
 def _calibration_note(node: tt.CustomLoss) -> str:

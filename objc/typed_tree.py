@@ -8,7 +8,7 @@ so a constant to the optimizer), "params" (learned quantities).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Literal, Union
 
 from objc import syntax_tree as st
@@ -248,6 +248,21 @@ def children(e: TExpr) -> tuple[TExpr, ...]:
     if isinstance(e, ScoreRef):
         return (e.expr,)
     return ()
+
+
+def map_children(e: TExpr, f) -> TExpr:
+    """The same node with `f` applied to each direct subexpression (the node itself is kept)."""
+    if isinstance(e, (Add, Mul, Div, Dot)):
+        return replace(e, left=f(e.left), right=f(e.right))
+    if isinstance(e, (Neg, Aggregate)):
+        return replace(e, operand=f(e.operand))
+    if isinstance(e, Apply):
+        return replace(e, args=tuple(f(a) for a in e.args))
+    if isinstance(e, CustomLoss):
+        return replace(e, arg=f(e.arg), body=f(e.body))
+    if isinstance(e, ScoreRef):
+        return replace(e, expr=f(e.expr))
+    return e
 
 
 # ---------------------------------------------------------------- the resolved spec
