@@ -111,12 +111,36 @@ def cmd_check(args) -> int:
     checked = check_file(args.spec)
     ok = checked.accepted or (args.local_ok and checked.subdifferentiable and not [
         d for d in checked.errors if d.code not in ("E311", "E312", "E313", "E314", "E315")])
+    data_problems: tuple = ()
+    data_summary = None
+    if args.with_data and checked.spec.table is not None:
+        # bind the table as fit would (labels, weights, missing values, standardization) without training
+        from objc import training
+        try:
+            train, held, _ = training.bind_training(checked, Path(args.spec).parent)
+            data_summary = {"rows": train.n_rows, "inputs": list(train.input_names),
+                            "held_out_rows": None if held is None else held.n_rows, "task": train.task,
+                            "warnings": _diag_list(train.warnings, checked.source)}
+        except SpecError as err:
+            data_problems = err.diagnostics
+            ok = False
     if args.json:
         doc = _check_json(checked)
         doc["ok"] = ok
+        if args.with_data:
+            doc["data"] = data_summary
+            doc["errors"] += _diag_list(data_problems, checked.source)
         _emit_json(doc)
     else:
         sys.stdout.write(_check_text_report(checked))
+        if args.with_data:
+            sys.stdout.write("\n" + _rule("the table") + "\n")
+            if data_summary is not None:
+                sys.stdout.write(f"  {data_summary['rows']} training rows x {len(data_summary['inputs'])} inputs"
+                                 + (f", {data_summary['held_out_rows']} held out" if data_summary["held_out_rows"]
+                                    else "") + ": the table binds cleanly\n")
+            for d in data_problems:
+                sys.stdout.write(d.render(checked.source) + "\n")
     return EXIT_OK if ok else EXIT_SPEC
 
 
@@ -451,6 +475,8 @@ def _parser() -> argparse.ArgumentParser:
     c.add_argument("spec")
     c.add_argument("--local-ok", action="store_true",
                    help="accept a non-convex but subdifferentiable objective (its minimum is only local)")
+    c.add_argument("--with-data", action="store_true",
+                   help="also read the spec's table and check it as training would (labels, weights, values)")
     common(c)
     b = sub.add_parser("build", help="write a standalone solver module for a spec")
     b.add_argument("spec")

@@ -269,3 +269,17 @@ def test_numpy_fit_records_convergence_for_plotting(tmp_path, capsys):
     assert len(history) >= 2 and history[-1]["passes"] >= history[0]["passes"]
     assert run(["plot", "convergence", tmp_path / "m.json", "-o", tmp_path / "c.png"], capsys)[0] == 0
     assert (tmp_path / "c.png").read_bytes()[:4] == b"\x89PNG"
+
+
+def test_check_with_data_reads_the_table(tmp_path, capsys):
+    rows = _good_rows()
+    rows[3]["late"] = "perhaps"
+    _write_table(tmp_path / "t.csv", rows)
+    spec = _spec(tmp_path)
+    assert run(["check", spec], capsys)[0] == 0  # the spec alone is fine
+    code, out, _ = run(["check", spec, "--with-data"], capsys)
+    assert code == 1 and "T130" in out and "perhaps" in out
+    _write_table(tmp_path / "t.csv", _good_rows())
+    code, out, _ = run(["check", spec, "--with-data", "--json"], capsys)
+    doc = json.loads(out)
+    assert code == 0 and doc["data"]["rows"] == 40 and doc["data"]["inputs"] == ["a", "b", "c"]
