@@ -972,9 +972,9 @@ def _expanded(spec: tt.ResolvedSpec, terms: list[Term], cinfo: list[ConstraintIn
             break
     if intercept:
         lines.append(f"  intercept {intercept}: " + ("penalized, as the goal says" if penalized else "not penalized"))
-    if cinfo:
+    if spec.constraints:
         lines.append("subject to:")
-        lines.extend(f"    {c.text}" for c in cinfo)
+        lines.extend(f"    {render(c.left)} {c.op} {render(c.right)}" for c in spec.constraints)
     return "\n".join(lines)
 
 
