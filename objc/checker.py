@@ -742,7 +742,7 @@ def check(spec: tt.ResolvedSpec, source: SourceText | None = None) -> CheckedObj
                 hint="train with a surrogate such as hinge(y * s) or logistic(y * s); `objc eval` reports the 0-1 "
                 "error of every model")
         elif t.verdict in ("not convex", "not provable", "concave"):
-            f = analyse(_term_expr(t))
+            f = analyse(t.expr)
             fault = f.fault
             span = fault.span if fault else t.span
             if spec.score is not None and fault is not None and _within(fault.span, spec.score.span):
@@ -875,7 +875,7 @@ def check(spec: tt.ResolvedSpec, source: SourceText | None = None) -> CheckedObj
             verdict = "not convex" if any(t.witness for t in terms) else "concave"
     smooth = all(t.smooth for t in terms)
     spec_hash = hashlib.sha256(spec.text.encode("utf-8")).hexdigest()
-    expanded = _expanded(spec, terms, cinfo, intercept, penalized)
+    expanded = _expanded(spec, terms, intercept, penalized)
     return CheckedObjective(spec, source, spec_hash, tuple(terms), tuple(cinfo), verdict, smooth, task,
                             tuple(errors), tuple(warnings), expanded, penalized, intercept)
 
@@ -885,10 +885,6 @@ def _substitute_arg(node: tt.CustomLoss) -> tt.TExpr:
     def sub(e: tt.TExpr) -> tt.TExpr:
         return tt.DataRef(node.param, "column", e.span) if e == node.arg else tt.map_children(e, sub)
     return sub(node.body)
-
-
-def _term_expr(t: Term) -> tt.TExpr:
-    return t.expr
 
 
 def _within(inner: Span, outer: Span) -> bool:
@@ -922,7 +918,7 @@ def _calibration_note(node: tt.CustomLoss) -> str:
     return ""
 
 
-def _expanded(spec: tt.ResolvedSpec, terms: list[Term], cinfo: list[ConstraintInfo], intercept: str | None,
+def _expanded(spec: tt.ResolvedSpec, terms: list[Term], intercept: str | None,
               penalized: bool) -> str:
     """The goal with every weight multiplied out and every convention spelled out."""
     learned = ", ".join(f"{p.name} (one weight per input)" if p.vector else f"{p.name} (a number)"
@@ -977,7 +973,3 @@ def _expanded(spec: tt.ResolvedSpec, terms: list[Term], cinfo: list[ConstraintIn
         lines.extend(f"    {render(c.left)} {c.op} {render(c.right)}" for c in spec.constraints)
     return "\n".join(lines)
 
-
-# older private names, kept while other modules move to the public ones
-_Env = EvalEnv
-_children = tt.children

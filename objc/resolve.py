@@ -464,8 +464,6 @@ class _Resolver:
         except ValueError as err:
             self.error("E239", str(err), e.span)
             return bad
-        if not entry.trainable and where != "eval":
-            pass  # kept in the tree; the checker refuses it with a reason
         for a in args:
             if a.shape.kind == "matrix":
                 self.error("E228", "x is the input matrix; it can only appear in a dot product such as w . x",

@@ -260,11 +260,11 @@ def test_custom_loss_is_the_formula_it_states():
     # blend(m) = 0.5 max(0, 1 - m)^2 + 0.5 log(1 + e^-m) as OBJECTIVES.md (item 8) writes it, evaluated
     # with numpy at a few margins and compared with the checker's evaluation of the resolved loss body
     # (which reads log(1 + exp(-m)) as softplus(-m))
-    from objc.checker import _Env, evaluate
+    from objc.checker import EvalEnv, evaluate
     c = checked(SPECS / "parcel_custom_loss.objc")
     (node,) = {n.name: n for n in _walk(c.spec.goal) if isinstance(n, tt.CustomLoss)}.values()
     m = np.array([-30.0, -2.0, -0.5, 0.0, 0.3, 1.0, 4.0, 40.0])
-    env = _Env(["a"], {}, {}, np.ones(len(m)), score_override=m)
+    env = EvalEnv(["a"], {}, {}, np.ones(len(m)), score_override=m)
     got = evaluate(node.body, env)
     want = 0.5 * np.maximum(0.0, 1.0 - m) ** 2 + 0.5 * np.log1p(np.exp(-m))
     assert np.allclose(got, want, rtol=1e-12, atol=1e-12)
