@@ -118,6 +118,14 @@ def _k_logistic_d(m):
     return -np.exp(-np.logaddexp(0.0, m))
 
 
+def _k_logistic_vd(m):
+    # value and derivative from one exp and one log1p (the solver needs both at every step):
+    # log(1 + e^-m) = max(-m, 0) + log1p(e^-|m|), and sigma(-m) from the same e^-|m|
+    e = np.exp(-np.abs(m))
+    inv = 1.0 / (1.0 + e)
+    return np.maximum(-m, 0.0) + np.log1p(e), -np.where(m >= 0.0, e * inv, inv)
+
+
 def _k_logistic_prox(v, g):
     x = np.array(v, dtype=float, copy=True)
     for _ in range(60):
@@ -497,6 +505,8 @@ class Entry:
     grad_lipschitz: Callable[[dict], float | None] = field(default=lambda _o: None)
     prox: Callable[..., Any] | None = None
     conjugate: Callable[..., Any] | None = None
+    # optional: (value, derivative) in one call, for entries where computing both together is cheaper
+    value_and_derivative: Callable[..., Any] | None = None
     role: Literal["margin", "residual", None] = None
     calibrated: bool | None = None
     trainable: bool = True
@@ -631,7 +641,8 @@ ENTRIES: tuple[Entry, ...] = (
     Entry("logistic", "loss", "logistic loss of the margin (natural log)", "log(1 + exp(-m))",
           _const(CONVEX), _fixed_mono(DEC), _nonneg, _k_logistic, _k_logistic_d,
           lambda cp, m: cp.logistic(-m), smooth=_yes, lipschitz=_k(1.0), grad_lipschitz=_k(0.25),
-          prox=_k_logistic_prox, conjugate=_k_logistic_conj, role="margin", calibrated=True),
+          prox=_k_logistic_prox, conjugate=_k_logistic_conj, role="margin", calibrated=True,
+          value_and_derivative=_k_logistic_vd),
     Entry("exponential", "loss", "exponential loss of the margin", "exp(-m)", _const(CONVEX),
           _fixed_mono(DEC), _nonneg, _k_exponential, _k_exponential_d, lambda cp, m: cp.exp(-m),
           smooth=_yes, prox=_k_exponential_prox, conjugate=_k_exponential_conj, role="margin",

@@ -707,3 +707,15 @@ def test_logistic_is_stable_at_extreme_margins() -> None:
     assert np.all(np.isfinite(val)) and np.all(np.isfinite(der)) and np.all(np.isfinite(prox))
     assert math.isclose(val[0], 1e3, rel_tol=1e-12) and val[-1] >= 0.0
     assert der[0] == -1.0 and -1e-300 <= der[-1] <= 0.0
+
+
+@pytest.mark.parametrize("entry", [e for e in catalog.ENTRIES if e.value_and_derivative is not None],
+                         ids=lambda e: e.name)
+def test_fused_value_and_derivative_equal_the_separate_kernels(entry):
+    # the fused kernel is an optimization only: it must agree with value and derivative everywhere,
+    # including far out where exp over- or underflows
+    m = np.concatenate([np.linspace(-40, 40, 2001), [-1e3, -710.0, 0.0, 710.0, 1e3]])
+    with np.errstate(over="raise", invalid="raise", divide="raise"):
+        v, d = entry.value_and_derivative(m)
+    np.testing.assert_allclose(v, entry.value(m), rtol=1e-14, atol=1e-300)
+    np.testing.assert_allclose(d, entry.derivative(m), rtol=1e-13, atol=1e-300)

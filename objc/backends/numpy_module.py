@@ -281,6 +281,11 @@ class _Code:
         value = _call(value_fn, *values, **opts)
         if all(d is None for _, d in args):
             return self._store(value, None)
+        if len(args) == 1 and entry.value_and_derivative is not None:
+            pair = self.let(_call(self.emitter.kernel(entry.value_and_derivative), *values, **opts), "pair")
+            value = ast.Subscript(pair, ast.Constant(0), ast.Load())
+            d = _mul(ast.Subscript(pair, ast.Constant(1), ast.Load()), args[0][1])
+            return self._store(value, d)
         deriv_fn = self.emitter.kernel(entry.derivative)
         if len(args) == 1:
             d = _mul(_call(deriv_fn, *values, **opts), args[0][1])
