@@ -395,21 +395,35 @@ def test_cvxpy_rebuild_solves_the_lasso_like_the_textbook_form():
 SCRIPT = SPECS / "make_demo_data.py"
 
 
+# The committed tables were written with this NumPy; NumPy does not promise the same random streams
+# across versions, so byte comparisons with the committed files only hold under it (regenerate the
+# data with `python specs/make_demo_data.py` after an upgrade and update this line).
+DATA_NUMPY = "2.4"
+SAME_NUMPY = ".".join(np.__version__.split(".")[:2]) == DATA_NUMPY
+
+
+@pytest.mark.skipif(not SAME_NUMPY, reason=f"demo data were made with NumPy {DATA_NUMPY}.x")
 def test_data_script_check_passes():
     run = subprocess.run([sys.executable, str(SCRIPT), "--check"], capture_output=True, text=True, timeout=120)
     assert run.returncode == 0, run.stderr
 
 
 def test_data_script_check_catches_a_change_and_regenerates_the_same_bytes(tmp_path):
-    copy = tmp_path / "specs"
-    (copy / "data").mkdir(parents=True)
-    shutil.copy(SCRIPT, copy / SCRIPT.name)
-    run = subprocess.run([sys.executable, str(copy / SCRIPT.name)], capture_output=True, text=True, timeout=120)
-    assert run.returncode == 0, run.stderr
+    copies = []
+    for k in range(2):  # two independent runs write the same bytes (and, under the same NumPy, the committed ones)
+        copy = tmp_path / f"specs{k}"
+        (copy / "data").mkdir(parents=True)
+        shutil.copy(SCRIPT, copy / SCRIPT.name)
+        run = subprocess.run([sys.executable, str(copy / SCRIPT.name)], capture_output=True, text=True, timeout=120)
+        assert run.returncode == 0, run.stderr
+        copies.append(copy)
+    copy = copies[0]
     generated = sorted(p.name for p in (copy / "data").iterdir())
     assert generated == sorted(p.name for p in DATA.glob("*.csv"))
-    for name in generated:  # a second, independent run writes the committed bytes
-        assert (copy / "data" / name).read_bytes() == (DATA / name).read_bytes(), name
+    for name in generated:
+        assert (copy / "data" / name).read_bytes() == (copies[1] / "data" / name).read_bytes(), name
+        if SAME_NUMPY:
+            assert (copy / "data" / name).read_bytes() == (DATA / name).read_bytes(), name
     target = copy / "data" / "library.csv"
     target.write_bytes(target.read_bytes().replace(b"\n14,", b"\n15,", 1))
     run = subprocess.run([sys.executable, str(copy / SCRIPT.name), "--check"], capture_output=True, text=True,
