@@ -419,13 +419,16 @@ _METHOD_TEXT = {
     "smoothing": "smoothing with continuation: each nonsmooth loss replaced by its Moreau envelope (through "
                  "the catalog's prox), minimized by L-BFGS, the envelope parameter shrunk until the "
                  "certificate holds; a piecewise-linear loss with a ridge penalty is finished exactly (the rows "
-                 "near a kink solved as a small QP, SciPy needed)",
+                 "near a kink solved as a small QP, a free intercept found by a 1-D search over the "
+                 "multiplier of the dual's equality; SciPy needed)",
     "smoothing+fista": "smoothing with continuation (Moreau envelopes through the catalog's prox) and "
                        "accelerated proximal gradient for the penalties and constraints; a piecewise-linear loss "
                        "with an l1 penalty is finished exactly (the rows near a kink solved as a small LP, SciPy "
                        "needed)",
     "subgradient": "subgradient method with diminishing steps: the objective is not certified convex, so the "
-                   "result is at best a local minimum (runs only with allow_nonconvex=True)",
+                   "result is at best a local minimum (runs only with allow_nonconvex=True); without theta0 "
+                   "it runs from three deterministic starts (zero, a seeded random point, the least-squares "
+                   "fit of the score to the target) and keeps the lowest objective",
 }
 
 

@@ -1236,7 +1236,10 @@ def finish_kind(pb):
         return None
     if np.any(np.isfinite(pb.lo)) or np.any(np.isfinite(pb.hi)):
         return None
-    if np.all(pb.beta > 0) and not np.any(pb.alpha > 0):
+    ridge = pb.beta > 0
+    if pb.balance:  # a free intercept: its multiplier is found by a 1-D search (`_band_qp_intercept`)
+        ridge[pb.b_index] = True
+    if np.all(ridge) and not np.any(pb.alpha > 0):
         return "qp"
     if not np.any(pb.beta > 0):
         return "lp"
@@ -1281,7 +1284,85 @@ def _design_rows(pb, rows):
     return A
 
 
-def _band_qp(pb, A, g, kink, lo, hi, tol):
+def _band_qp(pb, A, g, kink, lo, hi, tol, theta=None):
+    """Ridge case, with or without a free intercept (the latter by `_band_qp_intercept`)."""
+    if pb.balance and pb.beta[pb.b_index] == 0:
+        b0 = float(theta[pb.b_index]) if theta is not None else 0.0
+        return _band_qp_intercept(A, g, kink, lo, hi, pb.beta, pb.b_index, tol, b0)
+    return _box_qp(A, g, kink, lo, hi, pb.beta, tol)[:2]
+
+
+def _band_qp_intercept(A, g, kink, lo, hi, beta, k, tol, b0):
+    """Ridge case with a free intercept b (coordinate k, column of ones in A): the restricted dual
+    gains the equality g_k + sum v = 0. Its multiplier is b itself: for a fixed b the band problem
+    in the weights is the box QP of `_box_qp` with the kinks shifted by -b, and its optimal value
+    F(b) is convex in b with derivative F'(b) = g_k + sum v(b) (envelope theorem), nondecreasing.
+    So b is found by a bracketing root search on F' (regula falsi, Illinois variant, with a
+    bisection step whenever it stalls), each step one box QP warm-started from the last; the
+    result is then certified by the duality gap of the whole problem like any other candidate."""
+    keep = np.arange(A.shape[1]) != k
+    Aw, gw, bw = A[:, keep], g[keep], beta[keep]
+    state = {"x": None}
+
+    def slope(b):
+        theta_w, v, x = _box_qp(Aw, gw, kink - b, lo, hi, bw, tol, state["x"])
+        state["x"] = x
+        return g[k] + float(np.sum(v)), theta_w, v
+
+    def candidate(b, theta_w, v):
+        theta = np.zeros(A.shape[1])
+        theta[keep], theta[k] = theta_w, b
+        return theta, v
+
+    f0, tw0, v0 = slope(b0)
+    if f0 == 0.0:
+        return candidate(b0, tw0, v0)
+    # bracket the root: step away from b0 downhill, doubling; F' moves by at most sum(hi - lo) overall
+    step = 1e-3 * (1.0 + abs(b0))
+    direction = -1.0 if f0 > 0 else 1.0
+    a, fa, best = b0, f0, (abs(f0), b0, tw0, v0)
+    for _ in range(80):
+        b = a + direction * step
+        fb, twb, vb = slope(b)
+        if abs(fb) < best[0]:
+            best = (abs(fb), b, twb, vb)
+        if fb == 0.0 or (fb > 0) != (fa > 0):
+            break
+        a, fa, step = b, fb, 2.0 * step
+    else:
+        return None, None
+    if fb == 0.0:
+        return candidate(b, twb, vb)
+    low, f_low, high, f_high = (a, fa, b, fb) if a < b else (b, fb, a, fa)  # f_low < 0 < f_high
+    scale = float(np.sum(hi - lo)) + abs(g[k])
+    last, repeats = 0, 0
+    for _ in range(100):
+        if high - low <= 1e-14 * (1.0 + abs(low) + abs(high)) or best[0] <= 1e-14 * scale:
+            break
+        mid = (low * f_high - high * f_low) / (f_high - f_low)
+        if repeats >= 3 or not (low < mid < high):  # one end keeps moving: bisect instead
+            mid, repeats = 0.5 * (low + high), 0
+        fm, twm, vm = slope(mid)
+        if abs(fm) < best[0]:
+            best = (abs(fm), mid, twm, vm)
+        if fm == 0.0:
+            break
+        side = -1 if fm < 0 else 1
+        repeats = repeats + 1 if side == last else 1
+        if side < 0:
+            low, f_low = mid, fm
+            if last < 0:
+                f_high *= 0.5  # Illinois: halve the value at the end that stays
+        else:
+            high, f_high = mid, fm
+            if last > 0:
+                f_low *= 0.5
+        last = side
+    _, b, tw, v = best
+    return candidate(b, tw, v)
+
+
+def _box_qp(A, g, kink, lo, hi, beta, tol, x0=None):
     """Ridge case: the band rows' dual values v in [lo, hi] maximize the restricted dual
     -||g + A^T v||^2 / (2 beta) - kink.v, a box-constrained QP in a few hundred variables,
     min v.Qv/2 + c.v with Q = A diag(1/beta) A^T and c = A (g / beta) + kink, solved in units of the
@@ -1293,14 +1374,15 @@ def _band_qp(pb, A, g, kink, lo, hi, tol):
     gtol = min(1e-8, max(1e-2 * tol, 1e-13))
     width = np.maximum(hi - lo, 1e-300)
     Aw = A * width[:, None]  # Q = Aw diag(1/beta) Aw^T has rank <= size: applied through Aw, never formed
-    c = (A @ (g / pb.beta) + kink) * width
+    c = (A @ (g / beta) + kink) * width
     low, high = lo / width, hi / width
 
     def fun(x):
-        Qx = Aw @ ((Aw.T @ x) / pb.beta)
+        Qx = Aw @ ((Aw.T @ x) / beta)
         return 0.5 * float(np.dot(x, Qx)) + float(np.dot(c, x)), Qx + c
 
-    res = _scipy_optimize.minimize(fun, np.clip(np.zeros(len(c)), low, high), jac=True, method="L-BFGS-B",
+    start = np.zeros(len(c)) if x0 is None else x0
+    res = _scipy_optimize.minimize(fun, np.clip(start, low, high), jac=True, method="L-BFGS-B",
                                    bounds=list(zip(low, high)),
                                    options={"maxiter": 5000, "maxfun": 10000, "ftol": 0.0, "gtol": gtol,
                                             "maxcor": 10})
@@ -1309,15 +1391,15 @@ def _band_qp(pb, A, g, kink, lo, hi, tol):
     if np.any(inside):
         polished = x.copy()
         fixed = ~inside
-        A_in = Aw[inside] / np.sqrt(pb.beta)
-        rhs = -(c[inside] + A_in @ ((Aw[fixed].T @ x[fixed]) / np.sqrt(pb.beta)))
+        A_in = Aw[inside] / np.sqrt(beta)
+        rhs = -(c[inside] + A_in @ ((Aw[fixed].T @ x[fixed]) / np.sqrt(beta)))
         polished[inside] = np.linalg.lstsq(A_in @ A_in.T, rhs, rcond=None)[0]
         if np.all(polished >= low - 1e-12) and np.all(polished <= high + 1e-12):
             polished = np.clip(polished, low, high)
             if fun(polished)[0] <= fun(x)[0]:
                 x = polished
     v = x * width
-    return -(g + A.T @ v) / pb.beta, v
+    return -(g + A.T @ v) / beta, v, x
 
 
 def _band_lp(pb, A, g, kink, lo, hi):
@@ -1398,7 +1480,7 @@ def exact_finish(run, theta, mu, rounds=3):
         hi = rho[rows] * np.maximum(left[rows], right[rows])
         with np.errstate(all="ignore"):
             if pb.finish == "qp":
-                candidate, v = _band_qp(pb, A, g, kink[rows], lo, hi, run.tol)
+                candidate, v = _band_qp(pb, A, g, kink[rows], lo, hi, run.tol, theta)
             else:
                 candidate, v = _band_lp(pb, A, g, kink[rows], lo, hi)
         if candidate is None or not np.all(np.isfinite(candidate)):
@@ -1454,6 +1536,47 @@ def method_subgradient(run, theta0):
                 return "no progress"
             last = run.objective
     return "max passes"
+
+
+def _nonconvex_starts(pb):
+    """Deterministic starts for a non-convex run: zero (often a stationary point of a margin loss
+    that is flat there, such as a ramp), a random point from a fixed seed scaled so that the score
+    has unit spread, and the least-squares fit of the score to the target (a cheap guess at the
+    direction of the data). Returns [(label, theta)]."""
+    starts = [("zero", np.zeros(pb.size))]
+    r = np.random.default_rng(0).normal(size=pb.size)
+    spread = float(np.std(score(pb, r)))
+    starts.append(("a seeded random point", r / spread if spread > 0 else r))
+    y = pb.y
+    # dense tables only: a sparse one would have to be copied densely for the solve
+    if pb.standard and not _is_sparse(pb.X) and np.all(np.isfinite(y)) and np.any(y != 0):
+        A = pb.X if pb.b_index is None else np.column_stack([pb.X, np.ones(pb.n)])
+        pb.passes += 2
+        sw = np.sqrt(pb.c)
+        coef = np.linalg.lstsq(A * sw[:, None], y * sw, rcond=None)[0]
+        theta = np.zeros(pb.size)
+        theta[pb.w_index] = coef[:pb.p]
+        if pb.b_index is not None:
+            theta[pb.b_index] = coef[pb.p]
+        if np.all(np.isfinite(theta)):
+            starts.append(("the least-squares fit of the score to the target", theta))
+    return starts
+
+
+def _subgradient_from_starts(pb, tol, max_passes, progress):
+    """The subgradient method from each of `_nonconvex_starts`, an equal share of the passes each;
+    returns the run with the lowest objective, its status and the starts' labels."""
+    starts = _nonconvex_starts(pb)
+    best = None
+    for k, (_label, theta) in enumerate(starts):
+        share = max(1, (max_passes - pb.passes) // (len(starts) - k))
+        run = _Run(pb, tol, pb.passes + share, progress)
+        status = method_subgradient(run, theta)
+        if run.theta is not None and (best is None or run.objective < best[0].objective):
+            best = (run, status)
+    if best is None:
+        best = (run, status)
+    return best[0], best[1], [label for label, _ in starts]
 
 
 def _nonsmooth_subgradient(pb, theta):
@@ -1585,9 +1708,13 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
         elif method == "smoothing+fista":
             status = method_smoothing(run, theta, use_scipy, "fista")
             name = "smoothing with continuation (Moreau envelopes) + accelerated proximal gradient"
-        else:
+        elif theta0 is not None:
             status = method_subgradient(run, theta)
-            name = "subgradient method with diminishing steps (local result)"
+            name = "subgradient method with diminishing steps from the given start (local result)"
+        else:
+            run, status, labels = _subgradient_from_starts(pb, float(tol), int(max_passes), progress)
+            name = ("subgradient method with diminishing steps from " + ", ".join(labels)
+                    + "; the lowest objective kept (local result)")
     if pb.finished_exactly:
         name += "; exact finish (the rows near a kink solved as a small QP or LP)"
     if run.theta is None:  # stopped before any iterate was certified: report the start
