@@ -170,26 +170,20 @@ def cmd_build(args) -> int:
 # ---------------------------------------------------------------- fit
 
 def _parse_settings(pairs: list[str], checked) -> dict[str, float]:
-    known = {t.name: t for t in checked.spec.tunables}
-    values = {name: t.default for name, t in known.items()}
+    from objc.training import tunable_values
+    given = {}
     for pair in pairs or []:
         if "=" not in pair:
             raise UsageError(f"--set takes NAME=VALUE, got '{pair}'")
         name, _, raw = pair.partition("=")
-        if name not in known:
-            raise UsageError(f"--set {name}: the spec has no tunable '{name}' (tunables: "
-                             f"{', '.join(known) or 'none'})")
         try:
-            v = float(raw)
+            given[name] = float(raw)
         except ValueError:
             raise UsageError(f"--set {name}={raw}: not a number") from None
-        t = known[name]
-        if not (t.low <= v <= t.high):
-            raise SpecError((Diagnostic("E402", f"{name} = {v:g} lies outside its declared range {t.low:g} .. "
-                                        f"{t.high:g}", t.span, hint="widen the range in the spec, or pick a value "
-                                        "inside it", source_name=checked.source.name),), checked.source)
-        values[name] = v
-    return values
+    try:
+        return tunable_values(checked, given)
+    except ValueError as err:
+        raise UsageError(f"--set {err}") from None
 
 
 def _progress_printer(enabled: bool):

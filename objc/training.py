@@ -40,6 +40,24 @@ def require_trainable(checked: CheckedObjective, allow_nonconvex: bool = False) 
                         checked.source)
 
 
+def tunable_values(checked: CheckedObjective, given: dict[str, float] | None = None) -> dict[str, float]:
+    """Every tunable's value: its default unless given. An unknown name is a ValueError (a usage
+    mistake); a value outside the declared range is a SpecError pointing at the `tune` line, since
+    the convexity verdict was proved for that range only."""
+    known = {t.name: t for t in checked.spec.tunables}
+    values = {name: t.default for name, t in known.items()}
+    for name, v in (given or {}).items():
+        if name not in known:
+            raise ValueError(f"the spec has no tunable '{name}' (tunables: {', '.join(known) or 'none'})")
+        t = known[name]
+        if not (t.low <= float(v) <= t.high):
+            raise SpecError((Diagnostic("E402", f"{name} = {float(v):g} lies outside its declared range {t.low:g} .. "
+                                        f"{t.high:g}", t.span, hint="widen the range in the spec, or pick a value "
+                                        "inside it", source_name=checked.source.name),), checked.source)
+        values[name] = float(v)
+    return values
+
+
 def task_of(checked: CheckedObjective) -> tables.Task:
     if checked.task is not None:
         return checked.task
@@ -302,11 +320,7 @@ def fit_spec(spec: str | Path, *, data: str | Path | None = None, backend: Backe
     spec_path = Path(spec)
     checked = check_file(spec_path)
     require_trainable(checked, allow_nonconvex)
-    values = {t.name: t.default for t in checked.spec.tunables}
-    for name, v in (tunables or {}).items():
-        if name not in values:
-            raise ValueError(f"the spec has no tunable '{name}'")
-        values[name] = float(v)
+    values = tunable_values(checked, tunables)
     train, held, held_label = bind_training(checked, spec_path.parent, Path(data) if data else None)
     result = run_backend(checked, train, backend, values, tol=tol, solver=solver, allow_nonconvex=allow_nonconvex)
     form = form_for(checked, train.input_names)
