@@ -333,6 +333,13 @@ def _is_numeric(a: np.ndarray) -> bool:
     return a.dtype.kind in "biuf"
 
 
+def _mostly_numbers(a: np.ndarray) -> bool:
+    """More than half of the column's non-missing cells read as numbers."""
+    converted, text = _as_float(a)
+    numbers = int(np.count_nonzero(np.isfinite(converted)))
+    return numbers > 0 and numbers > len(text)
+
+
 def _as_float(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """The column as float64, and the 0-based positions of cells that are text, not numbers.
 
@@ -719,7 +726,9 @@ def _select(binding: TableBinding, table: Mapping[str, np.ndarray], target: str 
             for c in columns:
                 if c in reserved or c in excluded:
                     continue
-                if _is_numeric(table[c]):
+                if _is_numeric(table[c]) or _mostly_numbers(table[c]):
+                    # a column of numbers with a few stray text cells is meant as an input: pick it so
+                    # the numeric check reports those rows, instead of silently leaving it out
                     picks.setdefault(c, _Pick(c, item.span))
                     found = True
                 else:
@@ -758,11 +767,22 @@ def _margin_target(raw: np.ndarray, rows: np.ndarray, target: str, binding: Tabl
         if len(unmatched):
             firsts = list(dict.fromkeys(raw[unmatched].tolist()))
             listed = ", ".join(_value(v) for v in firsts[:5]) + (", ..." if len(firsts) > 5 else "")
-            known = ", ".join(f"{_spec_literal(v)} -> {lab:+g}" for v, lab in lm.pairs)
+            unused = [v for v, _lab in lm.pairs if not _matches(raw, v).any()]
+            if len(unused) == len(lm.pairs):
+                # nothing in the map occurs in the column: the map names other values, so show the
+                # column's own values rather than extending a map that cannot match
+                distinct = list(dict.fromkeys(raw.tolist()))
+                listing = ", ".join(_spec_literal(v) for v in distinct[:5]) + (", ..." if len(distinct) > 5 else "")
+                hint = (f"none of the map's values occur in the column, whose values are {listing}: map those, "
+                        f"and choose which of them is +1 (objc cannot know)")
+            else:
+                hint = ("add each listed value to the map with the label it should get, +1 or -1 (objc cannot "
+                        "know which), e.g. " + ", ".join(f"`{_spec_literal(v)} -> -1`" for v in firsts[:3]))
+                if unused:
+                    hint += "; the map's " + ", ".join(_q(str(v)) for v in unused) + " matches no row (a typo?)"
             diags.append(where.diag("T130", f"target {_q(target)} in {_q(where.file)} holds value(s) the label map "
-                                    f"does not list: {listed} at {_rows_text(rows[unmatched])}", span,
-                                    f"list every value, e.g. `target {_spec_literal(target)}: {known}, "
-                                    f"{_spec_literal(firsts[0])} -> -1`", rows=True))
+                                    f"does not list: {listed} at {_rows_text(rows[unmatched])}", span, hint,
+                                    rows=True))
             return y
     else:
         values, text_rows = _as_float(raw)

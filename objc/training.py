@@ -252,7 +252,9 @@ def bind_for_model(checked: CheckedObjective, document: dict, table: Path, *, ne
                                      tuple(schema["standardization"]["scales"]))
     if not need_target:
         tb = replace(tb, row_weight=None, row_weight_span=None, class_weights=())
-    return tables.bind_table(tb, Path("."), document["task"], source_name=str(table), data_path=table,
+    # the spans are the stored spec's, so the location names the spec (the message names the table)
+    return tables.bind_table(tb, Path("."), document["task"], source_name=str(document["spec"]["path"]),
+                             data_path=table,
                              standardization=std, input_names=tuple(schema["inputs"]), need_target=need_target,
                              both_classes=False)
 

@@ -283,3 +283,19 @@ def test_check_with_data_reads_the_table(tmp_path, capsys):
     code, out, _ = run(["check", spec, "--with-data", "--json"], capsys)
     doc = json.loads(out)
     assert code == 0 and doc["data"]["rows"] == 40 and doc["data"]["inputs"] == ["a", "b", "c"]
+
+
+def test_eval_table_errors_are_located_in_the_spec_not_on_the_table_name(tmp_path, capsys):
+    # regression: eval/predict on another table drew the spec's line:col after the CSV's name
+    _write_table(tmp_path / "t.csv", _good_rows())
+    spec = _spec(tmp_path)
+    assert run(["fit", spec, "-o", tmp_path / "m.json"], capsys)[0] == 0
+    rows = _good_rows(10, seed=3)
+    rows[1]["b"] = "x"
+    other = _write_table(tmp_path / "other.csv", rows)
+    for command in (["eval", tmp_path / "m.json", other], ["predict", tmp_path / "m.json", other, "-o",
+                                                           tmp_path / "p.csv"]):
+        code, _, err = run(command, capsys)
+        location = err.split(" error ")[0]
+        assert code == 1 and location.endswith("m.objc:3:3:") and "other.csv" in err.split(" error ")[1]
+    assert not (tmp_path / "p.csv").exists()

@@ -392,6 +392,18 @@ def test_all_takes_numeric_columns_except_target_weight_and_excluded(tmp_path):
     assert [w.code for w in data.warnings] == ["T190"] and "'note'" in data.warnings[0].message
 
 
+def test_all_refuses_a_numeric_column_with_stray_text_with_its_rows(tmp_path):
+    # regression: `inputs all except` used to leave out 'sensor_2' (one stray text cell) with only a
+    # warning printed last; a column that is mostly numbers is meant as an input, so it is an error
+    write(tmp_path, SENSORS.replace("2,0.4,6,no", "2,0.4,n/a?,no"))
+    b = binding(label_map=yes_no(), inputs=(item("all", "all"),), excluded=(item("id"),), row_weight="w",
+                row_weight_span=ROWW)
+    with pytest.raises(SpecError) as err:
+        bind(tmp_path, b)
+    [d] = [d for d in err.value.diagnostics if "sensor_2" in d.message]
+    assert d.code == "T112" and "row 2" in d.message
+
+
 def test_pattern_skips_target_and_row_weight(tmp_path):
     write(tmp_path, "x_a,x_y,x_w\n1,yes,1\n2,no,2\n")
     data = bind(tmp_path, binding(target="x_y", label_map=yes_no(), inputs=(item("x_*", "pattern"),),
