@@ -267,12 +267,12 @@ def _diagnose(err: lark.exceptions.LarkError, source: SourceText) -> Diagnostic:
         starters = sorted(k for k in STATEMENT_KEYWORDS if k.upper() in err.expected)
         if at_line_start and tok.type == "NAME" and starters:
             close = difflib.get_close_matches(word, STATEMENT_KEYWORDS, n=1, cutoff=0.5)
-            hint = ("a statement starts with one of: " + ", ".join(f"'{k}'" for k in starters) +
-                    (f"; did you mean '{close[0]}'?" if close else ""))
-            if "goal" not in starters:
-                hint += "; the objective is written `goal ...`"
+            listed = "a statement starts with one of: " + ", ".join(f"'{k}'" for k in starters)
+            if close:
+                hint = f"did you mean '{close[0]}'? ({listed})"
             else:
-                hint += " (the objective is written `goal ...`)"
+                # no keyword is near: the word may be another tool's name for the objective
+                hint = listed + "; the objective is written `goal ...`"
             return Diagnostic("E103", msg, span, hint=hint, source_name=source.name)
         if word in RESERVED_WORDS and "NAME" in err.expected:
             msg = f"'{word}' is a reserved word and cannot be used as a name here"

@@ -221,6 +221,9 @@ SYNTAX_CASES = [
      "E103", 3, 12, ["unexpected 'b'"]),
     ("a statement word objc does not have", HEADER + "minimize l2sq(w)\n",
      "E103", 6, 1, ["unexpected 'minimize'", "'goal'"]),
+    # regression: a misspelt keyword used to get the `goal` note too, pointing away from the fix
+    ("a misspelt statement word", HEADER.replace("score s", "scroe s") + "goal l2sq(w)\n",
+     "E103", 5, 1, ["unexpected 'scroe'", "did you mean 'score'?"]),
 ]
 
 
@@ -234,6 +237,8 @@ def test_syntax_error_location_and_message(text: str, code: str, line: int, colu
     said = d.message + " " + d.hint
     for w in words:
         assert w in said, said
+    if "did you mean" in said:
+        assert "`goal ...`" not in said, said
     assert f"broken.objc:{line}:{column}" in str(info.value)
 
 
