@@ -347,9 +347,12 @@ def _parse_span(text: str | None, t) -> tuple[float, float]:
     try:
         if not sep:
             raise ValueError
-        return float(lo), float(hi)
+        low, high = float(lo), float(hi)
     except ValueError:
         raise UsageError(f"--span takes LOW..HIGH, e.g. 0.01..100; got '{text}'") from None
+    if low > high:
+        raise UsageError(f"--span {text}: LOW is above HIGH; write the smaller value first, e.g. --span {hi}..{lo}")
+    return low, high
 
 
 def cmd_sweep(args) -> int:

@@ -245,6 +245,9 @@ def test_sweep_span_outside_declared_range(tmp_path, capsys):
     assert code == 1 and "declared range" in err
     assert run(["sweep", spec, "mu"], capsys)[0] == 2
     assert run(["sweep", spec, "lam", "--span", "oops"], capsys)[0] == 2
+    # regression: a reversed span was called out of the declared range
+    code, _, err = run(["sweep", spec, "lam", "--span", "1..0.01"], capsys)
+    assert code == 2 and "declared range" not in err and "smaller value first" in err
 
 
 def test_plot_losses_writes_a_png(tmp_path, capsys):
