@@ -40,10 +40,19 @@ def model_paths(out: Path) -> tuple[Path, Path]:
     return out, out.with_suffix(".npz")
 
 
+def _current_umask() -> int:
+    mask = os.umask(0o022)  # the only portable way to read it is to set it and put it back
+    os.umask(mask)
+    return mask
+
+
 def _atomic_write(path: Path, data: bytes) -> None:
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
     try:
+        # mkstemp creates the file 0600; the output is an ordinary file, so it gets the mode the
+        # user's umask gives a new file, as open() would
+        os.fchmod(fd, 0o666 & ~_current_umask())
         with os.fdopen(fd, "wb") as f:
             f.write(data)
             f.flush()

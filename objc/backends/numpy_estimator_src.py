@@ -375,6 +375,9 @@ def _write_json_atomic(path, payload):
     folder = os.path.dirname(os.path.abspath(path))
     handle, temp = tempfile.mkstemp(prefix=".model-", suffix=".json", dir=folder)
     try:
+        mask = os.umask(0o022)  # mkstemp makes the file 0600: give it the mode a new file gets from the umask
+        os.umask(mask)
+        os.fchmod(handle, 0o666 & ~mask)
         with os.fdopen(handle, "w", encoding="utf-8") as out:
             json.dump(payload, out, indent=2, allow_nan=False)
             out.write("\n")

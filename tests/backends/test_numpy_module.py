@@ -12,7 +12,9 @@ from __future__ import annotations
 
 import ast
 import json
+import os
 import re
+import stat
 import subprocess
 import sys
 import warnings
@@ -463,6 +465,10 @@ def test_command_line_trains_on_a_csv_and_rejects_bad_input(tmp_path):
     here = nm.fit(checked, data.X, data.y, data.weights, data.input_names)
     assert model["objective"] == pytest.approx(here.objective, rel=1e-7)
     assert list(model["params"]["w"]) == list(data.input_names)
+    # POSIX open(2): a new file gets 0666 & ~umask (the test process's umask is inherited)
+    mask = os.umask(0o022)
+    os.umask(mask)
+    assert stat.S_IMODE(out.stat().st_mode) == 0o666 & ~mask
 
     bad = tmp_path / "bad.csv"
     bad.write_text("sold,is_weekend\n1,0\n", encoding="utf-8")
