@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from objc.diagnostics import Diagnostic, SpecError
-from objc.model_io import jsonable
+from objc.model_io import dumps_strict
 from objc.source_text import NO_SPAN
 
 EXIT_OK, EXIT_SPEC, EXIT_USAGE = 0, 1, 2
@@ -27,7 +27,7 @@ class UsageError(Exception):
 # ---------------------------------------------------------------- output helpers
 
 def _emit_json(doc: dict) -> None:
-    sys.stdout.write(json.dumps(doc, indent=2, default=jsonable) + "\n")
+    sys.stdout.write(dumps_strict(doc) + "\n")
 
 
 def _diag_list(diags, source=None) -> list[dict]:

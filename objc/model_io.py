@@ -74,10 +74,40 @@ def save_model(out: Path, document: dict, params: dict[str, np.ndarray | float])
     doc["format"] = MODEL_FORMAT
     doc["arrays"] = {"file": npz_path.name, "sha256": hashlib.sha256(arrays).hexdigest(),
                      "names": sorted(params)}
-    text = json.dumps(doc, indent=2, sort_keys=False, default=jsonable).encode("utf-8") + b"\n"
+    doc = plain_json(doc)
+    doc["document_sha256"] = document_digest(doc)
+    text = dumps_strict(doc).encode("utf-8") + b"\n"
     _atomic_write(npz_path, arrays)
     _atomic_write(json_path, text)
     return json_path
+
+
+def plain_json(v):
+    """`v` as plain JSON values: NumPy scalars and arrays as numbers and lists, paths as text, and a
+    non-finite number (an infinite gap: no certificate formed) as null, since strict JSON has no
+    Infinity or NaN and other programs' parsers refuse them."""
+    if isinstance(v, dict):
+        return {str(k): plain_json(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [plain_json(x) for x in v]
+    if isinstance(v, (np.ndarray, np.generic, Path)):
+        return plain_json(jsonable(v))
+    if isinstance(v, float) and not np.isfinite(v):
+        return None
+    return v
+
+
+def dumps_strict(doc, indent: int | None = 2) -> str:
+    """One strict JSON document (no NaN or Infinity)."""
+    return json.dumps(plain_json(doc), indent=indent, allow_nan=False)
+
+
+def document_digest(doc: dict) -> str:
+    """sha256 of the whole model document except this digest itself, in a canonical form, so an edit
+    anywhere (a label map, a standardization mean) is caught on load."""
+    body = {k: v for k, v in doc.items() if k != "document_sha256"}
+    canonical = json.dumps(plain_json(body), sort_keys=True, separators=(",", ":"), allow_nan=False)
+    return hashlib.sha256(canonical.encode("utf-8")).hexdigest()
 
 
 def jsonable(v):
@@ -95,6 +125,28 @@ def _model_error(code: str, message: str, path: Path, hint: str = "") -> SpecErr
     return SpecError((Diagnostic(code, message, NO_SPAN, hint=hint, source_name=str(path)),))
 
 
+# what load_model needs of a document: key path -> the JSON types it may hold
+_REQUIRED = {
+    ("spec",): dict, ("spec", "text"): str, ("spec", "path"): str, ("task",): str, ("verdict",): str,
+    ("schema",): dict, ("schema", "inputs"): list, ("schema", "standardization"): (dict, type(None)),
+    ("schema", "label_map"): (list, type(None)), ("fit",): dict, ("arrays",): dict, ("arrays", "file"): str,
+    ("arrays", "sha256"): str, ("arrays", "names"): list,
+}
+
+
+def _check_shape(doc: dict, json_path: Path) -> None:
+    for keys, kinds in _REQUIRED.items():
+        node = doc
+        for k in keys:
+            if not isinstance(node, dict) or k not in node:
+                raise _model_error("M503", f"{json_path} is not a complete objc model: it has no "
+                                   f"'{'.'.join(keys)}'", json_path, "refit with `objc fit -o`")
+            node = node[k]
+        if not isinstance(node, kinds):
+            raise _model_error("M503", f"{json_path}: '{'.'.join(keys)}' has the wrong type "
+                               f"({type(node).__name__})", json_path, "refit with `objc fit -o`")
+
+
 def load_model(path: Path) -> SavedModel:
     json_path, _ = model_paths(Path(path))
     if not json_path.exists():
@@ -106,12 +158,23 @@ def load_model(path: Path) -> SavedModel:
         raise _model_error("M502", f"cannot read model {json_path}: {err}", json_path) from None
     if not isinstance(doc, dict) or doc.get("format") != MODEL_FORMAT:
         raise _model_error("M503", f"{json_path} is not an objc model (format {MODEL_FORMAT} expected)", json_path)
-    npz_path = json_path.with_name(doc["arrays"]["file"])
+    _check_shape(doc, json_path)
+    if "document_sha256" not in doc:
+        raise _model_error("M506", f"{json_path} has no document checksum (written by an earlier objc, or "
+                           "edited)", json_path, "refit with `objc fit -o` to get a model whose edits are caught")
+    if doc["document_sha256"] != document_digest(doc):
+        raise _model_error("M506", f"{json_path} was changed after training (its checksum differs)", json_path,
+                           "an edited model would predict with settings it was not trained with: refit with "
+                           "`objc fit -o`, or restore the file as written")
+    # the arrays file beside the JSON by the same name first, so renaming the pair keeps working; the
+    # name recorded at training time second (a JSON renamed alone)
+    candidates = [model_paths(json_path)[1], json_path.with_name(Path(doc["arrays"]["file"]).name)]
+    npz_path = next((c for c in candidates if c.exists()), candidates[0])
     try:
         raw = npz_path.read_bytes()
     except OSError:
         raise _model_error("M504", f"the model's arrays file is missing: {npz_path}", json_path,
-                           "keep the .npz next to the .json") from None
+                           "keep the .npz next to the .json, with the same name") from None
     if hashlib.sha256(raw).hexdigest() != doc["arrays"]["sha256"]:
         raise _model_error("M505", f"{npz_path} does not belong to {json_path} (checksum differs)", json_path,
                            "refit, or restore the matching pair of files")
