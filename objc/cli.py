@@ -318,13 +318,10 @@ def cmd_predict(args) -> int:
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
     if doc["task"] == "margin":
-        # each label is written back as the first table value the spec maps to it
-        back = {1.0: "+1", -1.0: "-1"}
-        for raw, lab in reversed(doc["schema"]["label_map"] or []):
-            back[float(lab)] = str(raw)
+        labels = training.predicted_labels(doc, s)
         writer.writerow(["row", "score", "label"])
-        for r, v in zip(data.rows, s):
-            writer.writerow([int(r), repr(float(v)), back[1.0 if v > 0 else -1.0]])
+        for r, v, lab in zip(data.rows, s, labels):
+            writer.writerow([int(r), repr(float(v)), f"{lab:+g}" if isinstance(lab, float) else str(lab)])
     else:
         writer.writerow(["row", "prediction"])
         for r, v in zip(data.rows, s):
@@ -460,8 +457,21 @@ def cmd_plot(args) -> int:
 
 # ---------------------------------------------------------------- main
 
+class _ArgumentError(Exception):
+    """argparse's complaint, raised instead of its printing and exiting, so --json can report it."""
+
+    def __init__(self, message: str, usage: str):
+        super().__init__(message)
+        self.usage = usage
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message: str):  # argparse's hook for every usage error
+        raise _ArgumentError(message, self.format_usage())
+
+
 def _parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="objc", description="Compile a training objective written in a spec file "
+    p = _Parser(prog="objc", description="Compile a training objective written in a spec file "
                                 "into a checked solver, then train, evaluate and ship it.")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
 
@@ -529,10 +539,18 @@ COMMANDS = {"check": cmd_check, "build": cmd_build, "fit": cmd_fit, "eval": cmd_
 
 def main(argv: list[str] | None = None) -> int:
     parser = _parser()
+    words = sys.argv[1:] if argv is None else [str(a) for a in argv]
     try:
-        args = parser.parse_args(argv)
-    except SystemExit as exit_:
+        args = parser.parse_args(words)
+    except SystemExit as exit_:  # --help
         return int(exit_.code or 0)
+    except _ArgumentError as err:
+        command = next((w for w in words if w in COMMANDS), None)
+        if "--json" in words:
+            _emit_json({"command": command, "ok": False, "usage_error": str(err)})
+        else:
+            sys.stderr.write(f"{err.usage}objc{' ' + command if command else ''}: error: {err}\n")
+        return EXIT_USAGE
     if not args.command:
         parser.print_help(sys.stderr)
         return EXIT_USAGE

@@ -251,6 +251,17 @@ def _read(path: Path, shown: str, span: Span, source_name: str, not_found_hint: 
     return columns
 
 
+def _frame_table(frame, where: _Where, span: Span) -> dict[str, np.ndarray]:
+    """A pandas DataFrame given in place of the spec's file, read by the same column rules."""
+    if not isinstance(frame, pd.DataFrame):
+        raise where.error("T102", f"data must be a path or a pandas DataFrame, not {type(frame).__name__}", span)
+    columns = _frame_columns(frame, where, span)
+    if not columns or len(frame) == 0:
+        raise where.error("T103", "the DataFrame given has no data rows" if columns
+                          else "the DataFrame given has no columns", span)
+    return columns
+
+
 def _read_csv(path: Path, sep: str, where: _Where, span: Span) -> dict[str, np.ndarray]:
     # pandas renames a repeated header name ("a", "a.1"); read the header line raw to catch that
     header = pd.read_csv(path, sep=sep, header=None, nrows=1, dtype=str, keep_default_na=False)
@@ -489,7 +500,8 @@ class _Pick:
 def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name: str = "",
                data_path: Path | None = None, standardization: Standardization | None = None,
                input_names: tuple[str, ...] | None = None, file_span: Span | None = None,
-               need_target: bool = True, both_classes: bool = True) -> BoundData:
+               need_target: bool = True, both_classes: bool = True, frame: pd.DataFrame | None = None
+               ) -> BoundData:
     """Read the binding's table and return checked solver arrays.
 
     `data_path` replaces the spec's path (taken as given, not relative to `spec_dir`); `file_span`
@@ -500,14 +512,19 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
     """
     if task not in ("margin", "residual"):
         raise ValueError(f"task must be 'margin' or 'residual', not {task!r}")
-    if data_path is not None:
+    if frame is not None:
+        path, shown = Path("<DataFrame>"), "the DataFrame given"
+    elif data_path is not None:
         path, shown = Path(data_path), str(data_path)
     else:
         path, shown = Path(spec_dir) / binding.path, binding.path
     where = _Where(shown, source_name)
-    table = _read(path, shown, file_span or binding.span, source_name,
-                  "check the path given with the command" if data_path is not None and file_span is None
-                  else "paths in a spec are relative to the spec file's folder")
+    if frame is not None:
+        table = _frame_table(frame, where, file_span or binding.span)
+    else:
+        table = _read(path, shown, file_span or binding.span, source_name,
+                      "check the path given with the command" if data_path is not None and file_span is None
+                      else "paths in a spec are relative to the spec file's folder")
     n_all = len(next(iter(table.values())))
     columns = list(table)
 
@@ -711,7 +728,7 @@ def _select(binding: TableBinding, table: Mapping[str, np.ndarray], target: str 
             elif item.text in reserved:
                 role = "target" if item.text == target else "row-weight column"
                 diags.append(where.diag("T113", f"{_q(item.text)} is the {role}; it cannot also be an input",
-                                        item.span, f"remove it from the inputs"))
+                                        item.span, "remove it from the inputs"))
             else:
                 picks.setdefault(item.text, _Pick(item.text, item.span))
         elif item.kind == "pattern":

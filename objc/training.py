@@ -9,7 +9,7 @@ import hashlib
 import time
 from dataclasses import replace
 from pathlib import Path
-from typing import Callable, Literal
+from typing import TYPE_CHECKING, Callable, Literal
 
 import numpy as np
 
@@ -21,6 +21,9 @@ from objc.fit_result import FitResult, theta_from_params
 from objc.frontend import check_text
 from objc.score_form import ScoreForm, design, score_form
 from objc.source_text import NO_SPAN
+
+if TYPE_CHECKING:  # pandas is imported by tables at run time; here only for the annotations
+    import pandas as pd
 
 Backend = Literal["numpy", "cvxpy"]
 
@@ -65,16 +68,17 @@ def task_of(checked: CheckedObjective) -> tables.Task:
     return "margin" if tb is not None and tb.label_map is not None else "residual"
 
 
-def bind_training(checked: CheckedObjective, spec_dir: Path, data_path: Path | None = None
-                  ) -> tuple[tables.BoundData, tables.BoundData | None, str]:
-    """(training rows, held-out rows or None, a phrase saying where the held-out rows came from)."""
+def bind_training(checked: CheckedObjective, spec_dir: Path, data_path: Path | None = None,
+                  frame: pd.DataFrame | None = None) -> tuple[tables.BoundData, tables.BoundData | None, str]:
+    """(training rows, held-out rows or None, a phrase saying where the held-out rows came from).
+    `frame` (a pandas DataFrame) replaces the spec's table file, like `data_path`."""
     try:
-        return _bind_training(checked, spec_dir, data_path)
+        return _bind_training(checked, spec_dir, data_path, frame)
     except SpecError as err:  # show the spec line the data problem belongs to
         raise SpecError(err.diagnostics, err.source or checked.source) from None
 
 
-def _bind_training(checked: CheckedObjective, spec_dir: Path, data_path: Path | None
+def _bind_training(checked: CheckedObjective, spec_dir: Path, data_path: Path | None, frame=None
                    ) -> tuple[tables.BoundData, tables.BoundData | None, str]:
     tb = checked.spec.table
     if tb is None:
@@ -82,7 +86,7 @@ def _bind_training(checked: CheckedObjective, spec_dir: Path, data_path: Path | 
                                     hint='add: table NAME from "file.csv"', source_name=checked.source.name),),
                         checked.source)
     task = task_of(checked)
-    data = tables.bind_table(tb, spec_dir, task, source_name=checked.source.name, data_path=data_path)
+    data = tables.bind_table(tb, spec_dir, task, source_name=checked.source.name, data_path=data_path, frame=frame)
     if tb.holdout is not None:
         train, held = tables.split_holdout(data, tb.holdout, tb.holdout_seed, span=tb.holdout_span or tb.span,
                                            source_name=checked.source.name)
@@ -101,6 +105,8 @@ def run_backend(checked: CheckedObjective, data: tables.BoundData, backend: Back
                 allow_nonconvex: bool = False, progress: Callable | None = None,
                 theta0: np.ndarray | None = None) -> FitResult:
     start = time.perf_counter()
+    if backend not in ("numpy", "cvxpy"):
+        raise ValueError(f"backend must be 'numpy' or 'cvxpy', not {backend!r}")
     if backend == "cvxpy":
         from objc.backends import cvxpy_problem
         result = cvxpy_problem.fit(checked, data.X, data.y, data.weights, data.input_names, tunables,
@@ -268,6 +274,19 @@ def form_for(checked: CheckedObjective, input_names: tuple[str, ...]) -> ScoreFo
 from dataclasses import dataclass  # noqa: E402
 
 
+def predicted_labels(document: dict, s: np.ndarray) -> np.ndarray:
+    """The label of each score (s > 0 is +1) as the table writes it: the first value the spec's label
+    map sends to that label, or +1.0 / -1.0 when the target was already +1/-1."""
+    back: dict[float, object] = {1.0: 1.0, -1.0: -1.0}
+    for raw, lab in reversed(document["schema"]["label_map"] or []):
+        back[float(lab)] = raw
+    out = np.empty(len(s), dtype=object)
+    out[:] = [back[1.0] if v > 0 else back[-1.0] for v in np.asarray(s, dtype=np.float64)]
+    if all(isinstance(v, float) for v in back.values()):
+        return out.astype(np.float64)
+    return out
+
+
 @dataclass(frozen=True)
 class TrainedModel:
     """A trained model: the saved document (schema, verdict, fit report) and the learned parameters.
@@ -297,23 +316,31 @@ class TrainedModel:
         return (X - np.asarray(std["means"])) / np.asarray(std["scales"])
 
     def decision_function(self, X: np.ndarray) -> np.ndarray:
+        X = np.asarray(X, dtype=np.float64)
+        if X.ndim == 2 and not np.all(np.isfinite(X)):
+            bad = np.flatnonzero(~np.all(np.isfinite(X), axis=1))
+            raise ValueError(f"X holds NaN or infinite values in row(s) {', '.join(str(i) for i in bad[:10])}"
+                             f"{', ...' if len(bad) > 10 else ''} (0-based); a score there would be meaningless: "
+                             "drop or fill those rows first")
         return scores(form_for(self.checked, self.input_names), self.params, self._standardize(X))
 
     def predict(self, X: np.ndarray) -> np.ndarray:
+        """Labels in the table's own values (through the spec's label map) for a margin loss, the
+        prediction itself for a residual loss."""
         s = self.decision_function(X)
-        return np.where(s > 0, 1.0, -1.0) if self.task == "margin" else s
+        return predicted_labels(self.document, s) if self.task == "margin" else s
 
     def predict_table(self, path: str | Path) -> np.ndarray:
         data = bind_for_model(self.checked, self.document, Path(path), need_target=False)
         s = scores(form_for(self.checked, self.input_names), self.params, data.X)
-        return np.where(s > 0, 1.0, -1.0) if self.task == "margin" else s
+        return predicted_labels(self.document, s) if self.task == "margin" else s
 
     def save(self, path: str | Path) -> Path:
         from objc.model_io import save_model
         return save_model(Path(path), self.document, self.params)
 
 
-def fit_spec(spec: str | Path, *, data: str | Path | None = None, backend: Backend = "numpy",
+def fit_spec(spec: str | Path, *, data: str | Path | pd.DataFrame | None = None, backend: Backend = "numpy",
              tunables: dict[str, float] | None = None, tol: float = 1e-6, solver: str | None = None,
              allow_nonconvex: bool = False) -> TrainedModel:
     """Check a spec file, bind its table (or `data`), train, and evaluate on the training rows and
@@ -323,7 +350,10 @@ def fit_spec(spec: str | Path, *, data: str | Path | None = None, backend: Backe
     checked = check_file(spec_path)
     require_trainable(checked, allow_nonconvex)
     values = tunable_values(checked, tunables)
-    train, held, held_label = bind_training(checked, spec_path.parent, Path(data) if data else None)
+    if data is None or isinstance(data, (str, Path)):
+        train, held, held_label = bind_training(checked, spec_path.parent, Path(data) if data else None)
+    else:  # a DataFrame in place of the spec's table file
+        train, held, held_label = bind_training(checked, spec_path.parent, frame=data)
     result = run_backend(checked, train, backend, values, tol=tol, solver=solver, allow_nonconvex=allow_nonconvex)
     form = form_for(checked, train.input_names)
     train_m = metrics(train.task, train.y, scores(form, result.params, train.X, train.y), train.weights, checked)

@@ -302,3 +302,13 @@ def test_eval_table_errors_are_located_in_the_spec_not_on_the_table_name(tmp_pat
         location = err.split(" error ")[0]
         assert code == 1 and location.endswith("m.objc:3:3:") and "other.csv" in err.split(" error ")[1]
     assert not (tmp_path / "p.csv").exists()
+
+
+def test_usage_errors_under_json_print_one_json_document(capsys):
+    # regression: argparse's own errors printed text only, even with --json
+    for argv in (["fit", "--json"], ["check", "x.objc", "--no-such-option", "--json"]):
+        code, out, _ = run(argv, capsys)
+        doc = json.loads(out)
+        assert code == 2 and doc["ok"] is False and doc["usage_error"] and doc["command"] == argv[0]
+    code, out, err = run(["fit"], capsys)
+    assert code == 2 and out == "" and "usage: objc fit" in err

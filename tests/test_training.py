@@ -51,11 +51,13 @@ def test_zero_one_error_equals_sklearn_accuracy_complement(tmp_path):
     frame = pd.read_csv(tmp_path / "cancer.csv")
     y = np.where(frame["diag"] == "benign", 1.0, -1.0)
     pred = model.predict(frame[[f"f{i}" for i in range(6)]].to_numpy())
+    assert set(pred) <= {"benign", "malignant"}  # the table's own labels, through the spec's label map
     # scikit-learn's accuracy_score with and without sample_weight (its own definition of accuracy)
-    assert m["zero_one_error"] == pytest.approx(1 - skm.accuracy_score(y, pred), abs=1e-12)
+    truth = frame["diag"].to_numpy()
+    assert m["zero_one_error"] == pytest.approx(1 - skm.accuracy_score(truth, pred), abs=1e-12)
     assert m["zero_one_error_weighted"] == pytest.approx(
-        1 - skm.accuracy_score(y, pred, sample_weight=frame["wt"]), abs=1e-12)
-    cm = skm.confusion_matrix(y, pred, labels=[1.0, -1.0])
+        1 - skm.accuracy_score(truth, pred, sample_weight=frame["wt"]), abs=1e-12)
+    cm = skm.confusion_matrix(truth, pred, labels=["benign", "malignant"])
     c = m["confusion"]
     assert [[c["true_pos"], c["false_neg"]], [c["false_pos"], c["true_neg"]]] == cm.tolist()
     # the mean logistic loss reported equals scikit-learn's log loss (natural log) with the same weights
@@ -63,6 +65,21 @@ def test_zero_one_error_equals_sklearn_accuracy_complement(tmp_path):
     p = 1 / (1 + np.exp(-s))
     assert m["mean_losses"]["logistic"] == pytest.approx(
         skm.log_loss(y, p, sample_weight=frame["wt"], labels=[-1.0, 1.0]), rel=1e-9)
+
+
+def test_a_dataframe_trains_like_its_csv_and_predict_refuses_missing_rows(tmp_path):
+    # regression: fit_spec(data=DataFrame) failed; predict returned +-1 floats and scored NaN rows
+    path = _cancer_table(tmp_path)
+    (tmp_path / "c.objc").write_text(CANCER_SPEC)
+    from_file = objc.fit_spec(tmp_path / "c.objc", backend="cvxpy")
+    from_frame = objc.fit_spec(tmp_path / "c.objc", data=pd.read_csv(path), backend="cvxpy")
+    np.testing.assert_allclose(from_frame.params["w"], from_file.params["w"], rtol=0, atol=1e-9)
+    X = pd.read_csv(path)[[f"f{i}" for i in range(6)]].to_numpy()
+    X[3, 2] = np.nan
+    with pytest.raises(ValueError, match="row"):
+        from_file.predict(X)
+    with pytest.raises(ValueError, match="backend"):
+        objc.fit_spec(tmp_path / "c.objc", backend="numpi")
 
 
 def test_regression_metrics_match_sklearn(tmp_path):
