@@ -404,7 +404,7 @@ def cmd_sweep(args) -> int:
     key = "held" if result["points"][0]["held"] is not None else "train"
     lines = [f"sweep     {t.name} over {len(values)} values, {low:g} .. {high:g}"
              f" ({'linear' if args.linear or low <= 0 else 'log'} grid), {result['backend']} backend, warm starts",
-             f"ranked    by {_metric_label(result['metric'])} on {result['ranked_on']}", "",
+             f"ranked    by {training.metric_label(result['metric'])} on {result['ranked_on']}", "",
              f"  {t.name:>12}  {'objective':>14}  {'training':>10}  {'held out':>10}  {'certificate':>11}  passes"]
     for k, pnt in enumerate(result["points"]):
         mark = "  <- chosen" if k == result["best"]["index"] else ""
@@ -417,8 +417,6 @@ def cmd_sweep(args) -> int:
     return EXIT_OK
 
 
-def _metric_label(metric: str) -> str:
-    return {"zero_one_error": "0-1 error", "rmse": "RMSE"}.get(metric, metric.replace("mean_losses:", "mean "))
 
 
 def cmd_plot(args) -> int:

@@ -7,7 +7,6 @@ from pathlib import Path
 
 import numpy as np
 
-from objc import typed_tree as tt
 from objc.checker import CheckedObjective, EvalEnv, _rows_body, evaluate, render
 
 # our own palette: ink for the 0-1 reference, warm-to-cool for the terms
@@ -78,7 +77,8 @@ def sweep_curve(sweep: dict, out: Path) -> Path:
     name = sweep["tunable"]
     xs = np.array([r["value"] for r in rows], dtype=float)
     metric = sweep["metric"]
-    label = {"zero_one_error": "0-1 error", "rmse": "RMSE"}.get(metric, metric.replace("mean_losses:", "mean "))
+    from objc.training import metric_label
+    label = metric_label(metric)
     fig, ax, plt = _figure(f"sweep of {name}: {label} on {sweep.get('ranked_on', 'the rows')}")
     ax.plot(xs, [r["train"] for r in rows], color=_PALETTE[2], marker="o", linewidth=1.6, label="training rows")
     if any(r.get("held") is not None for r in rows):

@@ -386,12 +386,21 @@ def validation_metric(checked: CheckedObjective, task: str) -> str:
     """What a sweep ranks by: the 0-1 error for classification; for regression the mean of the
     trained residual loss where there is one (pinball at its quantile, Huber at its threshold), else RMSE."""
     if task == "margin":
-        return "zero_one_error"
+        tb = checked.spec.table
+        weighted = tb is not None and (tb.row_weight is not None or bool(tb.class_weights))
+        # with row or class weights the goal counts rows unequally, and so must the ranking
+        return "zero_one_error_weighted" if weighted else "zero_one_error"
     for t in checked.terms:
         if t.known_loss and CATALOG[t.known_loss[0]].role == "residual":
             name, opts = t.known_loss
             return "mean_losses:" + name + ("(" + ", ".join(f"{k}={v:g}" for k, v in opts) + ")" if opts else "")
     return "rmse"
+
+
+def metric_label(metric: str) -> str:
+    """A sweep metric's name as a report prints it."""
+    return {"zero_one_error": "0-1 error", "zero_one_error_weighted": "weighted 0-1 error (row x class weights)",
+            "rmse": "RMSE"}.get(metric, metric.replace("mean_losses:", "mean "))
 
 
 def _metric_value(m: dict, metric: str) -> float:

@@ -163,3 +163,21 @@ def test_every_example_spec_fits_evaluates_and_predicts_with_cvxpy(tmp_path, cap
     assert main(["predict", str(model), str(work / tb.path), "-o", str(tmp_path / "p.csv"), "--json"]) == 0
     pred = pd.read_csv(tmp_path / "p.csv")
     assert len(pred) > 0 and np.isfinite(pred.iloc[:, 1]).all()
+
+
+def test_sweep_with_class_weights_ranks_by_the_weighted_error(tmp_path):
+    # regression: sweep ranked by the unweighted 0-1 error even when the goal weighs classes unequally
+    from objc.frontend import check_text
+    from objc import training
+    text = (ROOT / "specs" / "bike_dock_classweight.objc").read_text().replace(
+        "  standardize\n", "  standardize\n  holdout 30% seed 1\n").replace("0.01 * l2sq", "lam * l2sq").replace(
+        "learn w", "tune lam = 0.01 within 0.0001 .. 10\nlearn w")
+    checked = check_text(text, str(ROOT / "specs" / "sweep_weighted.objc"))
+    result = training.sweep(checked, ROOT / "specs", "lam", [0.001, 0.1, 10.0], backend="cvxpy")
+    assert result["metric"] == "zero_one_error_weighted"
+    train, held, _ = training.bind_training(checked, ROOT / "specs")
+    form = training.form_for(checked, train.input_names)
+    for p in result["points"]:
+        pred = np.where(training.scores(form, p["params"], held.X) > 0, 1.0, -1.0)
+        # scikit-learn's accuracy_score with sample_weight = row x class weight
+        assert p["held"] == pytest.approx(1 - skm.accuracy_score(held.y, pred, sample_weight=held.weights), abs=1e-12)
