@@ -54,8 +54,15 @@ class EstimatorBase:
         if X is None:
             raise ValueError(f"{type(self).__name__} needs X (a 2D array), got None")
         names = None
+        table = SPEC["table"]
         if hasattr(X, "columns") and not _is_sparse(X):
-            names = tuple(str(c) for c in X.columns)
+            if table is not None:
+                X, names = _frame_inputs(X, table)  # the spec's inputs by name, and its derived inputs
+            else:
+                names = tuple(str(c) for c in X.columns)
+        elif table is not None and table["features"]:
+            raise ValueError("the spec derives inputs (" + ", ".join(f for f, _fn in table["features"])
+                             + ") from named columns: pass X as a pandas DataFrame holding the table's columns")
         if not _is_sparse(X):
             X = np.asarray(X)
             if np.iscomplexobj(X):
@@ -128,14 +135,19 @@ class EstimatorBase:
                 raise ValueError("y holds NaN or infinity")
             if y.dtype.kind == "f" and np.any(y != np.round(y)):
                 raise ValueError("Unknown label type: continuous target; this model separates two classes")
-            self.classes_, labels = np.unique(y, return_inverse=True)
-            if len(self.classes_) != 2:
-                count = len(self.classes_)
-                raise ValueError(f"Only binary classification is supported: this model separates two classes; "
-                                 f"y holds {count} class"
-                                 f"{'' if count == 1 else 'es'} ({', '.join(map(str, self.classes_[:5]))})")
-            target = np.where(labels == 1, 1.0, -1.0)  # classes_[1] is the positive class
             table = SPEC["table"]
+            if table is not None and table["label_map"]:
+                # the spec says which value is +1: classes_ is [the -1 value, the +1 value], so that
+                # classes_[1] is still the class a positive score predicts
+                target, self.classes_ = _mapped_target(y, table["label_map"], table["target"])
+            else:
+                self.classes_, labels = np.unique(y, return_inverse=True)
+                if len(self.classes_) != 2:
+                    count = len(self.classes_)
+                    raise ValueError(f"Only binary classification is supported: this model separates two classes; "
+                                     f"y holds {count} class"
+                                     f"{'' if count == 1 else 'es'} ({', '.join(map(str, self.classes_[:5]))})")
+                target = np.where(labels == 1, 1.0, -1.0)  # classes_[1] is the positive class
             if table is not None:
                 for label, weight in table["class_weights"]:
                     c = np.where(target == label, c * weight, c)
@@ -188,6 +200,95 @@ class EstimatorBase:
         total = np.sum(w * (y - mean) ** 2)
         residual = np.sum(w * (y - pred) ** 2)
         return float(1.0 - residual / total) if total > 0 else (1.0 if residual == 0 else 0.0)
+
+
+class _FrameColumns:
+    """A DataFrame's columns as float arrays, by name, for the spec's derived-input formulas."""
+
+    def __init__(self, frame, data):
+        self.frame, self.data = frame, data
+
+    def __getitem__(self, name):
+        if name not in self.data:
+            if name not in [str(c) for c in self.frame.columns]:
+                raise ValueError(f"a derived input of the spec reads column {name!r}, which X does not have")
+            self.data[name] = _frame_column(self.frame, name)
+        return self.data[name]
+
+
+def _frame_column(frame, name):
+    # columns are matched by their names as text (a frame's labels may be numbers)
+    key = next(c for c in frame.columns if str(c) == name)
+    try:
+        return np.asarray(frame[key], dtype=np.float64)
+    except (TypeError, ValueError):
+        raise ValueError(f"column {name!r} of X is not numeric") from None
+
+
+def _frame_inputs(frame, table):
+    """X as the spec's table clause reads it: the named, matched or `all` inputs in its order, then
+    each `feature` computed from the columns; returns (matrix, input names)."""
+    import fnmatch
+    header = [str(c) for c in frame.columns]
+    reserved = {c for c in (table["target"], table["row_weight"]) if c is not None}
+    chosen = []
+    for kind, text in table["inputs"]:
+        if kind == "column":
+            if text not in header:
+                raise ValueError(f"X has no column {text!r}, which the spec names as an input")
+            chosen.append(text)
+        elif kind == "pattern":
+            matched = [c for c in header if fnmatch.fnmatchcase(c, text) and c not in reserved]
+            if not matched:
+                raise ValueError(f"no column of X matches the spec's input pattern {text!r}")
+            chosen += matched
+        else:
+            chosen += [str(c) for c in frame.columns
+                       if str(c) not in reserved and np.asarray(frame[c]).dtype.kind in "biuf"]
+    chosen = [c for c in dict.fromkeys(chosen) if c not in table["excluded"]]
+    data = {c: _frame_column(frame, c) for c in chosen}
+    n = len(frame)
+    for fname, fn in table["features"]:
+        with np.errstate(all="ignore"):
+            data[fname] = np.broadcast_to(fn(_FrameColumns(frame, data)), (n,)).astype(np.float64)
+        chosen.append(fname)
+    if not chosen:
+        raise ValueError("X holds none of the spec's inputs")
+    return np.column_stack([data[c] for c in chosen]), tuple(chosen)
+
+
+def _label_matches(cells, value):
+    """Cells equal to a label-map value: text against text, numbers against numbers."""
+    if isinstance(value, str):
+        return np.array([isinstance(c, str) and c == value for c in cells], dtype=bool)
+    out = np.zeros(len(cells), dtype=bool)
+    for i, c in enumerate(cells):
+        if not isinstance(c, (str, bytes, bool, np.bool_)):
+            try:
+                out[i] = float(c) == float(value)
+            except (TypeError, ValueError):
+                pass
+    return out
+
+
+def _mapped_target(y, label_map, target_name):
+    """+1/-1 per row through the spec's label map, and the classes as [-1 value, +1 value]."""
+    cells = y.tolist()
+    target = np.full(len(cells), np.nan)
+    first = {}
+    for value, label in label_map:
+        hit = _label_matches(cells, value) & np.isnan(target)
+        target[hit] = label
+        first.setdefault(label, value)
+    unknown = list(dict.fromkeys(c for c, t in zip(cells, target) if np.isnan(t)))
+    if unknown:
+        listed = ", ".join(repr(v) for v in unknown[:5]) + (", ..." if len(unknown) > 5 else "")
+        known = ", ".join(f"{v!r} -> {lab:+g}" for v, lab in label_map)
+        raise ValueError(f"y holds {listed}, which the spec's label map for {target_name!r} does not list "
+                         f"({known}); pass the target in the values the spec maps")
+    if len(set(target.tolist())) != 2:
+        raise ValueError("y holds one class only; a margin loss needs both the +1 and the -1 class")
+    return target, np.array([first[-1.0], first[1.0]])
 
 
 class ClassifierBase(EstimatorBase):

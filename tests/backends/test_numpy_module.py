@@ -21,6 +21,7 @@ import warnings
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
 import scipy.sparse as sp
 from scipy.optimize import minimize
@@ -639,12 +640,41 @@ def test_estimator_basics(cancer):
     X, y, _ = cancer
     Model = _estimator_class("mean logistic(y * s) + C * l2sq(w)", True) if False else \
         _estimator_class("mean logistic(y * s) + 0.005 * l2sq(w)", True)
-    labels = np.where(y > 0, "benign", "malignant")
+    labels = np.where(y > 0, "yes", "no")  # the spec's label map: yes -> +1, no -> -1
     model = Model().fit(X, labels)
-    assert list(model.classes_) == ["benign", "malignant"]
+    assert list(model.classes_) == ["no", "yes"]  # [the -1 value, the +1 value]
     assert model.coef_.shape == (30,) and isinstance(model.intercept_, float) and model.n_features_in_ == 30
-    assert set(model.predict(X)) <= {"benign", "malignant"} and model.score(X, labels) > 0.95
+    assert set(model.predict(X)) <= {"yes", "no"} and model.score(X, labels) > 0.95
+    with pytest.raises(ValueError, match="label map"):  # values the spec does not map are refused
+        Model().fit(X, np.where(y > 0, "benign", "malignant"))
     assert model.set_params(tol=1e-8).get_params()["tol"] == 1e-8
+
+
+def test_estimator_trains_exactly_the_specs_model(cancer, tmp_path):
+    # regression: the estimator took +1 as whichever label sorts second (so class weights landed on
+    # the wrong class), dropped `feature` lines, and failed on `keep w[name]` with plain arrays
+    X, y, names = cancer
+    X = X[:, :4]
+    text = ('table t from "t.csv"\n  target d: malignant -> -1, benign -> +1\n  inputs f0, f1, f2, f3\n'
+            '  feature f01 = f0 * f1\n  classweight +1 = 1, -1 = 4\nlearn w over inputs, b\nscore s = w . x + b\n'
+            'keep w[f1] >= 0\ngoal mean logistic(y * s) + 0.01 * l2sq(w)\n')
+    checked = objc.check_text(text, "est.objc")
+    Model = nm.load_module(nm.emit_module(checked))["Model"]
+    frame = pd.DataFrame(X, columns=["f0", "f1", "f2", "f3"])
+    labels = np.where(y > 0, "benign", "malignant")
+    model = Model(tol=1e-10).fit(frame, labels)
+    assert list(model.classes_) == ["malignant", "benign"] and model.input_names_ == ("f0", "f1", "f2", "f3", "f01")
+    # the same model from objc's own table binding (label map, class weights, derived input) and cvxpy
+    frame.assign(d=labels).to_csv(tmp_path / "t.csv", index=False)
+    data = bind_table(checked.spec.table, tmp_path, "margin")
+    from objc.backends import cvxpy_problem
+    ref = cvxpy_problem.fit(checked, data.X, data.y, data.weights, data.input_names)
+    np.testing.assert_allclose(model.coef_, ref.params["w"], atol=1e-5)
+    assert model.coef_[1] >= -1e-9
+    assert (model.predict(frame) == np.where(data.X @ ref.params["w"] + ref.params["b"] > 0, "benign",
+                                             "malignant")).mean() > 0.99
+    with pytest.raises(ValueError, match="DataFrame"):  # derived inputs need the named columns
+        Model().fit(X, labels)
 
 
 # scikit-learn's common checks. Skipped, with the reason:
@@ -673,7 +703,9 @@ def _sklearn_checks():
                          ids=["classifier", "regressor"])
 def test_sklearn_check_estimator(goal, margin):
     check_estimator = _sklearn_checks()
-    Model = _estimator_class(goal, margin)
+    # a margin spec without a label map takes scikit-learn's convention: classes_[1] is the +1 class
+    Model = nm.load_module(nm.emit_module(objc.check_text(spec(goal, margin=margin).replace(
+        ": yes -> +1, no -> -1", ""), "est.objc")))["Model"]
     results = check_estimator(Model(), on_fail=None, expected_failed_checks=SKIPPED_CHECKS)
     failures = [r for r in results if r["status"] == "failed"]
     assert not failures, [(r["check_name"], str(r["exception"])[:300]) for r in failures]
