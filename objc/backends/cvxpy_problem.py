@@ -64,7 +64,13 @@ from objc.source_text import NO_SPAN, Span
 # 'inaccurate' on one of eight weighted logistic problems on iris where 1e-9 and its defaults (1e-8)
 # succeeded; the objective then moved by < 1e-12.
 SOLVER_OPTIONS: Mapping[str, tuple[Mapping[str, Any], ...]] = MappingProxyType({
-    "CLARABEL": (MappingProxyType({"tol_gap_abs": 1e-10, "tol_gap_rel": 1e-10, "tol_feas": 1e-10,
+    # 1e-12 with tighter iterative refinement first: at 1e-10 CLARABEL reported 'optimal' on an
+    # exponential + L2 fit on iris whose intercept was still 3e-6 from the optimum (measured against
+    # a Newton solve to a gradient norm of 1e-16), and ended 'inaccurate' on logistic + L2
+    "CLARABEL": (MappingProxyType({"tol_gap_abs": 1e-12, "tol_gap_rel": 1e-12, "tol_feas": 1e-12,
+                                   "iterative_refinement_reltol": 1e-14, "iterative_refinement_abstol": 1e-14,
+                                   "max_iter": 400}),
+                 MappingProxyType({"tol_gap_abs": 1e-10, "tol_gap_rel": 1e-10, "tol_feas": 1e-10,
                                    "max_iter": 400}),
                  MappingProxyType({"tol_gap_abs": 1e-8, "tol_gap_rel": 1e-8, "tol_feas": 1e-8, "max_iter": 400})),
     "SCS": (MappingProxyType({"eps_abs": 1e-9, "eps_rel": 1e-9, "max_iters": 200000}),
@@ -666,7 +672,7 @@ def _certificate(name: str, problem: Any, options: Mapping[str, Any], relaxed: b
     extra = problem.solver_stats.extra_stats
     obj = float(problem.value)
     absolute = None
-    parts = [f"{name} reported optimal" + (" at its usual tolerances (the tight ones stalled)" if relaxed else "")]
+    parts = [f"{name} reported optimal" + (" at looser tolerances (the tightest stalled)" if relaxed else "")]
     tol_key = _GAP_TOLERANCE.get(name)
     tolerance = float(options[tol_key]) if tol_key and tol_key in options else None
     if tolerance is not None:
