@@ -199,8 +199,11 @@ def _indices_of(names, input_names, what):
     out = []
     for n in names:
         if n not in index:
+            unnamed = tuple(input_names) == tuple(f"x{j}" for j in range(len(input_names)))
             raise SolverInputError(f"{what} names input {n!r}, which is not among the inputs "
-                                   f"({', '.join(map(repr, input_names[:8]))}{', ...' if len(input_names) > 8 else ''})")
+                                   f"({', '.join(map(repr, input_names[:8]))}{', ...' if len(input_names) > 8 else ''})"
+                                   + ("; X came without column names: pass a pandas DataFrame (or input_names) "
+                                      "so the spec's names find their columns" if unnamed else ""))
         out.append(index[n])
     return np.asarray(out, dtype=np.intp)
 
