@@ -43,6 +43,11 @@ def _k_hinge_conj(u):
     return np.where((u >= -1.0) & (u <= 0.0), u, np.inf)
 
 
+def _k_flat_curv_floor(lo, hi, **_settings):
+    # a piecewise-linear loss: its second derivative is 0 wherever it exists, so no interval has curvature
+    return np.zeros(np.broadcast(np.asarray(lo), np.asarray(hi)).shape)
+
+
 def _k_squared_hinge(m):
     return np.maximum(0.0, 1.0 - m) ** 2
 
@@ -57,6 +62,11 @@ def _k_squared_hinge_prox(v, g):
 
 def _k_squared_hinge_conj(u):
     return np.where(u <= 0.0, u + u * u / 4.0, np.inf)
+
+
+def _k_squared_hinge_curv_floor(lo, hi):
+    # l'' = 2 left of the corner m = 1 (l' = -2(1 - m) is continuous there), 0 right of it
+    return np.where(np.asarray(hi) <= 1.0, 2.0, 0.0) + 0.0 * np.asarray(lo)
 
 
 def _k_smooth_hinge(m, c=1.0):
@@ -77,6 +87,11 @@ def _k_smooth_hinge_conj(u, c=1.0):
     return np.where((u >= -1.0) & (u <= 0.0), u + c * u * u / 2.0, np.inf)
 
 
+def _k_smooth_hinge_curv_floor(lo, hi, c=1.0):
+    # l'' = 1/c on the quadratic corner [1 - c, 1] (l' continuous at both ends), 0 elsewhere
+    return np.where((np.asarray(lo) >= 1.0 - c) & (np.asarray(hi) <= 1.0), 1.0 / c, 0.0)
+
+
 def _k_modified_huber(m):
     return np.where(m >= -1.0, np.maximum(0.0, 1.0 - m) ** 2, -4.0 * m)
 
@@ -91,6 +106,11 @@ def _k_modified_huber_prox(v, g):
 
 def _k_modified_huber_conj(u):
     return np.where((u >= -4.0) & (u <= 0.0), u + u * u / 4.0, np.inf)
+
+
+def _k_modified_huber_curv_floor(lo, hi):
+    # l'' = 2 on [-1, 1] (l' continuous at both ends), 0 outside
+    return np.where((np.asarray(lo) >= -1.0) & (np.asarray(hi) <= 1.0), 2.0, 0.0)
 
 
 def _k_perceptron(m):
@@ -145,6 +165,14 @@ def _k_logistic_conj(u):
     return np.where((u >= -1.0) & (u <= 0.0), inner, np.inf)
 
 
+def _k_logistic_curv_floor(lo, hi):
+    # l'' = sigma(m) sigma(-m) is even and decreases in |m|: its minimum over [lo, hi] is at the end
+    # farther from 0, e^-a / (1 + e^-a)^2 with a = that |m| (no overflow for large a)
+    a = np.maximum(np.abs(lo), np.abs(hi))
+    e = np.exp(-a)
+    return e / (1.0 + e) ** 2
+
+
 def _k_exponential(m):
     with np.errstate(over="ignore"):
         return np.exp(-m)
@@ -176,6 +204,12 @@ def _k_exponential_conj(u):
     return np.where(u <= 0.0, inner, np.inf)
 
 
+def _k_exponential_curv_floor(lo, hi):
+    # l'' = e^-m decreases: its minimum over [lo, hi] is at hi (0 when hi is +inf)
+    with np.errstate(over="ignore"):
+        return np.exp(-np.asarray(hi, dtype=float)) + 0.0 * np.asarray(lo)
+
+
 def _k_zero_one(m):
     return np.where(m <= 0.0, 1.0, 0.0)
 
@@ -198,6 +232,11 @@ def _k_squared_prox(v, g):
 
 def _k_squared_conj(u):
     return 0.5 * u * u
+
+
+def _k_squared_curv_floor(lo, hi):
+    # l'' = 1 everywhere
+    return np.ones(np.broadcast(np.asarray(lo), np.asarray(hi)).shape)
 
 
 def _k_absolute(r):
@@ -233,6 +272,11 @@ def _k_huber_conj(u, d=1.0):
     return np.where(np.abs(u) <= d, 0.5 * u * u, np.inf)
 
 
+def _k_huber_curv_floor(lo, hi, d=1.0):
+    # l'' = 1 on [-d, d] (l' = clip(r, -d, d) is continuous at both ends), 0 outside
+    return np.where((np.asarray(lo) >= -d) & (np.asarray(hi) <= d), 1.0, 0.0)
+
+
 def _k_pinball(r, t=0.5):
     return np.maximum(t * r, (t - 1.0) * r)
 
@@ -264,6 +308,15 @@ def _k_epsilon_insensitive_prox(v, g, e=0.1):
 
 def _k_epsilon_insensitive_conj(u, e=0.1):
     return np.where(np.abs(u) <= 1.0, e * np.abs(u), np.inf)
+
+
+def _k_below(u, a=0.0):
+    return np.where(u < a, 1.0, 0.0)
+
+
+def _k_below_d(u, a=0.0):
+    # zero wherever the step is differentiable (everywhere but u = a): no information for a solver
+    return np.zeros_like(np.asarray(u, dtype=float))
 
 
 def _k_abs(x):
@@ -333,6 +386,16 @@ def _k_neg_d(x):
     return np.where(x < 0.0, -1.0, 0.0)
 
 
+def _k_cosh(x):
+    with np.errstate(over="ignore"):
+        return np.cosh(x)
+
+
+def _k_cosh_d(x):
+    with np.errstate(over="ignore"):
+        return np.sinh(x)
+
+
 def _k_tanh(x):
     return np.tanh(x)
 
@@ -380,6 +443,14 @@ def _k_hypot_d(a, b):
     h = np.hypot(a, b)
     safe = np.where(h > 0.0, h, 1.0)
     return (np.where(h > 0.0, a / safe, 0.0), np.where(h > 0.0, b / safe, 0.0))
+
+
+def _k_l0(w, z=0.0):
+    return float(np.sum(np.abs(np.asarray(w, dtype=float)) > z))
+
+
+def _k_l0_d(w, z=0.0):
+    return np.zeros_like(np.asarray(w, dtype=float))
 
 
 def _k_l1(w):
@@ -507,9 +578,16 @@ class Entry:
     conjugate: Callable[..., Any] | None = None
     # optional: (value, derivative) in one call, for entries where computing both together is cheaper
     value_and_derivative: Callable[..., Any] | None = None
+    # optional: the least second derivative of a loss over an interval of its argument, a kernel
+    # (lo, hi, **settings) -> min of l'' over [lo, hi] (elementwise); the NumPy backend turns it into a
+    # strong-convexity modulus and so a certified distance of the weights to the optimum
+    curv_floor: Callable[..., Any] | None = field(default=None, kw_only=True)
     role: Literal["margin", "residual", None] = None
     calibrated: bool | None = None
     trainable: bool = True
+    # for an entry that is not trainable: why training on it is refused, and what to do instead
+    refusal: str = ""
+    refusal_hint: str = ""
     domain: tuple[float, float] = (-np.inf, np.inf)  # where the argument must lie
     test_points: tuple[float, float] = (-4.0, 4.0)  # where the property suite samples arguments
 
@@ -558,7 +636,12 @@ def _cp_hypot(cp, a, b):
 
 
 def _cp_power(cp, x, p=2.0):
-    return cp.power(x, p)
+    if float(p).is_integer():
+        return cp.power(x, p)
+    # a fractional exponent as a power cone: cvxpy's default second-order-cone approximation ended
+    # 'inaccurate' in Clarabel on mean |r|^2.5 over the raw diabetes targets, the power cone did not
+    # (measured, cvxpy 1.9); a tunable exponent takes any value, not only short fractions
+    return cp.power(x, p, approx=False)
 
 
 def _power_curvature(o: dict) -> Curvature:
@@ -618,62 +701,70 @@ ENTRIES: tuple[Entry, ...] = (
     # ---- margin losses: argument m = y * s
     Entry("hinge", "loss", "hinge loss of the margin", "max(0, 1 - m)", _const(CONVEX), _fixed_mono(DEC),
           _nonneg, _k_hinge, _k_hinge_d, lambda cp, m: cp.pos(1 - m), lipschitz=_k(1.0),
-          prox=_k_hinge_prox, conjugate=_k_hinge_conj, role="margin", calibrated=True),
+          prox=_k_hinge_prox, conjugate=_k_hinge_conj, role="margin", calibrated=True,
+          curv_floor=_k_flat_curv_floor),
     Entry("squared_hinge", "loss", "squared hinge loss of the margin", "max(0, 1 - m)^2", _const(CONVEX),
           _fixed_mono(DEC), _nonneg, _k_squared_hinge, _k_squared_hinge_d,
           lambda cp, m: cp.square(cp.pos(1 - m)), smooth=_yes, grad_lipschitz=_k(2.0),
-          prox=_k_squared_hinge_prox, conjugate=_k_squared_hinge_conj, role="margin", calibrated=True),
+          prox=_k_squared_hinge_prox, conjugate=_k_squared_hinge_conj, role="margin", calibrated=True,
+          curv_floor=_k_squared_hinge_curv_floor),
     Entry("smooth_hinge", "loss", "hinge with a quadratic corner of width c",
           "0 if m >= 1; (1-m)^2/(2c) if 1-c < m < 1; 1 - m - c/2 otherwise", _const(CONVEX),
           _fixed_mono(DEC), _nonneg, _k_smooth_hinge, _k_smooth_hinge_d, _cp_smooth_hinge,
           options=(Option("c", 1.0, 0.0, np.inf, meaning="width of the quadratic corner"),),
           smooth=_yes, lipschitz=_k(1.0), grad_lipschitz=lambda o: 1.0 / o["c"],
-          prox=_k_smooth_hinge_prox, conjugate=_k_smooth_hinge_conj, role="margin", calibrated=True),
+          prox=_k_smooth_hinge_prox, conjugate=_k_smooth_hinge_conj, role="margin", calibrated=True,
+          curv_floor=_k_smooth_hinge_curv_floor),
     Entry("modified_huber", "loss", "modified Huber loss of the margin",
           "max(0, 1 - m)^2 if m >= -1 else -4m", _const(CONVEX), _fixed_mono(DEC), _nonneg,
           _k_modified_huber, _k_modified_huber_d, _cp_modified_huber, smooth=_yes, lipschitz=_k(4.0),
           grad_lipschitz=_k(2.0), prox=_k_modified_huber_prox, conjugate=_k_modified_huber_conj,
-          role="margin", calibrated=True),
+          role="margin", calibrated=True, curv_floor=_k_modified_huber_curv_floor),
     Entry("perceptron", "loss", "perceptron loss of the margin", "max(0, -m)", _const(CONVEX),
           _fixed_mono(DEC), _nonneg, _k_perceptron, _k_perceptron_d, lambda cp, m: cp.pos(-m),
           lipschitz=_k(1.0), prox=_k_perceptron_prox, conjugate=_k_perceptron_conj, role="margin",
-          calibrated=False),
+          calibrated=False, curv_floor=_k_flat_curv_floor),
     Entry("logistic", "loss", "logistic loss of the margin (natural log)", "log(1 + exp(-m))",
           _const(CONVEX), _fixed_mono(DEC), _nonneg, _k_logistic, _k_logistic_d,
           lambda cp, m: cp.logistic(-m), smooth=_yes, lipschitz=_k(1.0), grad_lipschitz=_k(0.25),
           prox=_k_logistic_prox, conjugate=_k_logistic_conj, role="margin", calibrated=True,
-          value_and_derivative=_k_logistic_vd),
+          value_and_derivative=_k_logistic_vd, curv_floor=_k_logistic_curv_floor),
     Entry("exponential", "loss", "exponential loss of the margin", "exp(-m)", _const(CONVEX),
           _fixed_mono(DEC), _nonneg, _k_exponential, _k_exponential_d, lambda cp, m: cp.exp(-m),
           smooth=_yes, prox=_k_exponential_prox, conjugate=_k_exponential_conj, role="margin",
-          calibrated=True, test_points=(-3.0, 3.0)),
+          calibrated=True, test_points=(-3.0, 3.0), curv_floor=_k_exponential_curv_floor),
     Entry("zero_one", "loss", "0-1 loss of the margin (evaluation only)", "1 if m <= 0 else 0",
           _const(UNKNOWN), _fixed_mono(DEC), _nonneg, _k_zero_one, _k_zero_one_d,
-          lambda cp, m: None, role="margin", trainable=False),
+          lambda cp, m: None, role="margin", trainable=False,
+          refusal="the 0-1 loss is discontinuous: it cannot be trained on (no subgradient carries information), "
+                  "only evaluated",
+          refusal_hint="train with a surrogate such as hinge(y * s) or logistic(y * s); `objc eval` reports the 0-1 "
+                       "error of every model"),
     # ---- residual losses: argument r = y - s
     Entry("squared", "loss", "squared loss of the residual (half-scaled)", "r^2 / 2", _const(CONVEX),
           _even_mono, _nonneg, _k_squared, _k_squared_d, lambda cp, r: 0.5 * cp.square(r), smooth=_yes,
-          grad_lipschitz=_k(1.0), prox=_k_squared_prox, conjugate=_k_squared_conj, role="residual"),
+          grad_lipschitz=_k(1.0), prox=_k_squared_prox, conjugate=_k_squared_conj, role="residual",
+          curv_floor=_k_squared_curv_floor),
     Entry("absolute", "loss", "absolute loss of the residual", "|r|", _const(CONVEX), _even_mono, _nonneg,
           _k_absolute, _k_absolute_d, lambda cp, r: cp.abs(r), lipschitz=_k(1.0), prox=_k_absolute_prox,
-          conjugate=_k_absolute_conj, role="residual"),
+          conjugate=_k_absolute_conj, role="residual", curv_floor=_k_flat_curv_floor),
     Entry("huber", "loss", "Huber loss of the residual (half-scaled: r^2/2 inside)",
           "r^2/2 if |r| <= d else d(|r| - d/2)", _const(CONVEX), _even_mono, _nonneg, _k_huber, _k_huber_d,
           lambda cp, r, d=1.0: cp.huber(r, d) / 2.0,
           options=(Option("d", 1.0, 0.0, np.inf, meaning="threshold between the quadratic and linear parts"),),
           smooth=_yes, lipschitz=lambda o: o["d"], grad_lipschitz=_k(1.0), prox=_k_huber_prox,
-          conjugate=_k_huber_conj, role="residual"),
+          conjugate=_k_huber_conj, role="residual", curv_floor=_k_huber_curv_floor),
     Entry("pinball", "loss", "pinball (quantile) loss of the residual at quantile t",
           "max(t r, (t - 1) r)", _const(CONVEX), _even_mono, _nonneg, _k_pinball, _k_pinball_d, _cp_pinball,
           options=(Option("t", 0.5, 0.0, 1.0, high_open=True, meaning="the quantile, strictly between 0 and 1"),),
           lipschitz=lambda o: max(o["t"], 1.0 - o["t"]), prox=_k_pinball_prox, conjugate=_k_pinball_conj,
-          role="residual"),
+          role="residual", curv_floor=_k_flat_curv_floor),
     Entry("epsilon_insensitive", "loss", "epsilon-insensitive loss of the residual", "max(0, |r| - e)",
           _const(CONVEX), _even_mono, _nonneg, _k_epsilon_insensitive, _k_epsilon_insensitive_d,
           lambda cp, r, e=0.1: cp.pos(cp.abs(r) - e),
           options=(Option("e", 0.1, 0.0, np.inf, low_open=False, meaning="half-width of the free band"),),
           lipschitz=_k(1.0), prox=_k_epsilon_insensitive_prox, conjugate=_k_epsilon_insensitive_conj,
-          role="residual"),
+          role="residual", curv_floor=_k_flat_curv_floor),
     # ---- scalar atoms (elementwise on vectors)
     Entry("abs", "atom", "absolute value", "|x|", _const(CONVEX), _even_mono, _nonneg, _k_abs, _k_abs_d,
           lambda cp, x: cp.abs(x), lipschitz=_k(1.0)),
@@ -694,11 +785,22 @@ ENTRIES: tuple[Entry, ...] = (
           _k_pos_d, lambda cp, x: cp.pos(x), lipschitz=_k(1.0)),
     Entry("neg", "atom", "negative part", "max(-x, 0)", _const(CONVEX), _fixed_mono(DEC), _nonneg, _k_neg,
           _k_neg_d, lambda cp, x: cp.neg(x), lipschitz=_k(1.0)),
+    Entry("cosh", "atom", "hyperbolic cosine; cosh(0) = 1 and cosh'' = cosh >= 1, so strongly convex with "
+          "modulus 1", "(e^x + e^-x) / 2", _const(CONVEX), _even_mono, _nonneg, _k_cosh, _k_cosh_d,
+          lambda cp, x: (cp.exp(x) + cp.exp(-x)) / 2.0, smooth=_yes, test_points=(-3.0, 3.0)),
+    Entry("below", "atom", "0/1 indicator that u lies below a (evaluation only)", "1 if u < a else 0",
+          _const(UNKNOWN), _fixed_mono(DEC), _nonneg, _k_below, _k_below_d, lambda cp, u, a=0.0: None,
+          options=(Option("a", 0.0, -np.inf, np.inf, meaning="the threshold u is compared with"),),
+          trainable=False,
+          refusal="below(u, a) is a 0/1 indicator, a step: it cannot be trained on (its derivative is 0 wherever it "
+                  "exists), only evaluated",
+          refusal_hint="use it to report a share of rows (e.g. mean below(y * s, 0), the rows with a negative "
+                       "margin) and train on a convex surrogate such as hinge(y * s)"),
     Entry("tanh", "atom", "hyperbolic tangent (neither convex nor concave)", "tanh(x)", _const(UNKNOWN),
           _fixed_mono(INC), _same_sign, _k_tanh, _k_tanh_d, lambda cp, x: None, smooth=_yes),
-    Entry("power", "atom", "x^p (written x ^ p with a literal p)", "x^p; for p not an even integer x >= 0",
+    Entry("power", "atom", "x^p (written x ^ p, p a number or a tunable)", "x^p; for p not an even integer x >= 0",
           _power_curvature, _power_mono, _power_sign, _k_power, _k_power_d, _cp_power,
-          options=(Option("p", 2.0, -np.inf, np.inf, meaning="the exponent, a literal number"),), smooth=_yes),
+          options=(Option("p", 2.0, -np.inf, np.inf, meaning="the exponent, a number or a tunable"),), smooth=_yes),
     Entry("max", "atom", "largest of its arguments", "max(a, b, ...)", _const(CONVEX), _fixed_mono(INC),
           _max_sign, _k_max, _k_max_d, lambda cp, *xs: cp.maximum(*xs), arity=0),
     Entry("min", "atom", "smallest of its arguments", "min(a, b, ...)", _const(CONCAVE), _fixed_mono(INC),
@@ -706,6 +808,14 @@ ENTRIES: tuple[Entry, ...] = (
     Entry("hypot", "atom", "Euclidean length of (a, b)", "sqrt(a^2 + b^2)", _const(CONVEX), _even_mono,
           _nonneg, _k_hypot, _k_hypot_d, lambda cp, a, b: _cp_hypot(cp, a, b), arity=2, lipschitz=_k(1.0)),
     # ---- norms of a parameter vector (or a selection of it)
+    Entry("l0", "norm", "count of nonzero weights (the l0 count; not a norm, evaluation only)",
+          "number of j with |w_j| > z", _const(UNKNOWN), _even_mono, _nonneg, _k_l0, _k_l0_d,
+          lambda cp, w, z=0.0: None,
+          options=(Option("z", 0.0, 0.0, np.inf, low_open=False, meaning="entries with |w_j| <= z count as zero"),),
+          trainable=False,
+          refusal="l0(w) counts nonzero weights: a step in every weight, it cannot be trained on (its derivative "
+                  "is 0 wherever it exists), only evaluated",
+          refusal_hint="report it for a trained model; for sparse weights train with the convex l1(w)"),
     Entry("l1", "norm", "L1 norm", "sum_j |w_j|", _const(CONVEX), _even_mono, _nonneg, _k_l1, _k_l1_d,
           lambda cp, w: cp.norm1(w), prox=_k_l1_prox, conjugate=_k_l1_conj),
     Entry("l2", "norm", "L2 (Euclidean) norm", "sqrt(sum_j w_j^2)", _const(CONVEX), _even_mono, _nonneg,

@@ -11,7 +11,6 @@ import json
 import sys
 import time
 from pathlib import Path
-from typing import Any
 
 from objc.diagnostics import Diagnostic, SpecError
 from objc.model_io import dumps_strict
@@ -48,7 +47,28 @@ def _rule(title: str) -> str:
 
 # ---------------------------------------------------------------- check
 
-def _check_json(checked) -> dict:
+def _witness_json(w) -> dict | None:
+    if w is None:
+        return None
+    return {"variable": w.variable, "a": w.a, "b": w.b, "value_at_midpoint": w.value_mid,
+            "average_of_ends": w.value_avg, "point_a": dict(w.point_a), "point_b": dict(w.point_b),
+            "inputs": list(w.inputs), "row": dict(w.row), "label": w.label, "tunables": dict(w.tunables)}
+
+
+def _backend_warnings(checked) -> tuple:
+    """W321 when the default (NumPy) backend cannot train an accepted spec, said before any training."""
+    if not checked.accepted:
+        return ()
+    from objc.backends import numpy_module
+    err = numpy_module.unsupported(checked)
+    if err is None:
+        return ()
+    return (Diagnostic("W321", f"the NumPy backend (the default) cannot train this spec: {err.what}",
+                       err.span or NO_SPAN, "warning", "fit and build it with `--backend cvxpy`", (),
+                       checked.source.name),)
+
+
+def _check_json(checked, extra_warnings: tuple = ()) -> dict:
     return {
         "command": "check",
         "ok": checked.accepted,
@@ -62,22 +82,21 @@ def _check_json(checked) -> dict:
         "terms": [{"index": t.index + 1, "text": t.text, "line": t.span.line, "column": t.span.column,
                    "kind": t.kind, "curvature": t.curvature.value, "smooth": t.smooth, "verdict": t.verdict,
                    "role": t.role, "losses": list(t.losses), "coefficient": t.coefficient,
-                   "explanation": list(t.explanation),
-                   "witness": None if t.witness is None else {
-                       "variable": t.witness.variable, "a": t.witness.a, "b": t.witness.b,
-                       "value_at_midpoint": t.witness.value_mid, "average_of_ends": t.witness.value_avg}}
+                   "explanation": list(t.explanation), "witness": _witness_json(t.witness),
+                   "collected_from": [{"term": k, "text": x} for k, x in zip(t.parts, t.part_texts)]}
                   for t in checked.terms],
+        "witness": _witness_json(checked.witness),
         "constraints": [{"text": c.text, "line": c.span.line, "kind": c.kind, "keeps_convexity": c.curvature_ok}
                         for c in checked.constraints],
         "intercept": checked.intercept,
         "intercept_penalized": checked.penalizes_intercept,
         "expanded": checked.expanded,
         "errors": _diag_list(checked.errors, checked.source),
-        "warnings": _diag_list(checked.warnings, checked.source),
+        "warnings": _diag_list(checked.warnings + tuple(extra_warnings), checked.source),
     }
 
 
-def _check_text_report(checked) -> str:
+def _check_text_report(checked, extra_warnings: tuple = ()) -> str:
     verdict = checked.verdict.upper()
     task = {"margin": "classification (losses of the margin y * s)",
             "residual": "regression (losses of the residual y - s)"}.get(checked.task or "", "no per-row loss")
@@ -100,9 +119,10 @@ def _check_text_report(checked) -> str:
     if checked.errors:
         lines += ["", _rule("why not")]
         lines += [d.render(checked.source) for d in checked.errors]
-    if checked.warnings:
+    warnings = tuple(checked.warnings) + tuple(extra_warnings)
+    if warnings:
         lines += ["", _rule("warnings")]
-        lines += [d.render(checked.source) for d in checked.warnings]
+        lines += [d.render(checked.source) for d in warnings]
     return "\n".join(lines) + "\n"
 
 
@@ -124,15 +144,16 @@ def cmd_check(args) -> int:
         except SpecError as err:
             data_problems = err.diagnostics
             ok = False
+    extra = _backend_warnings(checked)
     if args.json:
-        doc = _check_json(checked)
+        doc = _check_json(checked, extra)
         doc["ok"] = ok
         if args.with_data:
             doc["data"] = data_summary
             doc["errors"] += _diag_list(data_problems, checked.source)
         _emit_json(doc)
     else:
-        sys.stdout.write(_check_text_report(checked))
+        sys.stdout.write(_check_text_report(checked, extra))
         if args.with_data:
             sys.stdout.write("\n" + _rule("the table") + "\n")
             if data_summary is not None:
@@ -148,14 +169,18 @@ def cmd_check(args) -> int:
 
 def cmd_build(args) -> int:
     from objc.frontend import check_file
-    from objc.training import require_trainable
+    from objc import training
     checked = check_file(args.spec)
-    require_trainable(checked, args.local_ok)
+    training.require_trainable(checked, args.local_ok)
     if args.backend == "cvxpy":
         from objc.backends.cvxpy_problem import emit_module
+        text = emit_module(checked)
     else:
-        from objc.backends.numpy_module import emit_module
-    text = emit_module(checked)
+        from objc.backends import numpy_module
+        try:
+            text = numpy_module.emit_module(checked)
+        except numpy_module.NotSupported as err:
+            raise training.numpy_refusal(checked, err) from None
     out = Path(args.output)
     from objc.model_io import _atomic_write
     _atomic_write(out, text.encode("utf-8"))
@@ -214,19 +239,12 @@ def cmd_fit(args) -> int:
                                                      Path(args.data) if args.data else None)
     show = _progress_printer(not args.json and sys.stderr.isatty())
     result = training.run_backend(checked, train, args.backend, tunables, tol=args.tol, solver=args.solver,
-                                  allow_nonconvex=args.local_ok, progress=show)
+                                  allow_nonconvex=args.local_ok, progress=show, param_tol=args.param_tol)
     if show:
         sys.stderr.write("\r" + " " * 70 + "\r")
-    form = training.form_for(checked, train.input_names)
-    s_train = training.scores(form, result.params, train.X, train.y)
-    train_metrics = training.metrics(train.task, train.y, s_train, train.weights, checked)
-    held_metrics = None
-    if held is not None:
-        held_metrics = training.metrics(held.task, held.y, training.scores(form, result.params, held.X, held.y),
-                                        held.weights, checked)
     out = Path(args.output) if args.output else Path(spec_path.stem + ".model.json")
-    doc = training.model_document(checked, spec_path, train, result, tunables, train_metrics, held_metrics,
-                                  held_label)
+    doc = training.evaluated_document(checked, spec_path, train, held, held_label, result, tunables)
+    train_metrics, held_metrics = doc["training_metrics"], doc["holdout_metrics"]
     json_path = save_model(out, doc, result.params)
     if args.json:
         _emit_json({"command": "fit", "ok": True, "model": str(json_path), "objective": result.objective,
@@ -246,6 +264,7 @@ def cmd_fit(args) -> int:
              + f", {result.iterations} iterations",
              f"stopped   on the {cert.kind}" + (f": absolute {cert.absolute:.3g}, relative {cert.relative:.3g}"
                                         if cert.absolute is not None else "") + (f" ({cert.note})" if cert.note else ""),
+             _distance_line(cert),
              "", _rule("objective"), f"  {result.objective:.10g}  total"]
     for t, v in zip(checked.terms, result.term_values):
         lines.append(f"  {v:.10g}  {t.text}")
@@ -258,6 +277,39 @@ def cmd_fit(args) -> int:
     lines += ["", f"model     {json_path} (+ {json_path.with_suffix('.npz').name})"]
     print("\n".join(lines))
     return EXIT_OK
+
+
+def _distance_line(cert) -> str:
+    """How far the parameters may be from the optimum: 'certified' only for a proved bound; the
+    solver's note (which bound, where mu comes from, or why there is none) on the lines below."""
+    import textwrap
+    wanted = "" if cert.param_tolerance is None else f" (asked: {cert.param_tolerance:g})"
+    if cert.distance is not None:
+        head = f"distance  ||params - optimum|| <= {cert.distance:.3g}, certified{wanted}"
+    elif cert.weights_distance is not None:
+        head = (f"distance  ||w - w*|| <= {cert.weights_distance:.3g}, certified for the weights{wanted}; "
+                "no bound for the intercept")
+    else:
+        head = f"distance  none certified{wanted}"
+    if not cert.distance_note:
+        return head
+    return head + "\n" + textwrap.fill(cert.distance_note, width=100, initial_indent=" " * 10,
+                                       subsequent_indent=" " * 10)
+
+
+def _param_tol(text: str) -> float | None:
+    """--param-tol: a positive number, or 'off' to stop on the certificate of the objective alone."""
+    if text.strip().lower() == "off":
+        return None
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"'{text}' is not a number; give a positive distance such as 1e-6, "
+                                         "or off") from None
+    if not (value > 0 and value != float("inf")):
+        raise argparse.ArgumentTypeError(f"'{text}': the parameter tolerance must be a positive number "
+                                         "(or off to switch the parameter stop off)")
+    return value
 
 
 def _metric_lines(m: dict) -> list[str]:
@@ -294,7 +346,7 @@ def cmd_eval(args) -> int:
             where = f"the training table {doc['schema']['training_table']} (the spec holds no rows out)"
     form = training.form_for(checked, tuple(doc["schema"]["inputs"]))
     s = training.scores(form, model.params, data.X, data.y)
-    m = training.metrics(doc["task"], data.y, s, data.weights, checked)
+    m = training.metrics(doc["task"], data.y, s, data.weights, checked, doc.get("tunables"))
     if args.json:
         _emit_json({"command": "eval", "ok": True, "model": str(model.path), "table": str(where), "metrics": m})
     else:
@@ -303,7 +355,6 @@ def cmd_eval(args) -> int:
 
 
 def cmd_predict(args) -> int:
-    import numpy as np
     from objc import training
     from objc.model_io import _atomic_write, load_model
     model = load_model(Path(args.model))
@@ -371,14 +422,13 @@ def cmd_sweep(args) -> int:
         raise UsageError("--steps must be at least 1")
     base = _parse_settings(args.set, checked)
     values = training.sweep_grid(low, high, args.steps, args.linear)
-    show = None
-    if not args.json and sys.stderr.isatty():
-        def show(k, total, point):
-            sys.stderr.write(f"\r  sweeping {t.name}: {k}/{total}  ({t.name} = {point['value']:.4g})   ")
-            sys.stderr.flush()
+    def progress(k, total, point):
+        sys.stderr.write(f"\r  sweeping {t.name}: {k}/{total}  ({t.name} = {point['value']:.4g})   ")
+        sys.stderr.flush()
+    show = None if args.json or not sys.stderr.isatty() else progress
     result = training.sweep(checked, spec_path.parent, t.name, values, backend=args.backend,
                             data_path=Path(args.data) if args.data else None, tunables=base, tol=args.tol,
-                            solver=args.solver, progress=show)
+                            solver=args.solver, progress=show, param_tol=args.param_tol)
     if show:
         sys.stderr.write("\r" + " " * 60 + "\r")
     written = []
@@ -390,18 +440,13 @@ def cmd_sweep(args) -> int:
         best = result["best"]["value"]
         setting = dict(base, **{t.name: best})
         train, held, held_label = training.bind_training(checked, spec_path.parent, Path(args.data) if args.data else None)
-        fit = training.run_backend(checked, train, args.backend, setting, tol=args.tol, solver=args.solver)
-        form = training.form_for(checked, train.input_names)
-        tm = training.metrics(train.task, train.y, training.scores(form, fit.params, train.X, train.y), train.weights,
-                              checked)
-        hm = None if held is None else training.metrics(held.task, held.y, training.scores(
-            form, fit.params, held.X, held.y), held.weights, checked)
-        doc = training.model_document(checked, spec_path, train, fit, setting, tm, hm, held_label)
+        fit = training.run_backend(checked, train, args.backend, setting, tol=args.tol, solver=args.solver,
+                                   param_tol=args.param_tol)
+        doc = training.evaluated_document(checked, spec_path, train, held, held_label, fit, setting)
         written.append(str(save_model(Path(args.save_best), doc, fit.params)))
     if args.json:
         _emit_json(dict(result, command="sweep", ok=True, written=written))
         return EXIT_OK
-    key = "held" if result["points"][0]["held"] is not None else "train"
     lines = [f"sweep     {t.name} over {len(values)} values, {low:g} .. {high:g}"
              f" ({'linear' if args.linear or low <= 0 else 'log'} grid), {result['backend']} backend, warm starts",
              f"ranked    by {training.metric_label(result['metric'])} on {result['ranked_on']}", "",
@@ -495,6 +540,10 @@ def _parser() -> argparse.ArgumentParser:
     f.add_argument("--backend", choices=["numpy", "cvxpy"], default="numpy")
     f.add_argument("--solver", help="cvxpy backend: the solver to use (e.g. CLARABEL, ECOS, SCS, HIGHS, OSQP)")
     f.add_argument("--tol", type=float, default=1e-6, help="relative certificate to stop at (numpy backend)")
+    f.add_argument("--param-tol", type=_param_tol, default=1e-6, metavar="X",
+                   help="numpy backend: also stop only once the learned parameters are within X (Euclidean norm) "
+                        "of the exact optimum: a certified bound where the objective is strongly convex in all of "
+                        "them, else an uncertified estimate; 'off' stops on --tol alone (default 1e-6)")
     f.add_argument("--set", action="append", metavar="NAME=VALUE", help="give a tunable a value (repeatable)")
     f.add_argument("-o", "--output", help="model file to write (.json; the arrays go beside it as .npz)")
     f.add_argument("--local-ok", action="store_true",
@@ -519,6 +568,9 @@ def _parser() -> argparse.ArgumentParser:
     sw.add_argument("--backend", choices=["numpy", "cvxpy"], default="numpy")
     sw.add_argument("--solver", help="cvxpy backend: the solver to use")
     sw.add_argument("--tol", type=float, default=1e-6)
+    sw.add_argument("--param-tol", type=_param_tol, default=1e-6, metavar="X",
+                    help="as for fit: each fit stops once its parameters are within X of the optimum; 'off' "
+                         "stops on --tol alone (default 1e-6)")
     sw.add_argument("--set", action="append", metavar="NAME=VALUE", help="hold another tunable at a value")
     sw.add_argument("--plot", metavar="PNG", help="also draw the sweep to this PNG file")
     sw.add_argument("--save-best", metavar="MODEL", help="refit at the chosen value and save the model")

@@ -24,6 +24,17 @@ class Certificate:
     relative: float | None
     tolerance: float | None = None
     note: str = ""
+    # the distance of the reported parameters to the exact optimum: a proved bound on the Euclidean norm
+    # of the error of all learned parameters together (None where none is proved), the strong-convexity
+    # modulus it rests on, which bound and why (or why none), and the tolerance the fit stopped at
+    distance: float | None = None
+    curvature: float | None = None
+    distance_note: str = ""
+    param_tolerance: float | None = None
+    # a proved bound on ||w - w*|| for the weights alone: `distance` where that exists, else the bound a
+    # ridge weight on every weight gives when the intercept is free and the loss flat (the intercept then
+    # has none); None where no bound is proved
+    weights_distance: float | None = None
 
 
 @dataclass(frozen=True)

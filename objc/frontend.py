@@ -7,13 +7,22 @@ from pathlib import Path
 from objc.checker import CheckedObjective, check
 from objc.diagnostics import Diagnostic, SpecError
 from objc.resolve import resolve
-from objc.source_text import SourceText, Span
+from objc.source_text import SourceText, Span, decode_spec_bytes, first_unencodable, position_at
 from objc.spec_parser import parse
 
 
 def check_text(text: str, source_name: str = "<spec>") -> CheckedObjective:
     """Parse, resolve and check a spec. Raises SpecError for a spec that cannot be read or resolved;
     a readable spec that is not convex comes back with `errors` set and `accepted` False."""
+    bad = first_unencodable(text)
+    if bad is not None:
+        # such text cannot be hashed, saved or written into a module: refused where it is
+        span = position_at(text, bad)
+        raise SpecError((Diagnostic("E002", f"the spec holds a character that is not valid text "
+                                    f"(U+{ord(text[bad]):04X}, a lone surrogate) at line {span.line}, column "
+                                    f"{span.column}", span, hint="remove it, or save the spec as UTF-8 text",
+                                    source_name=source_name),),
+                        SourceText(source_name, text.encode("utf-8", errors="replace").decode("utf-8"))) from None
     source = SourceText(source_name, text)
     tree = parse(source)
     try:
@@ -30,11 +39,19 @@ def check_file(path: str | Path) -> CheckedObjective:
     """check_text on a file; a missing or unreadable file is a SpecError too."""
     p = Path(path)
     try:
-        text = p.read_text(encoding="utf-8")
+        data = p.read_bytes()
     except FileNotFoundError:
         raise SpecError((Diagnostic("E001", f"spec file not found: {p}", Span(0, 0, 0, 0),
                                     hint="check the path", source_name=str(p)),)) from None
-    except (OSError, UnicodeDecodeError) as err:
-        raise SpecError((Diagnostic("E002", f"cannot read spec file {p}: {err}", Span(0, 0, 0, 0),
-                                    source_name=str(p)),)) from None
+    except OSError as err:
+        raise SpecError((Diagnostic("E002", f"cannot read spec file {p}: {err.strerror or err}", Span(0, 0, 0, 0),
+                                    hint="check that the path is a readable file", source_name=str(p)),)) from None
+    text, fault = decode_spec_bytes(data)
+    if fault is not None:
+        span, byte = fault
+        raise SpecError((Diagnostic("E002", f"byte {byte} at line {span.line}, column {span.column} is not UTF-8 "
+                                    "text; a spec is read as UTF-8", span,
+                                    hint="save the spec as UTF-8 (an editor's 'save with encoding', or "
+                                         "iconv -f latin1 -t utf-8 for a Latin-1 file)", source_name=str(p)),),
+                        SourceText(str(p), text)) from None
     return check_text(text, str(p))

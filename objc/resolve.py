@@ -82,7 +82,7 @@ class _Resolver:
                     if not (s.low <= s.default <= s.high):
                         self.error("E205", f"tunable '{s.name}' has default {s.default:g} outside its range "
                                    f"{s.low:g} .. {s.high:g}", s.span, hint="move the default inside the range")
-                    self.tunables[s.name] = tt.Tunable(s.name, s.default, s.low, s.high, s.span)
+                    self.tunables[s.name] = tt.Tunable(s.name, s.default, s.low, s.high, s.span, s.range_span)
             elif isinstance(s, st.LearnStmt):
                 for item in s.items:
                     if claim(item.name, item.span, "learned parameter"):
@@ -210,7 +210,9 @@ class _Resolver:
             elif isinstance(e, st.Power):
                 walk(e.base)
                 if not isinstance(e.exponent, st.Number):
-                    self.error("E219", "an exponent must be a literal number", e.exponent.span)
+                    self.error("E219", "an exponent in a feature must be a literal number", e.exponent.span,
+                               hint="features are fixed transformations of the data; a tunable exponent belongs "
+                                    "in the goal or a loss")
             elif isinstance(e, (st.Aggregate, st.Select)):
                 self.error("E217", "a feature is a per-row transformation of columns; this is not", e.span)
         walk(expr)
@@ -239,9 +241,13 @@ class _Resolver:
                 value = exp.value
             elif isinstance(exp, st.Negate) and isinstance(exp.operand, st.Number):
                 value = -exp.operand.value
+            tuned = self._tunable_setting(exp, loss_env)
+            if tuned is not None:
+                return self._tuned_power(e, base, tuned) or bad
             if value is None:
-                self.error("E219", "an exponent must be a literal number", exp.span,
-                           hint="write e.g. x ^ 2; a tunable or expression as exponent is not allowed")
+                self.error("E219", "an exponent must be a literal number or a tunable", exp.span,
+                           hint="write e.g. x ^ 2, or declare `tune q = 2 within 1 .. 4` and write x ^ q; an "
+                                "expression as exponent is not allowed")
                 return bad
             if base.shape.kind == "matrix":
                 self.error("E220", "x is the input matrix; raise a column or a feature instead", base.span)
@@ -262,6 +268,11 @@ class _Resolver:
                 return bad  # the operand is already reported; its stand-in value says nothing of its shape
             if inner.shape.kind == "rows":
                 over = "rows"
+            elif inner.shape.kind == "vector" and e.kind == "perrow":
+                self.error("E250", "`perrow` divides by the number of rows, so it needs one value per row; this is "
+                           f"{inner.shape.describe()}", e.span,
+                           hint="average a vector's entries with `mean`, or add them with `sum`")
+                return bad
             elif inner.shape.kind == "vector":
                 over = "entries"
             else:
@@ -451,12 +462,22 @@ class _Resolver:
         if len(self.errors) > reported:
             return bad  # an argument is already reported; its stand-in says nothing of its shape
         literal_options = []
-        for a in e.args[n_expr:]:
+        tuned: list[tuple[str, tt.TunableRef]] = []
+        for k, a in enumerate(e.args[n_expr:]):
             v = a.value if isinstance(a, st.Number) else (
                 -a.operand.value if isinstance(a, st.Negate) and isinstance(a.operand, st.Number) else None)
+            ref = self._tunable_setting(a, loss_env)
+            if ref is not None and k < len(entry.options):
+                if not self._tunable_range_admitted(entry.name, entry.options[k], ref, a.span):
+                    return bad
+                tuned.append((entry.options[k].name, ref))
+                v = ref.default
+            elif ref is not None:
+                v = ref.default  # one setting too many: resolve_options says so below
             if v is None:
-                self.error("E238", f"the setting of {e.func} must be a literal number", a.span,
-                           hint=f"e.g. {e.func}(r, {entry.options[0].default:g})" if entry.options else "")
+                self.error("E238", f"the setting of {e.func} must be a literal number or a tunable", a.span,
+                           hint=(f"e.g. {e.func}(r, {entry.options[0].default:g}), or a tunable declared with "
+                                 "`tune`" if entry.options else ""))
                 return bad
             literal_options.append(v)
         try:
@@ -464,6 +485,8 @@ class _Resolver:
         except ValueError as err:
             self.error("E239", str(err), e.span)
             return bad
+        if entry.name == "power" and tuned:
+            return self._tuned_power(e, args[0], tuned[0][1]) or bad
         for a in args:
             if a.shape.kind == "matrix":
                 self.error("E228", "x is the input matrix; it can only appear in a dot product such as w . x",
@@ -476,7 +499,7 @@ class _Resolver:
                            e.span, hint=f"write {e.func}(w)" + (" (per-row losses go inside mean or sum)"
                                                                  if a.shape.kind == "rows" else ""))
                 return bad
-            return tt.Apply(entry.name, args, tuple(options.items()), e.span, SCALAR, a.depends)
+            return tt.Apply(entry.name, args, tuple(options.items()), e.span, SCALAR, a.depends, tuple(tuned))
         softplus_arg = _softplus_form(entry.name, args)
         if softplus_arg is not None:
             # log(1 + exp(u)) is softplus(u): the same function, in the form the composition rules can
@@ -489,7 +512,52 @@ class _Resolver:
                     self.error("E230", f"cannot combine {shape.describe()} with {a.shape.describe()}", e.span)
                     return bad
                 shape = a.shape
-        return tt.Apply(entry.name, args, tuple(options.items()), e.span, shape, _max_dep(*args))
+        return tt.Apply(entry.name, args, tuple(options.items()), e.span, shape, _max_dep(*args), tuple(tuned))
+
+    def _tunable_setting(self, e: st.Expr, loss_env) -> tt.TunableRef | None:
+        """The tunable a setting or exponent names, if it is a bare tunable name (not a loss's variable)."""
+        if not isinstance(e, st.Name) or e.id not in self.tunables or (loss_env is not None and e.id in loss_env):
+            return None
+        t = self.tunables[e.id]
+        return tt.TunableRef(t.name, t.default, t.low, t.high, e.span)
+
+    def _tunable_range_admitted(self, func: str, opt, ref: tt.TunableRef, use: Span) -> bool:
+        """A setting holds for every value a fit or a sweep may give its tunable, so the WHOLE declared
+        range must lie inside the setting's domain (the domain is an interval: both ends suffice)."""
+        if opt.admits(ref.low) and opt.admits(ref.high):
+            return True
+        t = self.tunables[ref.name]
+        bad_end = ref.low if not opt.admits(ref.low) else ref.high
+        lo, hi = max(ref.low, opt.low), min(ref.high, opt.high)
+        width = hi - lo if math.isfinite(hi - lo) and hi > lo else 1.0
+        if lo == opt.low and opt.low_open:
+            lo = opt.low + 0.05 * width
+        if hi == opt.high and opt.high_open:
+            hi = opt.high - 0.05 * width
+        fix = ""
+        if lo <= hi:
+            default = min(max(ref.default, lo), hi)
+            fix = f"e.g. tune {ref.name} = {default:g} within {lo:.3g} .. {hi:.3g}"
+        self.error("E239", f"tunable '{ref.name}' sets {func}'s {opt.name} ({opt.meaning}), which must lie in "
+                   f"{opt.describe_range()}; its declared range {ref.low:g} .. {ref.high:g} reaches {bad_end:g}",
+                   t.range_span or t.span,
+                   hint=f"declare a range inside {opt.describe_range()}" + (f": {fix}" if fix else ""),
+                   notes=(f"used as the setting of {func} at line {use.line}, column {use.column}",))
+        return False
+
+    def _tuned_power(self, e, base: tt.TExpr, ref: tt.TunableRef) -> tt.TExpr | None:
+        """base ^ q for a tunable q: its curvature over q's whole declared range is the checker's job."""
+        if base.shape.kind == "matrix":
+            self.error("E220", "x is the input matrix; raise a column or a feature instead", base.span)
+            return None
+        folded = base.value if isinstance(base, tt.Const) else (
+            -base.operand.value if isinstance(base, tt.Neg) and isinstance(base.operand, tt.Const) else None)
+        if folded is not None and folded < 0:
+            self.error("E249", f"a negative number to the tunable power '{ref.name}' is not a real number for "
+                       "fractional values of it", e.span, hint="raise a nonnegative number")
+            return None
+        return tt.Apply("power", (base,), (("p", float(ref.default)),), e.span, base.shape, base.depends,
+                        (("p", ref),))
 
     def _custom_loss(self, e: st.Call, loss_env, where: str) -> tt.TExpr | None:
         d = self.losses[e.func]

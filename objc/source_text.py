@@ -26,6 +26,36 @@ class Span:
 NO_SPAN = Span(0, 0, 0, 0)
 
 
+def position_at(text: str, index: int) -> Span:
+    """The one-character span at a character index of `text` (lines and columns from 1)."""
+    line = text.count("\n", 0, index) + 1
+    column = index - (text.rfind("\n", 0, index) + 1) + 1
+    return Span(line, column, line, column + 1)
+
+
+def decode_spec_bytes(data: bytes) -> tuple[str, tuple[Span, str] | None]:
+    """Spec bytes as text. Bytes that are not UTF-8 are replaced (so the text can still be shown) and
+    the first of them is returned with its span and its value written out, e.g. '0xff'; None when
+    the bytes are all UTF-8."""
+    try:
+        return data.decode("utf-8"), None
+    except UnicodeDecodeError as err:
+        # the bytes before the fault decode alike either way, so the replaced text locates it exactly
+        before = data[:err.start].decode("utf-8")
+        bad = " ".join(f"0x{b:02x}" for b in data[err.start:err.end])
+        return data.decode("utf-8", errors="replace"), (position_at(before + "\ufffd", len(before)), bad)
+
+
+def first_unencodable(text: str) -> int | None:
+    """The index of the first character UTF-8 cannot encode (a lone surrogate, e.g. from a JSON
+    escape), or None."""
+    try:
+        text.encode("utf-8")
+        return None
+    except UnicodeEncodeError as err:
+        return err.start
+
+
 @dataclass(frozen=True)
 class SourceText:
     """A spec's text and the name it is reported under (usually its path)."""

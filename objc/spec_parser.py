@@ -22,7 +22,7 @@ from objc.source_text import SourceText, Span
 STATEMENT_KEYWORDS = ("table", "target", "inputs", "feature", "rowweight", "classweight", "standardize",
                       "holdout", "validate", "missing", "group", "tune", "learn", "score", "loss", "goal", "keep")
 RESERVED_WORDS = STATEMENT_KEYWORDS + ("from", "like", "all", "except", "seed", "on", "within", "over",
-                                       "mean", "sum")
+                                       "mean", "sum", "perrow")
 
 # Friendly words for lark's terminal names, used in "expected ..." messages.
 _TERMINAL_WORDS = {
@@ -94,6 +94,9 @@ class _ToTree(Transformer):
 
     def sum_of(self, meta, c):
         return st.Aggregate("sum", c[0], _span(meta))
+
+    def perrow_of(self, meta, c):
+        return st.Aggregate("perrow", c[0], _span(meta))
 
     def select(self, meta, c):
         return st.Select(c[0], tuple(k[0] for k in c[1:]), _span(meta))
@@ -173,8 +176,12 @@ class _ToTree(Transformer):
     def group_clause(self, meta, c):
         return st.GroupClause(str(c[0]), tuple(x[0] for x in c[1:]), _span(meta))
 
+    def tune_range(self, meta, c):
+        return (c[0], c[1], _span(meta))
+
     def tune_stmt(self, meta, c):
-        return st.TuneStmt(str(c[0]), c[1], c[2], c[3], _span(meta))
+        low, high, range_span = c[2]
+        return st.TuneStmt(str(c[0]), c[1], low, high, _span(meta), range_span)
 
     def learn_scalar(self, meta, c):
         return st.LearnItem(str(c[0]), False, _span(meta))
@@ -209,7 +216,10 @@ def _expected_words(expected) -> str:
         elif t.isupper() and t.lower() in RESERVED_WORDS:
             words.append(f"'{t.lower()}'")
         elif t.startswith("__ANON"):
-            continue
+            # a literal of more than one character (`..`, `->`): lark names it anonymously
+            pattern = next((term.pattern for term in _parser().terminals if term.name == t), None)
+            if pattern is not None and pattern.type == "str":
+                words.append(pattern.value)
         else:
             words.append(t.lower())
     # operators and punctuation first: after a broken expression they are the likely fix

@@ -53,7 +53,7 @@ class Power:
 
 @dataclass(frozen=True)
 class Aggregate:
-    kind: Literal["mean", "sum"]
+    kind: Literal["mean", "sum", "perrow"]
     operand: "Expr"
     span: Span
 
@@ -169,6 +169,7 @@ class TuneStmt:
     low: float
     high: float
     span: Span
+    range_span: Span | None = None  # the `low .. high` part, where a range that is too wide is reported
 
 
 @dataclass(frozen=True)

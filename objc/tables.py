@@ -69,6 +69,7 @@ import pandas as pd
 
 from objc import syntax_tree as st
 from objc.catalog import CATALOG
+from objc.cells import MISSING_CELLS
 from objc.diagnostics import Diagnostic, SpecError
 from objc.source_text import NO_SPAN, Span
 from objc.typed_tree import DerivedFeature, LabelMap, TableBinding
@@ -267,7 +268,8 @@ def _read_csv(path: Path, sep: str, where: _Where, span: Span) -> dict[str, np.n
     header = pd.read_csv(path, sep=sep, header=None, nrows=1, dtype=str, keep_default_na=False)
     raw_names = [str(v) for v in header.iloc[0].tolist()] if len(header) else []
     _check_unique(raw_names, where, span)
-    return _frame_columns(pd.read_csv(path, sep=sep), where, span)
+    return _frame_columns(pd.read_csv(path, sep=sep, keep_default_na=False, na_values=list(MISSING_CELLS)),
+                          where, span)
 
 
 def _check_unique(names: Sequence[str], where: _Where, span: Span) -> None:

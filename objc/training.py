@@ -100,17 +100,35 @@ def _bind_training(checked: CheckedObjective, spec_dir: Path, data_path: Path | 
     return data, None, ""
 
 
+def numpy_refusal(checked: CheckedObjective, err) -> SpecError:
+    """A spec the NumPy backend cannot train (a `numpy_module.NotSupported`), as a located error."""
+    return SpecError((Diagnostic("E403", f"the NumPy backend cannot train this spec: {err.what}",
+                                 err.span or NO_SPAN, hint="use `--backend cvxpy` (Python: "
+                                 "backend=\"cvxpy\")", source_name=checked.source.name),),
+                     checked.source)
+
+
 def run_backend(checked: CheckedObjective, data: tables.BoundData, backend: Backend,
                 tunables: dict[str, float] | None = None, *, tol: float = 1e-6, solver: str | None = None,
                 allow_nonconvex: bool = False, progress: Callable | None = None,
-                theta0: np.ndarray | None = None) -> FitResult:
+                theta0: np.ndarray | None = None, param_tol: float | None = 1e-6) -> FitResult:
+    """Train on bound data. The NumPy backend stops at a relative certificate of `tol` and, unless
+    `param_tol` is None, once the parameters are within `param_tol` of the optimum (a certified bound
+    where the objective is strongly convex in all of them); the cvxpy backend reports its solver's status."""
     start = time.perf_counter()
+    if param_tol is not None and not (np.isfinite(param_tol) and param_tol > 0):
+        raise ValueError(f"param_tol must be a positive number, or None to switch the parameter stop off; "
+                         f"got {param_tol!r}")
     if backend not in ("numpy", "cvxpy"):
         raise ValueError(f"backend must be 'numpy' or 'cvxpy', not {backend!r}")
     if backend == "cvxpy":
         from objc.backends import cvxpy_problem
         result = cvxpy_problem.fit(checked, data.X, data.y, data.weights, data.input_names, tunables,
                                    solver=solver)
+        if not result.certificate.distance_note:
+            result = replace(result, certificate=replace(
+                result.certificate, distance_note="not formed: the cvxpy backend reports its solver's status, "
+                                                  "no distance to the optimum"))
     else:
         from objc.backends import numpy_module
         history: list[dict] = []
@@ -120,8 +138,12 @@ def run_backend(checked: CheckedObjective, data: tables.BoundData, backend: Back
                             "gap": None if gap is None else float(gap)})
             if progress is not None:
                 progress(passes, objective, gap)
-        result = numpy_module.fit(checked, data.X, data.y, data.weights, data.input_names, tunables, tol=tol,
-                                  allow_nonconvex=allow_nonconvex, progress=record, theta0=theta0)
+        try:
+            result = numpy_module.fit(checked, data.X, data.y, data.weights, data.input_names, tunables, tol=tol,
+                                      allow_nonconvex=allow_nonconvex, progress=record, theta0=theta0,
+                                      param_tol=param_tol)
+        except numpy_module.NotSupported as err:
+            raise numpy_refusal(checked, err) from None
         step = max(1, len(history) // 200)  # a few hundred points draw the curve; keep the model file small
         result = replace(result, extra=dict(result.extra, history=history[::step] + history[-1:]))
     if not result.seconds:
@@ -140,10 +162,30 @@ def scores(form: ScoreForm, params: dict, X: np.ndarray, y: np.ndarray | None = 
     return A @ theta + off
 
 
+def _trained_residual_losses(checked: CheckedObjective, tunables: dict[str, float] | None
+                             ) -> dict[str, dict[str, float]]:
+    """The residual losses the goal trains, with their settings at these tunable values (a setting a
+    tunable gives, such as a pinball quantile, is the tunable's value, not its default)."""
+    from objc import typed_tree as tt
+    used: dict[str, dict[str, float]] = {}
+    for t in checked.terms:
+        if t.known_loss and CATALOG[t.known_loss[0]].role == "residual":
+            opts = dict(t.known_loss[1])
+            if isinstance(t.body, tt.Apply) and t.body.entry == t.known_loss[0]:
+                opts = t.body.option_values(tunables)
+            used.setdefault(t.known_loss[0], opts)
+    return used
+
+
+def _loss_key(name: str, opts: dict[str, float]) -> str:
+    return name + ("(" + ", ".join(f"{k}={v:g}" for k, v in opts.items()) + ")" if opts else "")
+
+
 def metrics(task: tables.Task, y: np.ndarray, s: np.ndarray, weights: np.ndarray,
-            checked: CheckedObjective) -> dict:
+            checked: CheckedObjective, tunables: dict[str, float] | None = None) -> dict:
     """Evaluation figures: for classification the 0-1 error, confusion counts and the mean of every
-    margin loss in the catalog; for regression MAE, RMSE, coverage and every residual loss."""
+    margin loss in the catalog; for regression MAE, RMSE, coverage and every residual loss (the
+    trained ones at the settings `tunables` give them)."""
     out: dict = {"rows": int(len(y))}
     c = np.asarray(weights, dtype=float)
     wsum = float(np.sum(c))
@@ -171,18 +213,33 @@ def metrics(task: tables.Task, y: np.ndarray, s: np.ndarray, weights: np.ndarray
         out["mae"] = float(np.mean(np.abs(r)))
         out["rmse"] = float(np.sqrt(np.mean(r * r)))
         out["coverage"] = float(np.mean(y <= s))  # share of rows at or below the prediction
-        used = {}
-        for t in checked.terms:
-            if t.known_loss and CATALOG[t.known_loss[0]].role == "residual":
-                used[t.known_loss[0]] = dict(t.known_loss[1])
+        used = _trained_residual_losses(checked, tunables)
         losses = {}
         for name, entry in CATALOG.items():
             if entry.role == "residual":
                 opts = used.get(name, {})
-                key = name + ("(" + ", ".join(f"{k}={v:g}" for k, v in opts.items()) + ")" if opts else "")
-                losses[key] = wmean(entry.value(r, **opts))
+                losses[_loss_key(name, opts)] = wmean(entry.value(r, **opts))
         out["mean_losses"] = losses
     return out
+
+
+def fit_metrics(checked: CheckedObjective, params: dict, train: tables.BoundData, held: tables.BoundData | None,
+                tunables: dict[str, float] | None) -> tuple[dict, dict | None]:
+    """The evaluation figures of fitted parameters on the training rows and on the held-out rows."""
+    form = form_for(checked, train.input_names)
+    train_m = metrics(train.task, train.y, scores(form, params, train.X, train.y), train.weights, checked, tunables)
+    held_m = None if held is None else metrics(held.task, held.y, scores(form, params, held.X, held.y),
+                                               held.weights, checked, tunables)
+    return train_m, held_m
+
+
+def evaluated_document(checked: CheckedObjective, spec_path: Path, train: tables.BoundData,
+                       held: tables.BoundData | None, held_label: str, result: FitResult,
+                       tunables: dict[str, float]) -> dict:
+    """The model document of a fit, with its figures on the training and held-out rows: the one path
+    from a fit to what `objc fit`, `fit_spec` and `sweep --save-best` save."""
+    train_m, held_m = fit_metrics(checked, result.params, train, held, tunables)
+    return model_document(checked, spec_path, train, result, tunables, train_m, held_m, held_label)
 
 
 def model_document(checked: CheckedObjective, spec_path: Path, data: tables.BoundData, result: FitResult,
@@ -211,7 +268,11 @@ def model_document(checked: CheckedObjective, spec_path: Path, data: tables.Boun
                       zip(checked.terms, result.term_values)],
             "certificate": {"kind": result.certificate.kind, "absolute": result.certificate.absolute,
                             "relative": result.certificate.relative, "tolerance": result.certificate.tolerance,
-                            "note": result.certificate.note},
+                            "note": result.certificate.note, "distance": result.certificate.distance,
+                            "curvature": result.certificate.curvature,
+                            "distance_note": result.certificate.distance_note,
+                            "param_tolerance": result.certificate.param_tolerance,
+                            "weights_distance": result.certificate.weights_distance},
             "iterations": result.iterations, "passes": result.passes, "seconds": result.seconds,
             "history": result.extra.get("history", []),
         },
@@ -342,9 +403,10 @@ class TrainedModel:
 
 def fit_spec(spec: str | Path, *, data: str | Path | pd.DataFrame | None = None, backend: Backend = "numpy",
              tunables: dict[str, float] | None = None, tol: float = 1e-6, solver: str | None = None,
-             allow_nonconvex: bool = False) -> TrainedModel:
+             allow_nonconvex: bool = False, param_tol: float | None = 1e-6) -> TrainedModel:
     """Check a spec file, bind its table (or `data`), train, and evaluate on the training rows and
-    the held-out part. Raises SpecError for a wrong spec or table."""
+    the held-out part. Raises SpecError for a wrong spec or table. `param_tol` (NumPy backend): stop
+    only once the parameters are within it of the optimum; None switches that stop off."""
     from objc.frontend import check_file
     spec_path = Path(spec)
     checked = check_file(spec_path)
@@ -354,12 +416,9 @@ def fit_spec(spec: str | Path, *, data: str | Path | pd.DataFrame | None = None,
         train, held, held_label = bind_training(checked, spec_path.parent, Path(data) if data else None)
     else:  # a DataFrame in place of the spec's table file
         train, held, held_label = bind_training(checked, spec_path.parent, frame=data)
-    result = run_backend(checked, train, backend, values, tol=tol, solver=solver, allow_nonconvex=allow_nonconvex)
-    form = form_for(checked, train.input_names)
-    train_m = metrics(train.task, train.y, scores(form, result.params, train.X, train.y), train.weights, checked)
-    held_m = None if held is None else metrics(held.task, held.y, scores(form, result.params, held.X, held.y),
-                                               held.weights, checked)
-    doc = model_document(checked, spec_path, train, result, values, train_m, held_m, held_label)
+    result = run_backend(checked, train, backend, values, tol=tol, solver=solver, allow_nonconvex=allow_nonconvex,
+                         param_tol=param_tol)
+    doc = evaluated_document(checked, spec_path, train, held, held_label, result, values)
     return TrainedModel(doc, dict(result.params), checked)
 
 
@@ -382,18 +441,17 @@ def sweep_grid(low: float, high: float, steps: int, linear: bool = False) -> lis
     return [float(v) for v in np.linspace(low, high, steps)]
 
 
-def validation_metric(checked: CheckedObjective, task: str) -> str:
+def validation_metric(checked: CheckedObjective, task: str, tunables: dict[str, float] | None = None) -> str:
     """What a sweep ranks by: the 0-1 error for classification; for regression the mean of the
-    trained residual loss where there is one (pinball at its quantile, Huber at its threshold), else RMSE."""
+    trained residual loss where there is one (pinball at its quantile, Huber at its threshold, at
+    the values `tunables` give them), else RMSE."""
     if task == "margin":
         tb = checked.spec.table
         weighted = tb is not None and (tb.row_weight is not None or bool(tb.class_weights))
         # with row or class weights the goal counts rows unequally, and so must the ranking
         return "zero_one_error_weighted" if weighted else "zero_one_error"
-    for t in checked.terms:
-        if t.known_loss and CATALOG[t.known_loss[0]].role == "residual":
-            name, opts = t.known_loss
-            return "mean_losses:" + name + ("(" + ", ".join(f"{k}={v:g}" for k, v in opts) + ")" if opts else "")
+    for name, opts in _trained_residual_losses(checked, tunables).items():
+        return "mean_losses:" + _loss_key(name, opts)
     return "rmse"
 
 
@@ -411,7 +469,8 @@ def _metric_value(m: dict, metric: str) -> float:
 
 def sweep(checked: CheckedObjective, spec_dir: Path, tunable: str, values: list[float], *,
           backend: Backend = "numpy", data_path: Path | None = None, tunables: dict[str, float] | None = None,
-          tol: float = 1e-6, solver: str | None = None, progress: Callable | None = None) -> dict:
+          tol: float = 1e-6, solver: str | None = None, progress: Callable | None = None,
+          param_tol: float | None = 1e-6) -> dict:
     """Fit once per value of one tunable, warm-starting each fit from the previous answer, and rank
     the values by the held-out figure (or the training figure when the spec holds nothing out)."""
     known = {t.name: t for t in checked.spec.tunables}
@@ -419,7 +478,9 @@ def sweep(checked: CheckedObjective, spec_dir: Path, tunable: str, values: list[
     base.update(tunables or {})
     train, held, held_label = bind_training(checked, spec_dir, data_path)
     form = form_for(checked, train.input_names)
-    metric = validation_metric(checked, train.task)
+    # one figure ranks every point: a trained loss's settings at the sweep's base values (the
+    # defaults and --set), even when the sweep varies that very setting, so the points compare
+    metric = validation_metric(checked, train.task, base)
     points = []
     theta = None
     built = None
@@ -432,14 +493,13 @@ def sweep(checked: CheckedObjective, spec_dir: Path, tunable: str, values: list[
             from objc.backends import cvxpy_problem
             result = cvxpy_problem.solve_build(built, setting, solver=solver, warm_start=k > 0)
         else:
-            result = run_backend(checked, train, backend, setting, tol=tol, theta0=theta)
+            result = run_backend(checked, train, backend, setting, tol=tol, theta0=theta, param_tol=param_tol)
             theta = theta_from_params(form, result.params)
-        tm = metrics(train.task, train.y, scores(form, result.params, train.X, train.y), train.weights, checked)
-        hm = None if held is None else metrics(held.task, held.y, scores(form, result.params, held.X, held.y),
-                                               held.weights, checked)
+        tm, hm = fit_metrics(checked, result.params, train, held, base)
         points.append({"value": float(v), "objective": result.objective, "status": result.status,
                        "train": _metric_value(tm, metric), "held": None if hm is None else _metric_value(hm, metric),
-                       "certificate": {"kind": result.certificate.kind, "relative": result.certificate.relative},
+                       "certificate": {"kind": result.certificate.kind, "relative": result.certificate.relative,
+                                       "distance": result.certificate.distance},
                        "passes": result.passes, "seconds": result.seconds, "params": result.params})
         if progress is not None:
             progress(k + 1, len(values), points[-1])

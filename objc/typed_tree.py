@@ -9,7 +9,7 @@ so a constant to the optimizer), "params" (learned quantities).
 from __future__ import annotations
 
 from dataclasses import dataclass, replace
-from typing import Literal, Union
+from typing import Literal, Mapping, Union
 
 from objc import syntax_tree as st
 from objc.source_text import Span
@@ -145,7 +145,10 @@ class ScoreRef:
 
 @dataclass(frozen=True)
 class Apply:
-    """A catalog entry applied to arguments, with its options (huber's d, pinball's t, power's p)."""
+    """A catalog entry applied to arguments, with its options (huber's d, pinball's t, power's p).
+
+    `options` holds every option's value with tunables at their defaults; `tuned` names the options
+    a tunable sets, whose value at a fit is the tunable's (see `option_values`)."""
 
     entry: str
     args: tuple["TExpr", ...]
@@ -153,10 +156,18 @@ class Apply:
     span: Span
     shape: Shape = SCALAR
     depends: Depends = "const"
+    tuned: tuple[tuple[str, "TunableRef"], ...] = ()
 
     @property
     def option_dict(self) -> dict[str, float]:
         return dict(self.options)
+
+    def option_values(self, tunables: Mapping[str, float] | None = None) -> dict[str, float]:
+        """The options at these tunable values (a tunable not given stands at its default)."""
+        out = dict(self.options)
+        for key, ref in self.tuned:
+            out[key] = float((tunables or {}).get(ref.name, ref.default))
+        return out
 
 
 @dataclass(frozen=True)
@@ -221,9 +232,11 @@ class Dot:
 
 @dataclass(frozen=True)
 class Aggregate:
-    """`mean` or `sum` over rows (weighted by row x class weights) or over a vector's entries."""
+    """`mean`, `sum` or `perrow` over rows (weighted by row x class weights), or `mean` or `sum`
+    over a vector's entries. Over rows with weights c_i: mean = sum c_i E_i / sum c_i,
+    sum = sum c_i E_i, perrow = sum c_i E_i / n with n the number of rows."""
 
-    kind: Literal["mean", "sum"]
+    kind: Literal["mean", "sum", "perrow"]
     operand: "TExpr"
     over: Literal["rows", "entries"]
     span: Span
@@ -242,7 +255,7 @@ def children(e: TExpr) -> tuple[TExpr, ...]:
     if isinstance(e, (Neg, Aggregate)):
         return (e.operand,)
     if isinstance(e, Apply):
-        return e.args
+        return e.args + tuple(ref for _, ref in e.tuned)
     if isinstance(e, CustomLoss):
         return (e.arg, e.body)
     if isinstance(e, ScoreRef):
@@ -257,7 +270,17 @@ def map_children(e: TExpr, f) -> TExpr:
     if isinstance(e, (Neg, Aggregate)):
         return replace(e, operand=f(e.operand))
     if isinstance(e, Apply):
-        return replace(e, args=tuple(f(a) for a in e.args))
+        # a setting is a number or a tunable: a walk that maps a tunable to a number fixes the setting
+        options, tuned = dict(e.options), []
+        for key, ref in e.tuned:
+            mapped = f(ref)
+            if isinstance(mapped, TunableRef):
+                tuned.append((key, mapped))
+            elif isinstance(mapped, Const):
+                options[key] = float(mapped.value)
+            else:
+                raise TypeError(f"a setting of {e.entry} can only become a tunable or a number")
+        return replace(e, args=tuple(f(a) for a in e.args), options=tuple(options.items()), tuned=tuple(tuned))
     if isinstance(e, CustomLoss):
         return replace(e, arg=f(e.arg), body=f(e.body))
     if isinstance(e, ScoreRef):
@@ -274,6 +297,7 @@ class Tunable:
     low: float
     high: float
     span: Span
+    range_span: Span | None = None  # the `low .. high` part of the `tune` statement
 
 
 @dataclass(frozen=True)

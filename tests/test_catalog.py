@@ -35,6 +35,8 @@ EXTRA_OPTIONS: dict[str, list[dict[str, float]]] = {
     "smooth_hinge": [{"c": 0.5}, {"c": 2.0}],
     "epsilon_insensitive": [{"e": 0.0}, {"e": 0.5}],
     "power": [{"p": 3.0}, {"p": 0.5}, {"p": -1.0}, {"p": 1.5}, {"p": 4.0}],
+    "below": [{"a": 0.5}, {"a": -1.0}],
+    "l0": [{"z": 0.5}, {"z": 0.25}],
 }
 
 
@@ -719,3 +721,105 @@ def test_fused_value_and_derivative_equal_the_separate_kernels(entry):
         v, d = entry.value_and_derivative(m)
     np.testing.assert_allclose(v, entry.value(m), rtol=1e-14, atol=1e-300)
     np.testing.assert_allclose(d, entry.derivative(m), rtol=1e-13, atol=1e-300)
+
+
+# ---------------------------------------------------------------- 10. cosh, the step and the l0 count
+
+def test_cosh_textbook_values() -> None:
+    # cosh x = (e^x + e^-x) / 2 (Abramowitz & Stegun 1964, formula 4.5.2); its values are compared with
+    # the C library's cosh (math.cosh), an implementation outside objc
+    xs = np.linspace(-30.0, 30.0, 601)
+    np.testing.assert_allclose(_v("cosh", xs), [math.cosh(x) for x in xs], rtol=1e-14)
+    assert _v("cosh", 0.0) == 1.0
+    # cosh 1 = 1.5430806348152437... (A&S table 4.16 gives 1.54308 06348; recalled from memory)
+    assert abs(float(_v("cosh", 1.0)) - 1.5430806348) < 1e-10
+    # d/dx cosh = sinh (A&S 4.5.80); compared with math.sinh
+    np.testing.assert_allclose(catalog.CATALOG["cosh"].derivative(xs), [math.sinh(x) for x in xs], rtol=1e-14)
+
+
+def test_cosh_is_strongly_convex_with_modulus_one() -> None:
+    # (cosh)'' = cosh >= 1 (A&S 4.5.80 twice): second differences of the kernel stay >= 1 everywhere
+    e = catalog.CATALOG["cosh"]
+    xs, h = np.linspace(-8.0, 8.0, 1601), 1e-4
+    second = (e.value(xs + h) - 2.0 * e.value(xs) + e.value(xs - h)) / (h * h)
+    assert np.all(second >= 1.0 - 1e-5) and abs(second[800] - 1.0) < 1e-5
+    # and cvxpy's DCP analysis proves the catalog's construction convex (Diamond & Boyd 2016)
+    x = cp.Variable(3)
+    assert e.cvxpy(cp, x).is_convex() and e.cvxpy(cp, x).is_dcp()
+
+
+def test_the_step_reports_a_share_of_rows() -> None:
+    # below(u, a) is the indicator of u < a (the Heaviside step H(a - u), common practice): the mean of
+    # below(m, 0) over margins is the share of rows with a negative margin, counted here directly
+    rng = np.random.default_rng(11)
+    m = rng.normal(size=1000)
+    m[:7] = 0.0  # a margin of exactly 0 is not below 0
+    assert float(np.mean(_v("below", m, a=0.0))) == np.count_nonzero(m < 0) / m.size
+    assert _v("below", 0.0, a=0.0) == 0.0 and _v("below", -1e-300, a=0.0) == 1.0
+    assert not catalog.CATALOG["below"].trainable and catalog.CATALOG["below"].refusal
+
+
+def test_l0_counts_nonzero_weights() -> None:
+    # the "l0 norm" ||w||_0 = #{j : w_j != 0} (common practice; e.g. Hastie, Tibshirani & Wainwright,
+    # Statistical Learning with Sparsity, 2015, section 2.1), with entries at most z in size counted as 0
+    w = np.array([0.0, 1e-9, -2.0, 0.3, 0.0])
+    assert float(catalog.CATALOG["l0"].value(w)) == float(np.count_nonzero(w)) == 3.0
+    assert float(catalog.CATALOG["l0"].value(w, z=1e-6)) == 2.0
+    assert float(catalog.CATALOG["l0"].value(w, z=0.5)) == 1.0
+    assert not catalog.CATALOG["l0"].trainable and catalog.CATALOG["l0"].refusal
+
+
+# ---------------------------------------------------------------- curvature floors
+
+def _second_difference(entry: Entry, opts: dict, x: float, h: float) -> float:
+    return (_f(entry, opts, x + h) - 2.0 * _f(entry, opts, x) + _f(entry, opts, x - h)) / (h * h)
+
+
+@pytest.mark.parametrize("entry,opts", _ids(lambda e, o: e.curv_floor is not None))
+def test_curvature_floor_lies_below_every_second_difference_on_its_interval(entry: Entry, opts: dict) -> None:
+    """The floor of l'' over [lo, hi] is a fact the NumPy backend's certified distance rests on: every
+    central second difference sampled inside the interval (a convex function's second difference is
+    an average of l'' over [x - h, x + h]) must be at least the floor."""
+    a, b = _interval(entry, opts)
+    rng = np.random.default_rng(11)
+    h = 1e-4
+    for _ in range(300):
+        lo, hi = np.sort(rng.uniform(a, b, 2))
+        if rng.random() < 0.3:  # narrow intervals too, where a floor is largest
+            hi = min(b, lo + rng.uniform(0.0, 0.2))
+        floor = float(entry.curv_floor(np.asarray(lo), np.asarray(hi), **opts))
+        assert floor >= 0.0
+        if hi - lo <= 2 * h:
+            continue
+        for x in rng.uniform(lo + h, hi - h, 8):
+            sd = _second_difference(entry, opts, float(x), h)
+            assert sd >= floor - 1e-5 * (1 + abs(sd)), f"{entry.name}{opts}: l'' ~ {sd} at {x} < floor {floor} on [{lo}, {hi}]"
+
+
+@pytest.mark.parametrize("entry,opts", _ids(lambda e, o: e.curv_floor is not None))
+def test_curvature_floor_of_a_point_is_the_second_derivative_there(entry: Entry, opts: dict) -> None:
+    """Not a floor that is merely safe: on a one-point interval, where l'' exists, it equals l''(x) by finite
+    differences (the second differences just left and just right of x agreeing tells a point where l''
+    exists from a kink or a jump of l'')."""
+    a, b = _interval(entry, opts)
+    checked = 0
+    h = 5e-4
+    for x in np.linspace(a + 0.01, b - 0.01, 97):
+        fine = _second_difference(entry, opts, x, h)
+        left, right = _second_difference(entry, opts, x - h, h), _second_difference(entry, opts, x + h, h)
+        if abs(left - right) > 1e-2 * (1 + abs(fine)) or abs(fine - right) > 1e-2 * (1 + abs(fine)):
+            continue  # within two steps of a kink or of a jump of l''
+        floor = float(entry.curv_floor(np.asarray(x), np.asarray(x), **opts))
+        assert floor == pytest.approx(fine, rel=1e-4, abs=1e-4), f"{entry.name}{opts} at {x}"
+        checked += 1
+    assert checked >= 60
+
+
+def test_curvature_floors_textbook_values() -> None:
+    # the logistic sigmoid's derivative is sigma (1 - sigma) (Bishop 2006, Pattern Recognition and
+    # Machine Learning, eq. 4.88), so logistic'' (0) = 1/4; r^2/2 has second derivative 1; e^-m at m = 0 is 1
+    assert float(catalog.CATALOG["logistic"].curv_floor(np.asarray(0.0), np.asarray(0.0))) == pytest.approx(0.25)
+    assert float(catalog.CATALOG["squared"].curv_floor(np.asarray(-5.0), np.asarray(5.0))) == 1.0
+    assert float(catalog.CATALOG["exponential"].curv_floor(np.asarray(-1.0), np.asarray(0.0))) == pytest.approx(1.0)
+    # past the corner of a hinge-like loss there is no curvature left
+    assert float(catalog.CATALOG["squared_hinge"].curv_floor(np.asarray(0.0), np.asarray(1.5))) == 0.0

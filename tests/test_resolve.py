@@ -72,10 +72,27 @@ CASES = [
      "E228", GOAL_LINE, 36, "x", ["input matrix", "dot product"]),
     ("x added in the score", HEADER.replace("w . x + b", "x + b") + "goal l2sq(w)\n",
      "E228", 5, 11, "x", ["dot product"]),
-    ("exponent not a literal", HEADER + "tune C = 1 within 0 .. 2\ngoal l2sq(w) ^ C\n",
-     "E219", GOAL_LINE + 1, 16, "C", ["exponent must be a literal number"]),
-    ("huber option not a literal", HEADER + "tune C = 1 within 0 .. 2\ngoal mean huber(y - s, C)\n",
-     "E238", GOAL_LINE + 1, 24, "C", ["setting of huber must be a literal number"]),
+    ("exponent an expression", HEADER + "tune C = 1 within 0 .. 2\ngoal l2sq(w) ^ (C + 1)\n",
+     "E219", GOAL_LINE + 1, 17, "C + 1", ["exponent must be a literal number or a tunable"]),
+    ("tunable exponent in a feature",
+     HEADER.replace("  inputs a, b, c\n", "  inputs a, b, c\n  feature a2 = a ^ C\n")
+     + "tune C = 1 within 0 .. 2\ngoal l2sq(w)\n", "E219", 4, 20, "C", ["exponent in a feature must be a literal"]),
+    ("huber option an expression", HEADER + "tune C = 1 within 0 .. 2\ngoal mean huber(y - s, 2 * C)\n",
+     "E238", GOAL_LINE + 1, 24, "2 * C", ["setting of huber must be a literal number or a tunable"]),
+    # a setting holds for every value a sweep may give its tunable: the whole range is checked, and the
+    # error sits on the range (the domains are the catalog's: huber's d in (0, inf], Huber 1964;
+    # the quantile t in (0, 1), Koenker & Bassett 1978; epsilon >= 0, Vapnik 1995)
+    ("tunable huber threshold reaching 0", HEADER + "tune C = 1 within 0 .. 2\ngoal mean huber(y - s, C)\n",
+     "E239", GOAL_LINE, 19, "0 .. 2", ["huber's d", "(0, inf]", "reaches 0", "line 7, column 24", "within"]),
+    ("tunable quantile range reaching 1", HEADER + "tune t = 0.5 within 0.1 .. 1\ngoal mean pinball(y - s, t)\n",
+     "E239", GOAL_LINE, 21, "0.1 .. 1", ["pinball's t", "(0, 1)", "reaches 1", "tune t = 0.5 within 0.1 .. 0.955"]),
+    ("tunable epsilon range below 0",
+     HEADER + "tune e = 0.1 within -1 .. 1\ngoal mean epsilon_insensitive(y - s, e)\n",
+     "E239", GOAL_LINE, 21, "-1 .. 1", ["epsilon_insensitive's e", "[0, inf]", "reaches -1", "within 0 .. 1"]),
+    ("perrow of a vector", HEADER + "goal mean hinge(y * s) + perrow abs(w)\n",
+     "E250", GOAL_LINE, 26, "perrow abs(w)", ["`perrow` divides by the number of rows", "with `mean`", "`sum`"]),
+    ("negative number to a tunable power", HEADER + "tune q = 2 within 1 .. 3\ngoal (-2) ^ q * l2sq(w)\n",
+     "E249", GOAL_LINE + 1, 6, "(-2) ^ q", ["negative number to the tunable power 'q'"]),
     ("huber option out of range", HEADER + "goal mean huber(y - s, -1)\n",
      "E239", GOAL_LINE, 11, "huber(y - s, -1)", ["huber's d must lie in (0, inf]", "-1"]),
     ("pinball t = 1.5", HEADER + "goal mean pinball(y - s, 1.5)\n",
@@ -133,3 +150,64 @@ def test_the_unbroken_spec_resolves() -> None:
     # the same header with a valid goal resolves: each case above fails for its one change only
     result = check_text(HEADER + "goal mean hinge(y * s) + 0.5 * l2sq(w)\n", "ok.objc")
     assert result.accepted
+
+
+# ---------------------------------------------------------------- tunable exponents and settings
+
+def _goal_node(text: str):
+    return check_text(HEADER + text, "ok.objc").spec.goal
+
+
+def test_a_tunable_exponent_resolves_to_a_power_read_from_the_tunable() -> None:
+    from objc import typed_tree as tt
+    goal = _goal_node("tune q = 2 within 1.5 .. 4\ngoal mean pos(1 - y * s) ^ q\n")
+    assert isinstance(goal, tt.Aggregate)
+    power = goal.operand
+    assert isinstance(power, tt.Apply) and power.entry == "power"
+    (key, ref), = power.tuned
+    assert key == "p" and (ref.name, ref.low, ref.high) == ("q", 1.5, 4.0)
+    assert power.option_values({"q": 3.0}) == {"p": 3.0} and power.option_values() == {"p": 2.0}
+    # the tunable is a child of the node, so every walk that looks for tunables finds it
+    assert ref in tt.children(power)
+
+
+def test_tunable_settings_resolve_for_every_entry_with_settings() -> None:
+    from objc import typed_tree as tt
+    from objc.catalog import ENTRIES
+    for entry in ENTRIES:
+        for k, opt in enumerate(entry.options):
+            if entry.name == "power":
+                continue  # its exponent is the `^` operator's, above
+            low, high = (opt.low if not opt.low_open else opt.low + 0.1, 0.5) if opt.low == 0 else (
+                opt.default - 0.1, opt.default + 0.1)
+            low, high = (0.2, 0.8) if entry.name == "pinball" else (low, high)
+            args = "w" if entry.kind == "norm" else ("y - s" if entry.role != "margin" else "y * s")
+            settings = ", ".join(["k"] if k == 0 else [f"{o.default:g}" for o in entry.options[:k]] + ["k"])
+            default = min(max(opt.default, low), high)
+            text = (f"tune k = {default:g} within {low:g} .. {high:g}\n"
+                    f"goal {'mean ' if entry.kind != 'norm' else ''}{entry.name}({args}, {settings}) + l2sq(w)\n")
+            goal = check_text(HEADER + text, "ok.objc").spec.goal
+            node = next(n for n in _walk(goal) if isinstance(n, tt.Apply) and n.entry == entry.name)
+            assert dict(node.tuned)[opt.name].name == "k", entry.name
+
+
+def _walk(e):
+    from objc import typed_tree as tt
+    yield e
+    for c in tt.children(e):
+        yield from _walk(c)
+
+
+def test_tune_range_span_is_the_range_itself() -> None:
+    spec = check_text(HEADER + "tune lam = 0.1 within 0.001 .. 10\ngoal mean hinge(y * s) + lam * l2sq(w)\n",
+                      "ok.objc").spec
+    (t,) = spec.tunables
+    line = (HEADER + "tune lam = 0.1 within 0.001 .. 10\n").split("\n")[t.range_span.line - 1]
+    assert line[t.range_span.column - 1:t.range_span.end_column - 1] == "0.001 .. 10"
+
+
+def test_perrow_resolves_over_rows_only() -> None:
+    from objc import typed_tree as tt
+    goal = _goal_node("goal perrow hinge(y * s) + 0.5 * l2sq(w)\n")
+    agg = goal.left
+    assert isinstance(agg, tt.Aggregate) and (agg.kind, agg.over) == ("perrow", "rows")

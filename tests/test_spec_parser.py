@@ -61,6 +61,17 @@ learn w over inputs, b
 score s = w . x + b
 goal mean (0.8 * hinge(y * s) + 0.2 * logistic(y * s)) + 0.1 * l1(w)
 ''',
+    '''table days from "days.csv"
+  target sold
+  inputs a, b
+tune q = 2 within 1.5 .. 4
+tune t = 0.9 within 0.5 .. 0.95
+learn w over inputs, b
+score s = w . x + b
+loss powered(r) = abs(r) ^ q
+goal perrow pinball(y - s, t) + 0.1 * mean powered(y - s) + 0.01 * mean cosh(y - s)
+  + 0.1 * l1(w)
+''',
 )
 
 
@@ -76,6 +87,7 @@ TOKENS = list(RESERVED_WORDS) + [
     "(", ")", "[", "]", ",", ":", "=", "->", "..", ".", "+", "-", "*", "/", "^", "<=", ">=", "==", "%",
     "#", '"', "'", "\n", " ", "\t", "0", "1.5", "-2", "1e400", "x", "y", "s", "w", "b", "hinge", "l2sq",
     "group_l2", "huber", "pinball", "zero_one", "tanh", "max", "min", "hypot", "\\", "é", "\r\n", "\x00",
+    "cosh", "below", "l0", "q", "t", "^ q", ", t", ", q",
 ]
 
 
@@ -205,6 +217,10 @@ SYNTAX_CASES = [
      "E103", 6, 6, ["'mean' is a reserved word", '"mean"']),
     ("reserved word as a parameter", HEADER.replace("inputs, b\n", "inputs, sum\n") + "goal l2sq(w)\n",
      "E103", 4, 22, ["'sum' is a reserved word"]),
+    ("the new aggregate word as a tunable", HEADER + "tune perrow = 1 within 0 .. 2\ngoal l2sq(w)\n",
+     "E103", 6, 6, ["'perrow' is a reserved word"]),
+    ("a tune range with one end", HEADER + "tune C = 1 within 0\ngoal l2sq(w)\n",
+     "E104", 7, 1, ["statement before 'goal' is unfinished", ".."]),
     ("reserved word as a loss variable", HEADER + "loss sq(from) = from^2\ngoal l2sq(w)\n",
      "E103", 6, 9, ["'from' is a reserved word"]),
     ("unterminated statement", HEADER + "tune C = 1 within 0 ..\ngoal l2sq(w)\n",
@@ -263,3 +279,26 @@ def test_deep_chain_of_custom_losses_is_a_spec_error() -> None:
     for k in range(1, 6):
         text += f"loss f{k}(m) = f{k - 1}(f{k - 1}(m))\n"
     _assert_only_spec_errors(text + "goal mean f5(y - s)\n")
+
+
+def test_tune_keeps_the_place_of_its_range() -> None:
+    # the range's own span, so a range that leaves a setting's domain can be pointed at exactly
+    text = "tune delta = 1.35 within 0.5 .. 5\n"
+    (stmt,) = parse(SourceText("t.objc", text)).statements
+    r = stmt.range_span
+    assert (stmt.low, stmt.high) == (0.5, 5.0)
+    assert text[r.column - 1:r.end_column - 1] == "0.5 .. 5"
+    negative = "tune a = 0 within -1 .. -0.5\n"
+    (stmt,) = parse(SourceText("t.objc", negative)).statements
+    assert (stmt.low, stmt.high) == (-1.0, -0.5)
+    assert negative[stmt.range_span.column - 1:stmt.range_span.end_column - 1] == "-1 .. -0.5"
+
+
+def test_perrow_binds_like_mean_and_sum() -> None:
+    from objc import syntax_tree as syn
+    (goal,) = parse(SourceText("t.objc", "goal perrow hinge(y * s) * 2 + mean hinge(y * s)\n")).statements
+    left = goal.expr.left
+    # `perrow` takes the next factor only, as `mean` and `sum` do
+    assert isinstance(left, syn.Binary) and left.op == "*"
+    assert isinstance(left.left, syn.Aggregate) and left.left.kind == "perrow"
+    assert "perrow" in RESERVED_WORDS

@@ -143,6 +143,10 @@ def test_the_examples_cover_the_language():
         "yes/no labels": r"target \w+: yes -> \+1, no -> -1",
         "no intercept": r"score s = w \. x\n",
         "perceptron alone": r"goal mean perceptron\(y \* s\)\n",
+        "tunable exponent": r"tune q = .* within 1\.5 \.\. 4\n(.*\n)*goal .*pos\(1 - y \* s\) \^ q",
+        "tunable quantile": r"tune t = .* within 0\.5 \.\. 0\.95\n(.*\n)*goal .*pinball\(y - s, t\)",
+        "tunable huber threshold": r"huber\(y - s, d\)",
+        "perrow": r"goal perrow \w+\(y - s",
     }
     missing = [what for what, pattern in wanted.items()
                if not any(re.search(pattern, t) for t in text.values())]
@@ -286,9 +290,10 @@ class _Untranslatable(Exception):
     """cvxpy has no construction for this atom (zero_one, tanh): it cannot be DCP."""
 
 
-def _cvxpy_problem(c: CheckedObjective, data: BoundData) -> cp.Problem:
+def _cvxpy_problem(c: CheckedObjective, data: BoundData, at: dict[str, float] | None = None) -> cp.Problem:
     """The spec's goal and constraints as a cvxpy problem on the bound table, written directly from
-    the typed tree and the catalog's cvxpy constructions (so the curvature is judged by cvxpy)."""
+    the typed tree and the catalog's cvxpy constructions (so the curvature is judged by cvxpy).
+    An exponent or a catalog setting a tunable gives enters as its number `at` (default: its default)."""
     names_ = list(data.input_names)
     variables = {p.name: cp.Variable(len(names_), name=p.name) if p.vector else cp.Variable(name=p.name)
                  for p in c.spec.parameters}
@@ -340,10 +345,12 @@ def _cvxpy_problem(c: CheckedObjective, data: BoundData) -> cp.Problem:
             v = go(e.operand)
             if e.over == "rows":
                 total = cp.sum(cp.multiply(data.weights, v))
+                if e.kind == "perrow":
+                    return total / data.n_rows  # sum_i c_i l_i / n (docs/language.md, section 5)
                 return total / float(np.sum(data.weights)) if e.kind == "mean" else total
             return cp.sum(v) / v.size if e.kind == "mean" else cp.sum(v)
         if isinstance(e, tt.Apply):
-            out = CATALOG[e.entry].cvxpy(cp, *[go(a) for a in e.args], **e.option_dict)
+            out = CATALOG[e.entry].cvxpy(cp, *[go(a) for a in e.args], **e.option_values(at))
             if out is None:
                 raise _Untranslatable(e.entry)
             return out
@@ -357,8 +364,12 @@ def _cvxpy_problem(c: CheckedObjective, data: BoundData) -> cp.Problem:
 
 
 def _cvxpy_says_dcp(path: Path) -> bool:
+    # a tunable exponent or setting must keep the problem DCP over its whole declared range: cvxpy
+    # judges the problem at the defaults and at every range end
+    c = checked(path)
+    settings = [{}] + [{t.name: getattr(t, end)} for t in c.spec.tunables for end in ("low", "high")]
     try:
-        return _cvxpy_problem(checked(path), bound(path)).is_dcp()
+        return all(_cvxpy_problem(c, bound(path), at).is_dcp() for at in settings)
     except _Untranslatable:
         return False
 
@@ -548,3 +559,36 @@ def test_docs_python_example_runs_as_documented(monkeypatch, capsys):
     out = capsys.readouterr().out.splitlines()
     assert out[0] == "convex True margin"
     assert out[-1] == "E227 4 21 unknown name 's'"
+
+
+# ---------------------------------------------------------------- tunable exponents and settings
+
+def test_tunable_exponent_witness_is_a_real_counterexample_at_a_q_of_the_range():
+    # pos(1 - m)^q with q allowed below 1: the witness names a q inside the declared range and two
+    # margins where midpoint convexity of max(0, 1 - m)^q (the textbook formula, standard library
+    # here) fails
+    path = SPECS / "refused" / "tuned_power_below_one.objc"
+    c = checked(path)
+    (q,) = [t for t in c.spec.tunables if t.name == "q"]
+    (w,) = [t.witness for t in c.terms if t.witness is not None]
+    at = dict(part.split(" = ") for part in w.setting.split(", "))
+    value = float(at["q"])
+    assert q.low <= value <= q.high and value < 1.0
+    (e,) = [d for d in c.errors if d.code == "E311"]
+    assert f"q = {value:g}" in " ".join(e.notes) and "q < 1" in e.message
+
+    def f(m: float) -> float:
+        return max(0.0, 1.0 - m) ** value
+    mid, avg = f((w.a + w.b) / 2), (f(w.a) + f(w.b)) / 2
+    assert mid > avg + 1e-6
+    assert math.isclose(mid, w.value_mid, rel_tol=1e-6) and math.isclose(avg, w.value_avg, rel_tol=1e-6)
+
+
+def test_tunable_settings_examples_fit_alike_on_both_backends():
+    # the cvxpy backend builds the problem with the number of each exponent and setting; the NumPy
+    # backend reads them from the tunables: the two must agree away from the defaults too
+    from objc.training import fit_spec
+    for name, setting in (("parcel_tuned_power.objc", {"q": 3.0}), ("croissant_tuned_quantile.objc", {"t": 0.6, "d": 3.0})):
+        got = {be: fit_spec(SPECS / name, backend=be, tunables=setting) for be in ("numpy", "cvxpy")}
+        objectives = {be: m.document["fit"]["objective"] for be, m in got.items()}
+        assert math.isclose(objectives["numpy"], objectives["cvxpy"], rel_tol=1e-6), objectives

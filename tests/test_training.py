@@ -181,3 +181,38 @@ def test_sweep_with_class_weights_ranks_by_the_weighted_error(tmp_path):
         pred = np.where(training.scores(form, p["params"], held.X) > 0, 1.0, -1.0)
         # scikit-learn's accuracy_score with sample_weight = row x class weight
         assert p["held"] == pytest.approx(1 - skm.accuracy_score(held.y, pred, sample_weight=held.weights), abs=1e-12)
+
+
+def test_numpy_fit_matches_cvxpy_weights_and_saves_the_certified_distance(tmp_path):
+    # breast cancer, row weights, standardized: the default NumPy stop gives weights within 1e-6 of the
+    # cvxpy backend's (Clarabel; its own accuracy on these weights is about 1e-8 here), inside the
+    # certified distance; the saved model carries that certificate
+    _cancer_table(tmp_path)
+    (tmp_path / "c.objc").write_text(CANCER_SPEC)
+    ours = objc.fit_spec(tmp_path / "c.objc")
+    ref = objc.fit_spec(tmp_path / "c.objc", backend="cvxpy")
+    measured = float(np.linalg.norm(np.r_[ours.params["w"] - ref.params["w"], ours.params["b"] - ref.params["b"]]))
+    cert = ours.document["fit"]["certificate"]
+    assert cert["distance"] is not None and cert["distance"] <= 1e-6 and cert["param_tolerance"] == 1e-6
+    assert measured <= cert["distance"] + 1e-7, (measured, cert)
+    saved = json.loads(ours.save(tmp_path / "m.json").read_text())["fit"]["certificate"]
+    assert saved["distance"] == cert["distance"] and saved["curvature"] == cert["curvature"]
+    assert saved["distance_note"].startswith("certified")
+    assert ref.document["fit"]["certificate"]["distance"] is None
+    assert "cvxpy backend" in ref.document["fit"]["certificate"]["distance_note"]
+    off = objc.fit_spec(tmp_path / "c.objc", param_tol=None)
+    assert off.document["fit"]["certificate"]["param_tolerance"] is None
+    with pytest.raises(ValueError, match="param_tol"):
+        objc.fit_spec(tmp_path / "c.objc", param_tol=0.0)
+
+
+def test_metrics_use_the_tuned_quantile_not_its_default(tmp_path):
+    # regression: a pinball quantile given by a tunable was evaluated at the tunable's default
+    model = objc.fit_spec(ROOT / "specs" / "croissant_tuned_quantile.objc", backend="cvxpy", tunables={"t": 0.6})
+    m = model.document["training_metrics"]
+    assert "pinball(t=0.6)" in m["mean_losses"] and "pinball(t=0.9)" not in m["mean_losses"]
+    frame = pd.read_csv(ROOT / "specs" / "data" / "croissants.csv")
+    pred = model.decision_function(frame[list(model.input_names)].to_numpy())
+    # scikit-learn's mean_pinball_loss at alpha = 0.6 (its own definition of the pinball loss)
+    assert m["mean_losses"]["pinball(t=0.6)"] == pytest.approx(
+        skm.mean_pinball_loss(frame["sold"], pred, alpha=0.6), rel=1e-9)

@@ -4,7 +4,10 @@
 parameter, the data as constants (no per-row constraints), every catalog atom through its entry's
 `cvxpy` construction, tunables as cvxpy `Parameter`s. Constant factors that hold tunables in a form
 DPP does not accept (1 / C, C * D, C ^ 2) become one derived parameter each, whose value is
-recomputed from the tunables, so a sweep re-solves without re-canonicalizing.
+recomputed from the tunables, so a sweep re-solves without re-canonicalizing. A tunable that sets
+an exponent (`pos(1 - m) ^ q`) or a catalog setting (`huber(r, d)`) enters as its number: cvxpy
+takes a Parameter there either not at all or not as DPP (power(x, p) needs a number p), so such a
+problem is built again whenever that tunable changes (`solve_build` does it for a sweep).
 
 `fit` solves it and returns a `FitResult` (`solve_build` and `set_tunables` re-solve one build for
 a sweep); HiGHS is driven only when `bounds_propagation_sound` says cvxpy hands it sound variable
@@ -44,7 +47,7 @@ import inspect
 import keyword
 import textwrap
 import time
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, field, fields
 from types import MappingProxyType
 from typing import Any, Callable, Mapping, Sequence
 
@@ -99,6 +102,8 @@ class CvxpyBuild:
     y: np.ndarray
     weights: np.ndarray
     derived: tuple[tuple[Any, tt.TExpr], ...] = ()  # parameters computed from the tunables
+    # tunables built in as numbers (exponents and catalog settings), with the values built in
+    built_in: Mapping[str, float] = field(default_factory=lambda: MappingProxyType({}))
 
 
 # ---------------------------------------------------------------- shared with emitted modules
@@ -169,10 +174,15 @@ def _choose_solver(problem, installed):
 def _solve_ladder(problem, name, ladder, verbose=False, warm_start=False):
     """Solve with each option set in turn until one ends in anything but 'inaccurate' (or an error);
     returns the options of the last attempt."""
+    import warnings
     for k, options in enumerate(ladder):
         last = k == len(ladder) - 1
         try:
-            problem.solve(solver=name, verbose=verbose, warm_start=warm_start, **dict(options))
+            with warnings.catch_warnings():
+                # an inaccurate end is handled here (the next rung, or objc's own C422 error), so
+                # cvxpy's printed advice would only mislead
+                warnings.filterwarnings("ignore", message="Solution may be inaccurate")
+                problem.solve(solver=name, verbose=verbose, warm_start=warm_start, **dict(options))
         except Exception:
             if last:
                 raise
@@ -227,6 +237,11 @@ def _require_accepted(checked: CheckedObjective) -> None:
 
 def _has_tunable(e: tt.TExpr) -> bool:
     return isinstance(e, tt.TunableRef) or any(_has_tunable(c) for c in tt.children(e))
+
+
+def _has_difference(e: tt.TExpr) -> bool:
+    return isinstance(e, tt.Neg) or (isinstance(e, tt.Const) and e.value < 0) or any(
+        _has_difference(c) for c in tt.children(e))
 
 
 def _param_affine(e: tt.TExpr) -> bool:
@@ -301,7 +316,7 @@ class _Translator:
         if isinstance(e, tt.ScoreRef):
             return h.score()
         if isinstance(e, tt.Apply):
-            return h.cvx(CATALOG[e.entry], [self.expr(a) for a in e.args], e.option_dict, e)
+            return h.cvx(CATALOG[e.entry], [self.expr(a) for a in e.args], h.options(e), e)
         if isinstance(e, tt.CustomLoss):
             return self.expr(e.body)
         if isinstance(e, tt.Add):
@@ -316,6 +331,8 @@ class _Translator:
             v = self.expr(e.operand)
             if e.over == "rows":
                 total = h.weights @ v
+                if e.kind == "perrow":
+                    return total / h.n_rows
                 return total / h.weight_total if e.kind == "mean" else total
             s = h.cp.sum(v)
             if e.kind == "sum":
@@ -330,7 +347,8 @@ class _Translator:
         if not _has_tunable(e):
             with np.errstate(all="ignore"):
                 return float(evaluate(e, EvalEnv([], {}, {}, np.ones(1))))
-        if not _param_affine(e):
+        if not _param_affine(e) or (_has_difference(e) and _expr_sign_flags(e)):
+            # (a difference such as 1 - a: its sign comes from the declared ranges, which cvxpy cannot see)
             return self.host.derived(e)
         if isinstance(e, tt.TunableRef):
             return self.host.tunable(e)
@@ -397,6 +415,7 @@ class _RealHost:
         self.X, self.y, self.weights, self.weight_total = X, y, weights, weight_total
         self.input_names, self.values = input_names, values
         self.n_inputs = len(input_names)
+        self.n_rows = X.shape[0]
         self._index = {n: i for i, n in enumerate(input_names)}
         self.variables = {p.name: (cp.Variable(len(input_names), name=p.name) if p.vector
                                    else cp.Variable(name=p.name)) for p in checked.spec.parameters}
@@ -420,6 +439,9 @@ class _RealHost:
 
     def tunable(self, e: tt.TunableRef) -> Any:
         return self.parameters[e.name]
+
+    def options(self, e: tt.Apply) -> dict[str, float]:
+        return e.option_values(self.values)
 
     def derived(self, e: tt.TExpr) -> Any:
         p = self.cp.Parameter(value=_derived_value(e, self._env, self.checked), **_expr_sign_flags(e))
@@ -502,8 +524,24 @@ def build_problem(checked: CheckedObjective, X: np.ndarray, y: np.ndarray, weigh
     constraints = [_compare(tr.expr(c.left), c.op, tr.expr(c.right)) for c in spec.constraints]
     objective = functools.reduce(lambda a, b: a + b, terms)
     problem = cp.Problem(cp.Minimize(objective), constraints)
+    built_in = {name: values[name] for name in _built_in_tunables(checked)}
     return CvxpyBuild(problem, MappingProxyType(dict(host.variables)), MappingProxyType(dict(host.parameters)),
-                      host._score, terms, checked, input_names, X, y, weights, tuple(host.derived_params))
+                      host._score, terms, checked, input_names, X, y, weights, tuple(host.derived_params),
+                      MappingProxyType(built_in))
+
+
+def _built_in_tunables(checked: CheckedObjective) -> set[str]:
+    """The tunables that set an exponent or a catalog setting somewhere (built in as numbers)."""
+    names: set[str] = set()
+
+    def walk(e: tt.TExpr) -> None:
+        if isinstance(e, tt.Apply):
+            names.update(ref.name for _, ref in e.tuned)
+        for c in tt.children(e):
+            walk(c)
+    for e in _all_exprs(checked):
+        walk(e)
+    return names
 
 
 def _compare(left: Any, op: str, right: Any) -> Any:
@@ -526,8 +564,15 @@ def _checked_tunables(checked: CheckedObjective, given: Mapping[str, float] | No
 
 def set_tunables(built: CvxpyBuild, tunables: Mapping[str, float]) -> None:
     """New tunable values for an existing build (derived parameters follow); the problem is reused,
-    so a DPP problem is not canonicalized again."""
+    so a DPP problem is not canonicalized again. A tunable built in as a number (an exponent or a
+    catalog setting) cannot change here: build the problem again (`solve_build` does)."""
     values = _checked_tunables(built.checked, {**{n: p.value for n, p in built.parameters.items()}, **tunables})
+    moved = [n for n, v in built.built_in.items() if values[n] != v]
+    if moved:
+        t = next(t for t in built.checked.spec.tunables if t.name == moved[0])
+        raise _error("C401", f"tunable '{t.name}' sets an exponent or a catalog setting, which is built into the "
+                     "problem as a number", t.span, "build the problem again for a new value (solve_build does)",
+                     built.checked)
     for name, p in built.parameters.items():
         p.value = values[name]
     env = _numeric_env(built.input_names, built.X, built.y, built.weights, values)
@@ -565,9 +610,15 @@ def solve_build(built: CvxpyBuild, tunables: Mapping[str, float] | None = None, 
     """Solve a build (after setting new tunable values, if given) and certify by the solver's status."""
     import cvxpy as cp
 
-    checked, problem = built.checked, built.problem
+    checked = built.checked
     if tunables:
-        set_tunables(built, tunables)
+        values = _checked_tunables(checked, {**{n: p.value for n, p in built.parameters.items()}, **tunables})
+        if any(values[n] != v for n, v in built.built_in.items()):
+            # an exponent or a setting moved: a new problem with the new number in it
+            built = build_problem(checked, built.X, built.y, built.weights, built.input_names, values)
+        else:
+            set_tunables(built, tunables)
+    problem = built.problem
     installed = cp.installed_solvers()
     name = solver.upper() if solver else _choose_solver(problem, installed)
     if name is None or name not in ALLOWED_SOLVERS or name not in installed:
@@ -849,6 +900,8 @@ def _free_names(fn: ast.FunctionDef) -> list[str]:
             bound |= {a.arg for a in node.args.args}
             if isinstance(node, ast.FunctionDef):
                 stored.add(node.name)
+        elif isinstance(node, ast.Import):  # a standard-library import inside the function travels with it
+            stored |= {(a.asname or a.name).split(".")[0] for a in node.names}
     return [n for n in loaded if n not in bound and n not in stored and n not in _BUILTINS and n not in ("np", "cp")]
 
 
@@ -954,6 +1007,7 @@ class _EmitHost:
         self.cp, self.np = _name("cp"), _name("np")
         self.X, self.y, self.weights = _name("X"), _name("y"), _name("weights")
         self.weight_total, self.n_inputs = _name("weight_total"), _name("n_inputs")
+        self.n_rows = _name("X").shape[0]
         self.score_ident = score_ident
         self.derived_statements: list[ast.stmt] = []
 
@@ -971,6 +1025,11 @@ class _EmitHost:
 
     def tunable(self, e: tt.TunableRef) -> _Sym:
         return _name(self.idents[("tunable", e.name)])
+
+    def options(self, e: tt.Apply) -> dict[str, Any]:
+        # a tunable setting is read from the checked values when the module builds its problem
+        tuned = dict(e.tuned)
+        return {k: (_name("values")[tuned[k].name] if k in tuned else v) for k, v in e.options}
 
     def derived(self, e: tt.TExpr) -> _Sym:
         ident = self.names.of("", "derived")
@@ -993,7 +1052,7 @@ class _EmitHost:
             return self.X[:, self.index(e.name)]
         if isinstance(e, tt.Apply):
             entry = CATALOG[e.entry]
-            return _name(self.emitter.kernel(entry))(*[self.numeric(a) for a in e.args], **e.option_dict)
+            return _name(self.emitter.kernel(entry))(*[self.numeric(a) for a in e.args], **self.options(e))
         if isinstance(e, tt.CustomLoss):
             return self.numeric(e.body)
         if isinstance(e, tt.Add):
@@ -1006,6 +1065,8 @@ class _EmitHost:
             return self.numeric(e.left) / self.numeric(e.right)
         if isinstance(e, tt.Aggregate) and e.over == "rows":
             total = self.weights @ self.numeric(e.operand)
+            if e.kind == "perrow":
+                return total / self.n_rows
             return total / self.weight_total if e.kind == "mean" else total
         raise AssertionError(f"no NumPy translation for {type(e).__name__}")
 

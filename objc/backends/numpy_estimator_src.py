@@ -161,7 +161,7 @@ class EstimatorBase:
         X = self._standardized(X, fitting=True)
         self.input_names_ = self._input_names(names, p)
         out = run_solver(SPEC, X, target, c, self.input_names_, self._tunable_values(), self.tol, self.max_passes,
-                         self.allow_nonconvex, None, None, self.use_scipy)
+                         self.allow_nonconvex, None, None, self.use_scipy, getattr(self, "param_tol", 1e-6))
         self.params_ = out["params"]
         score_table = SPEC["score"]
         w_name, b_name = score_table["weights"], score_table["intercept"]
@@ -332,22 +332,17 @@ def _read_csv(path):
     return header, columns, len(body)
 
 
-_MISSING = {"", "na", "nan", "n/a", "null", "none"}
-
-
 def _numeric(path, name, cells):
     values = np.empty(len(cells))
     for i, cell in enumerate(cells):
-        if cell.lower() in _MISSING:
+        if cell in _MISSING_CELLS:
             values[i] = np.nan
             continue
         try:
             values[i] = float(cell)
         except ValueError:
             raise TableError(f"{path}: data row {i + 1}, column {name!r}: {cell!r} is not a number") from None
-        if not math.isfinite(values[i]):
-            raise TableError(f"{path}: data row {i + 1}, column {name!r}: {cell!r} is not a finite number")
-    return values
+    return values  # an infinite value is treated as a missing one, by the spec's `missing` rule, as objc does
 
 
 def _choose_inputs(path, table, header, columns):
@@ -369,7 +364,7 @@ def _choose_inputs(path, table, header, columns):
                 if c in reserved or c in table["excluded"]:
                     continue
                 try:
-                    [float(v) for v in columns[c] if v.lower() not in _MISSING]
+                    [float(v) for v in columns[c] if v not in _MISSING_CELLS]
                 except ValueError:
                     continue
                 chosen.append(c)
@@ -396,7 +391,7 @@ def _target_values(path, table, columns):
                 y[i] = label
                 break
         else:
-            if cell.lower() not in _MISSING:
+            if cell not in _MISSING_CELLS:
                 raise TableError(f"{path}: data row {i + 1}, column {name!r}: {cell!r} is not in the spec's label map")
     return y
 
@@ -434,7 +429,8 @@ def load_table(path):
     if np.any(bad):
         if table["missing"] != "drop":
             first = int(np.flatnonzero(bad)[0]) + 1
-            raise TableError(f"{path}: data row {first} has a missing value (the spec says `missing fail`)")
+            raise TableError(f"{path}: data row {first} has a missing or infinite value (the spec says "
+                             "`missing fail`)")
         X, y, c = X[~bad], y[~bad], c[~bad]
     if np.any(c < 0):
         raise TableError(f"{path}: data row {int(np.flatnonzero(c < 0)[0]) + 1}: a negative row weight")
@@ -497,6 +493,9 @@ def main(argv=None):
     parser.add_argument("table", help="CSV file with a header row")
     parser.add_argument("-o", "--output", required=True, help="JSON file to write")
     parser.add_argument("--tol", type=float, default=1e-6, help="relative certificate to reach (default 1e-6)")
+    parser.add_argument("--param-tol", default="1e-6", metavar="X",
+                        help="stop only once the weights are within X of the optimum (certified where the objective is "
+                             "strongly convex in all of them); 'off' switches this off (default 1e-6)")
     parser.add_argument("--max-passes", type=int, default=None, help="budget of passes over the data")
     parser.add_argument("--set", action="append", default=[], metavar="NAME=VALUE", help="a tunable's value")
     parser.add_argument("--allow-nonconvex", action="store_true", help="run a local method on a non-convex spec")
@@ -511,8 +510,10 @@ def main(argv=None):
                 tunables[name.strip()] = float(value)
             except ValueError:
                 raise TableError(f"--set {item!r}: {value!r} is not a number") from None
+        param_tol = None if args.param_tol.strip().lower() == "off" else _positive(args.param_tol, "--param-tol")
         X, y, c, names, stats = load_table(args.table)
-        out = run_solver(SPEC, X, y, c, names, tunables, args.tol, args.max_passes, args.allow_nonconvex)
+        out = run_solver(SPEC, X, y, c, names, tunables, args.tol, args.max_passes, args.allow_nonconvex,
+                         param_tol=param_tol)
     except (TableError, ValueError) as err:
         print(f"error: {err}", file=sys.stderr)
         return 1
@@ -531,6 +532,17 @@ def main(argv=None):
         print(f"error: cannot write {args.output}: {err}", file=sys.stderr)
         return 1
     cert = out["certificate"]
+    distance = "no certified distance" if cert["distance"] is None else f"distance to the optimum <= {cert['distance']:.3g}"
     print(f"{out['status']}: objective {out['objective']:.10g}, {cert['kind']} {cert['absolute']:.3g} "
-          f"(relative {cert['relative']:.3g}), {out['passes']} passes; wrote {args.output}")
+          f"(relative {cert['relative']:.3g}), {distance}, {out['passes']} passes; wrote {args.output}")
     return 0
+
+
+def _positive(text, option):
+    try:
+        value = float(text)
+    except ValueError:
+        raise TableError(f"{option} {text!r}: write a positive number, or off") from None
+    if not (math.isfinite(value) and value > 0):
+        raise TableError(f"{option} {text!r}: write a positive number, or off")
+    return value

@@ -34,23 +34,30 @@ import numpy as np
 from objc import catalog
 from objc import typed_tree as tt
 from objc.catalog import CATALOG
+from objc.cells import MISSING_CELLS
 from objc.checker import CheckedObjective, Term, render
 from objc.fit_result import Certificate, FitResult
 from objc.score_form import score_form
+from objc.source_text import Span
 
-__all__ = ["emit_module", "fit", "load_module", "NotSupported", "plan_method"]
+__all__ = ["emit_module", "fit", "load_module", "NotSupported", "plan_method", "unsupported"]
 
 _HERE = Path(__file__).resolve().parent
 _RUNTIME_FILES = ("numpy_solvers_src.py", "numpy_estimator_src.py")
 
 # arguments every generated estimator takes besides the spec's tunables
-FIXED_ARGUMENTS = ("tol", "max_passes", "allow_nonconvex", "use_scipy")
+FIXED_ARGUMENTS = ("tol", "max_passes", "allow_nonconvex", "use_scipy", "param_tol")
 # kernels the generic solver code calls whatever the spec uses
 _RUNTIME_KERNELS = ("_k_l1_prox", "_k_l2_prox")
 
 
 class NotSupported(ValueError):
-    """The spec is valid, but this backend cannot solve it; the message says why and where."""
+    """The spec is valid, but this backend cannot solve it: `what` says why, `span` where (the message
+    adds the spec line and column)."""
+
+    def __init__(self, what: str, span: Span | None = None):
+        self.what, self.span = what, span
+        super().__init__((f"spec line {span.line}, column {span.column}: " if span is not None else "") + what)
 
 
 # ---------------------------------------------------------------- small ast helpers
@@ -201,8 +208,8 @@ class _Code:
         self.count += 1
 
     def unsupported(self, e: tt.TExpr, what: str) -> NotSupported:
-        return NotSupported(f"spec line {e.span.line}, column {e.span.column}: {what} in {self.where} is not "
-                            "supported by the NumPy backend (the cvxpy backend may solve it)")
+        return NotSupported(f"{what} in {self.where} is not "
+                            "supported by the NumPy backend (the cvxpy backend may solve it)", e.span)
 
     def walk(self, e: tt.TExpr) -> tuple[ast.expr, ast.expr | None]:
         """(value, derivative) of e; derivative None means zero."""
@@ -275,7 +282,9 @@ class _Code:
         if not entry.trainable:
             raise self.unsupported(e, f"the {entry.name} loss (evaluation only)")
         args = [self.walk(a) for a in e.args]
-        opts = {k: ast.Constant(float(v)) for k, v in e.options}
+        tuned = dict(e.tuned)  # a setting or exponent a tunable gives is read from `tun` at run time
+        opts = {k: (ast.Subscript(_name("tun"), ast.Constant(tuned[k].name), ast.Load()) if k in tuned
+                    else ast.Constant(float(v))) for k, v in e.options}
         value_fn = self.emitter.kernel(entry.value)
         values = [a for a, _ in args]
         value = _call(value_fn, *values, **opts)
@@ -330,9 +339,9 @@ def _penalty_target(t: Term) -> tuple[str, tuple[str, ...] | None, bool]:
     collect(t.core)
     keys = {(r.name, r.entries) for r in refs}
     if len(keys) != 1:
-        raise NotSupported(f"spec line {t.span.line}: term {t.index + 1} ('{t.text}') reads "
+        raise NotSupported(f"term {t.index + 1} ('{t.text}') reads "
                            f"{'no' if not keys else 'several'} learned parameter selections; the NumPy backend "
-                           "needs a penalty on one parameter (or one selection of it)")
+                           "needs a penalty on one parameter (or one selection of it)", t.span)
     ref = refs[0]
     return ref.name, ref.entries, ref.vector
 
@@ -360,7 +369,7 @@ def _penalty_form(core: tt.TExpr) -> str | None:
     if isinstance(core, tt.Apply) and core.entry == "abs" and is_param(core.args[0]) and \
             core.args[0].shape.kind == "scalar":
         return "l1"
-    if isinstance(core, tt.Apply) and core.entry == "power" and core.option_dict.get("p") == 2.0 and \
+    if isinstance(core, tt.Apply) and core.entry == "power" and not core.tuned and core.option_dict.get("p") == 2.0 and \
             is_param(core.args[0]) and core.args[0].shape.kind == "scalar":
         return "l2sq"
     if isinstance(core, tt.Aggregate) and core.kind == "sum" and core.over == "entries" and \
@@ -368,7 +377,7 @@ def _penalty_form(core: tt.TExpr) -> str | None:
         inner = core.operand
         if inner.entry == "abs":
             return "l1"
-        if inner.entry == "power" and inner.option_dict.get("p") == 2.0:
+        if inner.entry == "power" and not inner.tuned and inner.option_dict.get("p") == 2.0:
             return "l2sq"
     return None
 
@@ -386,7 +395,7 @@ def _coefficient_factors(t: Term) -> tuple[list[tt.TExpr], bool]:
             factors.append(e.left)
             e = e.right
         else:  # pragma: no cover - the checker builds terms this way only
-            raise NotSupported(f"spec line {t.span.line}: cannot read the coefficient of term {t.index + 1}")
+            raise NotSupported(f"cannot read the coefficient of term {t.index + 1}", t.span)
     return factors, negated
 
 
@@ -503,6 +512,18 @@ class _Emitter:
                     ast.Constant(None)
                 lip = entry.lipschitz({k: float(v) for k, v in t.known_loss[1]})
                 fields["lipschitz"] = _const(float(lip) if lip is not None else None)
+                # the least l'' over an interval: what turns a gap into a certified distance of the weights
+                fields["curv_floor"] = _name(self.kernel(entry.curv_floor)) if entry.curv_floor is not None else \
+                    ast.Constant(None)
+                if isinstance(t.body, tt.Apply) and t.body.tuned:
+                    # settings a tunable gives: the solver reads them from the tunables of each fit; the
+                    # Lipschitz constant (which only sizes smoothing stages) is the larger at the range
+                    # ends, an upper bound for the catalog's settings (linear, or a max of linear, in them)
+                    fields["tuned_options"] = _const({k: ref.name for k, ref in t.body.tuned})
+                    ends = [entry.lipschitz(t.body.option_values({r.name: getattr(r, side) for _, r in t.body.tuned}))
+                            for side in ("low", "high")]
+                    if lip is not None and all(v is not None for v in ends):
+                        fields["lipschitz"] = _const(float(max([lip] + ends)))
             return ast.Dict([ast.Constant(k) for k in fields], list(fields.values()))
         if t.kind == "params":
             param, entries, _vector = _penalty_target(t)
@@ -515,8 +536,8 @@ class _Emitter:
                                         f"Term {t.index + 1} (spec line {t.span.line}): a constant.", t.core, None)
             fields = dict(common, kind=ast.Constant("constant"), constant=_name(value))
             return ast.Dict([ast.Constant(k) for k in fields], list(fields.values()))
-        raise NotSupported(f"spec line {t.span.line}: term {t.index + 1} mixes per-row aggregates with other "
-                           "expressions; only the cvxpy backend can solve it")
+        raise NotSupported(f"term {t.index + 1} mixes per-row aggregates with other "
+                           "expressions; only the cvxpy backend can solve it", t.span)
 
     def constraint_table(self, k: int) -> ast.expr:
         c = self.checked.spec.constraints[k]
@@ -549,9 +570,9 @@ class _Emitter:
                 fields.update(kind=ast.Constant(f"{left.entry} ball"), radius=_name(bound_name))
             fields.update(param=ast.Constant(ref.name), entries=_const(ref.entries))
         else:
-            raise NotSupported(f"spec line {c.span.line}: constraint '{info.text}' is not a sign, bound, box, L1 ball "
+            raise NotSupported(f"constraint '{info.text}' is not a sign, bound, box, L1 ball "
                                "or L2 ball on a learned parameter; the NumPy backend cannot project on it "
-                               "(the cvxpy backend can)")
+                               "(the cvxpy backend can)", c.span)
         return ast.Dict([ast.Constant(k2) for k2 in fields], list(fields.values()))
 
     def score_table(self) -> ast.expr:
@@ -561,7 +582,7 @@ class _Emitter:
         try:
             form = score_form(self.checked, tuple(spec.table.explicit_inputs() or ()) if spec.table else ())
         except ValueError as err:
-            raise NotSupported(f"spec line {spec.score.span.line}: {err}") from None
+            raise NotSupported(str(err), spec.score.span) from None
         dots, scalars = [], []
         for k, b in enumerate(form.blocks):
             if b.dot:
@@ -637,11 +658,11 @@ class _Emitter:
                 args = [walk(a) for a in e.args[:n_args]]
                 literal = [a.value if isinstance(a, st.Number) else None for a in e.args[n_args:]]
                 if any(v is None for v in literal):
-                    raise NotSupported(f"spec line {e.span.line}: options must be literal numbers")
+                    raise NotSupported("options must be literal numbers", e.span)
                 opts = entry.resolve_options(tuple(float(v) for v in literal))
                 return _call(self.kernel(entry.value), *args, **{k: ast.Constant(v) for k, v in opts.items()})
-            raise NotSupported(f"spec line {f.span.line}: feature {f.name!r} uses an expression the NumPy module "
-                               "cannot compute")
+            raise NotSupported(f"feature {f.name!r} uses an expression the NumPy module "
+                               "cannot compute", f.span)
         value = walk(f.expr)
         doc = f"Derived input {f.name!r} (spec line {f.span.line}) from the table's columns."
         body.append(ast.Return(_call(_attr("np", "asarray"), value, dtype=_attr("np", "float64"))))
@@ -687,7 +708,7 @@ class _Emitter:
         spec = self.checked.spec
         arguments = _python_arguments(tuple(t.name for t in spec.tunables))
         defaults = {arguments[t.name]: float(t.default) for t in spec.tunables}
-        fixed = {"tol": 1e-6, "max_passes": None, "allow_nonconvex": False, "use_scipy": True}
+        fixed = {"tol": 1e-6, "max_passes": None, "allow_nonconvex": False, "use_scipy": True, "param_tol": 1e-6}
         names = list(defaults) + list(fixed)
         values = list(defaults.values()) + list(fixed.values())
         args = ast.arguments(posonlyargs=[], args=[ast.arg("self")], vararg=None,
@@ -695,7 +716,7 @@ class _Emitter:
                              kwarg=None, defaults=[])
         body: list[ast.stmt] = [ast.Expr(ast.Constant(
             "Estimator for the spec above. Keyword arguments: the spec's tunables (by name), then the solver "
-            "settings tol, max_passes, allow_nonconvex, use_scipy."))]
+            "settings tol, max_passes, allow_nonconvex, use_scipy, param_tol (None: no parameter stop)."))]
         for n in names:
             body.append(ast.Assign([ast.Attribute(_name("self"), n, ast.Store())], _name(n)))
         init = ast.FunctionDef(name="__init__", args=args, body=body, decorator_list=[], returns=None,
@@ -746,6 +767,16 @@ def _header(checked: CheckedObjective) -> str:
     return "\n".join(lines) + "\n"
 
 
+def unsupported(checked: CheckedObjective) -> NotSupported | None:
+    """Why the NumPy backend cannot train an accepted spec, or None: the spec's own tables are built
+    (where every refusal is raised) without the runtime's source, so `check` can afford it."""
+    try:
+        _Emitter(checked).spec_table()
+    except NotSupported as err:
+        return err
+    return None
+
+
 def emit_module(checked: CheckedObjective) -> str:
     """The standalone NumPy module for a checked objective (byte-identical for the same spec).
 
@@ -760,6 +791,7 @@ def emit_module(checked: CheckedObjective) -> str:
     estimator = em.estimator_class()
     body: list[ast.stmt] = [ast.Expr(ast.Constant(_header(checked)))]
     body += ast.parse(_IMPORTS).body
+    body.append(ast.Assign([ast.Name("_MISSING_CELLS", ast.Store())], _const(MISSING_CELLS)))
     body.append(ast.Assign([ast.Name("SPEC_TEXT", ast.Store())], ast.Constant(checked.spec.text)))
     body.append(ast.Assign([ast.Name("SPEC_SHA256", ast.Store())], ast.Constant(checked.spec_hash)))
     body.append(ast.Assign([ast.Name("VERDICT", ast.Store())], ast.Constant(checked.verdict)))
@@ -814,12 +846,14 @@ except ImportError:
 
 _TAIL = '''
 def solve(X, y, weights=None, input_names=None, tunables=None, tol=1e-06, max_passes=None, allow_nonconvex=False,
-          theta0=None, progress=None, use_scipy=True):
+          theta0=None, progress=None, use_scipy=True, param_tol=1e-06):
     """Fit the spec's objective: X (rows x inputs, dense or CSR), y, optional row weights, input names
-    (default: the spec's inputs), tunable values by spec name. Returns a dict: params, objective,
-    term_values, status, method, certificate, iterations, passes, seconds."""
+    (default: the spec's inputs), tunable values by spec name. Stops at a relative certificate of `tol`
+    and, unless `param_tol` is None, parameters within `param_tol` of the optimum (certified where the
+    objective is strongly convex in all of them). Returns a dict: params, objective, term_values, status,
+    method, certificate (with distance, curvature, distance_note), iterations, passes, seconds."""
     return run_solver(SPEC, X, y, weights, input_names, tunables, tol, max_passes, allow_nonconvex, theta0,
-                      progress, use_scipy)
+                      progress, use_scipy, param_tol)
 
 
 def decision_function(params, X, input_names=None, tunables=None):
@@ -915,7 +949,7 @@ def fit(checked: CheckedObjective, X: Any, y: Any, weights: Any, input_names: tu
         tunables: dict[str, float] | None = None, tol: float = 1e-6, max_passes: int | None = None,
         allow_nonconvex: bool = False, theta0: Any = None,
         progress: Callable[[int, float, float | None], None] | None = None,
-        use_scipy: bool = True) -> FitResult:
+        use_scipy: bool = True, param_tol: float | None = 1e-6) -> FitResult:
     """Train with the generated module itself: emit, compile, execute (once per spec and process, see
     `_compiled`), call its solver.
 
@@ -923,11 +957,14 @@ def fit(checked: CheckedObjective, X: Any, y: Any, weights: Any, input_names: tu
     settings (the message says which)."""
     ns = _compiled(checked)
     out = ns["solve"](X, y, weights, tuple(input_names) if input_names is not None else None, tunables, tol,
-                      max_passes, allow_nonconvex, theta0, progress, use_scipy)
+                      max_passes, allow_nonconvex, theta0, progress, use_scipy, param_tol)
     cert = out["certificate"]
     return FitResult(params=out["params"], objective=float(out["objective"]), term_values=tuple(out["term_values"]),
                      status=out["status"], backend="numpy", method=out["method"],
                      certificate=Certificate(cert["kind"], cert["absolute"], cert["relative"], cert["tolerance"],
-                                             cert["note"]),
+                                             cert["note"], distance=cert["distance"], curvature=cert["curvature"],
+                                             distance_note=cert["distance_note"],
+                                             param_tolerance=cert["param_tolerance"],
+                                             weights_distance=cert.get("weights_distance")),
                      iterations=int(out["iterations"]), passes=int(out["passes"]), seconds=float(out["seconds"]),
                      extra={"theta": out["theta"], "input_names": out["input_names"]})

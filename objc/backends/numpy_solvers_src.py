@@ -96,6 +96,7 @@ class _RowTerm:
         self.loss, self.role, self.options = table.get("loss"), table.get("role"), table.get("options", {})
         self.prox_kernel, self.conj_kernel = table.get("prox"), table.get("conjugate")
         self.lipschitz = table.get("lipschitz")
+        self.curv_floor = table.get("curv_floor")  # the catalog's least l'' over an interval, if known
         self.positive = rho > 0.0
         self.all_positive = bool(np.all(self.positive))
 
@@ -309,8 +310,12 @@ def build_problem(spec, X, y, weights, input_names, tunables=None):
     for table in spec["terms"]:
         coef = float(table["coefficient"](pb.tun))
         if table["kind"] == "rows":
-            rho = coef * c / total_c if table["aggregate"] == "mean" else coef * c
+            rho = coef * c / total_c if table["aggregate"] == "mean" else (
+                coef * c / n if table["aggregate"] == "perrow" else coef * c)
             pb.row_terms.append(_RowTerm(table, rho, y))
+            # settings given by tunables (huber's d = delta, ...) at this fit's values
+            pb.row_terms[-1].options = dict(pb.row_terms[-1].options, **{
+                k: pb.tun[name] for k, name in table.get("tuned_options", {}).items()})
         elif table["kind"] == "params":
             idx = _theta_indices(pb, table["param"], table["entries"])
             pb.penalties.append(_Penalty(table, idx, coef))
@@ -781,6 +786,429 @@ def certificate(pb, ev, P, residual):
     return "optimality residual", residual
 
 
+# ---------------------------------------------------------------- distance to the optimum
+#
+# A small duality gap bounds P(theta) - P*, not theta - theta*: on an ill-conditioned table a relative gap
+# of 1e-6 leaves the weights off by 1e-3. Where the objective F is mu-strongly convex, three bounds on
+# D = ||theta - theta*|| hold (theta* the minimizer, 0 in the subdifferential there):
+#
+# (gap)  F(theta) - F* >= (mu / 2) D^2, so D <= sqrt(2 gap / mu)  (Boyd & Vandenberghe 2004, Convex
+#        Optimization, sec. 9.1.2). The gap bottoms out at rounding (~1e-16 |P|), so with mu = 1e-4 this
+#        cannot reach 1e-6.
+# (subgradient)  for v in the subdifferential at theta, <v - 0, theta - theta*> >= mu D^2 (strong
+#        monotonicity), so D <= ||v|| / mu  (Nesterov 2004, Kluwer,
+#        Thm 2.1.10, for the gradient). Here v = A^T (rho d) + grad R(theta) + (l1, bounds, groups), and a
+#        nonsmooth row's d_i is only an eps_i-subgradient of phi_i at s_i, eps_i = phi_i(s_i) + phi_i*(d_i)
+#        - d_i s_i (Fenchel-Young). The curvature comes from smooth pieces whose derivatives are exact, so
+#        F(t') >= F(t) + <v, t' - t> - eps + (mu/2)||t' - t||^2 with eps = sum_i rho_i eps_i; adding
+#        F(t) >= F* + (mu/2) D^2 at t' = theta* gives mu D^2 <= ||v|| D + eps, that is
+#        D <= (||v|| + sqrt(||v||^2 + 4 mu eps)) / (2 mu)  (= ||v|| / mu when eps = 0).
+# (ball)  when mu(r) is a modulus only on the ball B(theta, r) (a logistic loss flattens far out), either
+#        bound above, computed with mu(r), still holds when it comes out below r. Along the ray from theta
+#        to theta*, g(t) = F(theta + t u): g is convex with its minimum at t = D, so g is nonincreasing on
+#        [0, D]. For t1 = min(r, D): g(t1) >= g(0) - t1 ||v|| - eps + mu t1^2 / 2 (the inequality above,
+#        inside the ball), and g(0) >= g(t1) + mu t1^2 / 2 (strong convexity on [0, t1] with g'(t1) <= 0);
+#        so mu t1^2 <= t1 ||v|| + eps, t1 <= the subgradient bound b. If b < r then t1 < r, so t1 = D <= b.
+#        For the gap bound: h(t) = F(theta* + t u) - F* is convex, nondecreasing on [0, D], and strongly
+#        convex on [D - min(r, D), D]; so gap >= h(D) >= mu min(r, D)^2 / 2, and sqrt(2 gap / mu) < r
+#        forces min(r, D) = D.
+#
+# mu: with Hessian >= diag(beta) + A^T D A, where beta holds the ridge weights (2c for c * l2sq) and D the
+# rows' curvature floors (the catalog's `curv_floor` of each loss over the interval the row's score can
+# reach inside the ball, |s_i' - s_i| <= ||a_i|| r), a cheap lower bound on the smallest eigenvalue for
+# the standard score s = (X - 1 m^T) w + b' (rows a_i = (x_ci, 1)) is the larger of two 2x2 eigenvalues.
+# For a unit direction (a, c) with u = ||a||, v = |c|, S = sum d_i, sigma^2 = sum d_i ||x_ci||^2 (Frobenius,
+# >= ||D^1/2 X_c||_2^2) and gamma = ||X_c^T d||:
+#   q(a, c) >= beta_w u^2 + beta_b v^2 + max(0, sqrt(S) v - sigma u)^2   (triangle inequality), and
+#   q(a, c) >= beta_w u^2 + (beta_b + S) v^2 - 2 gamma u v              (X_c^T D X_c >= 0, Cauchy-Schwarz);
+# the second is the quadratic form of [[beta_w, -gamma], [-gamma, beta_b + S]]; the first is the form of
+# [[beta_w + sigma^2, -sqrt(S) sigma], [-sqrt(S) sigma, beta_b + S]] where sqrt(S) v >= sigma u, and
+# beta_w u^2 + beta_b v^2 elsewhere, which is >= that form's least eigenvalue at the boundary when
+# beta_w >= beta_b and >= beta_w otherwise.
+#
+# The solver works in centred coordinates (w, b' = b + m.w) for a free intercept; the user's are
+# (w, b) = T (w, b') with T = [[I, 0], [-m^T, 1]], so their error is at most ||T||_2 times ours, with
+# ||T||_2^2 = (2 + q^2 + q sqrt(4 + q^2)) / 2, q = ||m|| (the eigenvalues of T^T T on span(m, e_b)).
+
+def _analysis_frame(pb, s):
+    """The coordinates the modulus is proved in, formed once per fit (one pass on a dense table, two on a
+    sparse one).
+
+    With a free intercept: (w, b + c.w), c the mean of the rows weighted by their curvature d_ref at the
+    first check, so that X_c^T d_ref = 0 and the weights-intercept block of the Hessian bound nearly
+    vanishes (any c gives a valid bound; this one makes it tight; a penalized intercept keeps c = 0, since
+    moving it would mix the ridge weights). Holds c, d_ref, ||x_i - c|| and ||a_i|| (the score map's rows)."""
+    frame = getattr(pb, "frame", None)
+    if frame is not None:
+        return frame
+    c, d_ref = None, None
+    if pb.b_index is not None and pb.beta[pb.b_index] == 0.0:
+        d_ref = _row_curvature(pb, s, np.zeros(pb.n))
+        total = float(np.sum(d_ref)) if d_ref is not None else 0.0
+        if not total > 0.0:
+            d_ref = None
+    X = pb.X
+    if d_ref is not None and not _is_sparse(X):
+        # one pass for both: X^T d_ref block by block, and ||x_i - m|| about the solver's own centre m,
+        # then ||x_i - c|| <= ||x_i - m|| + ||m - c|| (triangle inequality). Every use of the row norms
+        # wants an upper bound (sigma, gamma and the reach only grow with them), so the bound stays valid
+        m = pb.center if pb.center is not None else np.zeros(pb.p)
+        acc, sq = np.zeros(pb.p), np.empty(pb.n)
+        chunk = max(1, (8 << 20) // (8 * pb.p))
+        for first in range(0, pb.n, chunk):
+            block = X[first:first + chunk]
+            acc += block.T @ d_ref[first:first + chunk]
+            block = block - m
+            sq[first:first + chunk] = np.einsum("ij,ij->i", block, block)
+        pb.passes += 1
+        c = acc / total
+        gap_mc = float(np.sqrt(np.dot(m - c, m - c)))
+        xnorm = np.sqrt(sq) + gap_mc * (1.0 + 1e-15) + 1e-15 * np.sqrt(sq)  # the sums' rounding, allowed for
+        frame = {"c": c, "d_ref": d_ref, "xnorm": xnorm,
+                 "reach": np.sqrt(xnorm * xnorm + (1.0 if pb.b_index is not None else 0.0))}
+        pb.frame = frame
+        return frame
+    if d_ref is not None:
+        pb.passes += 1
+        c = np.asarray(X.T @ d_ref, dtype=np.float64).ravel() / total
+    if _is_sparse(X):
+        sq = np.asarray(X.multiply(X).sum(axis=1), dtype=np.float64).ravel()
+        if c is not None:  # the expansion can cancel: add its rounding allowance so it stays an upper bound
+            xc = np.asarray(X @ c, dtype=np.float64).ravel()
+            cc = float(np.dot(c, c))
+            sq = np.maximum(sq - 2.0 * xc + cc, 0.0) + 1e-14 * (sq + 2.0 * np.abs(xc) + cc)
+            pb.passes += 1
+    else:  # centred block by block: nothing cancels, and no copy of the whole table
+        sq = np.empty(pb.n)
+        chunk = max(1, (8 << 20) // (8 * pb.p))
+        for first in range(0, pb.n, chunk):
+            block = X[first:first + chunk]
+            if c is not None:
+                block = block - c
+            sq[first:first + chunk] = np.einsum("ij,ij->i", block, block)
+    pb.passes += 1
+    frame = {"c": c, "d_ref": d_ref, "xnorm": np.sqrt(sq),
+             "reach": np.sqrt(sq + (1.0 if pb.b_index is not None else 0.0))}
+    pb.frame = frame
+    return frame
+
+
+def _row_curvature(pb, s, reach):
+    """d_i, a lower bound on the second derivative in the score of row i's terms (rho included) wherever
+    row i's score lies within reach_i of s_i, from the catalog's curvature floors; None when a row term
+    has no curvature fact (a loss the spec defines) or a negative weight."""
+    d = np.zeros(pb.n)
+    for term in pb.row_terms:
+        floor_fn = term.curv_floor
+        if floor_fn is None or np.any(term.rho < 0):
+            return None
+        y = term.y
+        with np.errstate(invalid="ignore", over="ignore"):
+            if term.role == "margin":  # phi(s) = l(y s): phi'' = y^2 l''(y s); m moves by |y| |ds|
+                m, spread = y * s, np.where(y != 0.0, np.abs(y) * reach, 0.0)
+                floor = y * y * floor_fn(m - spread, m + spread, **term.options)
+            elif term.role == "residual":  # phi(s) = l(y - s): phi'' = l''(y - s)
+                res = y - s
+                floor = floor_fn(res - reach, res + reach, **term.options)
+            else:
+                return None
+        floor = np.where(np.isfinite(floor) & (floor > 0.0), floor, 0.0)
+        d += term.rho * floor
+    return d
+
+
+def _least_eigenvalue_2x2(a, b, c):
+    """The smaller eigenvalue of [[a, -b], [-b, c]] (a, c >= 0), as det / the larger one."""
+    big = 0.5 * (a + c) + math.sqrt(0.25 * (a - c) ** 2 + b * b)
+    return (a * c - b * b) / big if big > 0 else 0.0
+
+
+def _modulus(pb, frame, d):
+    """A strong-convexity modulus from the ridge weights and the rows' curvature d, in the frame's
+    coordinates (the argument above); gamma is bounded without a pass: X_c^T d_ref = 0 by the choice of
+    c (up to rounding, allowed for), so ||X_c^T d|| <= sum_i |d_i - d_ref_i| ||x_ci||."""
+    beta = pb.beta
+    beta_w = float(np.min(beta[pb.w_index]))
+    if pb.b_index is None:
+        return beta_w  # A^T D A >= 0 adds nothing provable cheaply without an intercept
+    beta_b = float(beta[pb.b_index])
+    xnorm = frame["xnorm"]
+    S = float(np.sum(d))
+    sigma2 = float(np.dot(d, xnorm * xnorm))
+    det = beta_w * beta_b + beta_w * S + beta_b * sigma2  # of the first matrix, expanded: nothing cancels
+    big = 0.5 * (beta_w + sigma2 + beta_b + S) + math.sqrt(0.25 * (beta_w + sigma2 - beta_b - S) ** 2 + S * sigma2)
+    first = det / big if big > 0 else 0.0
+    if beta_w < beta_b:
+        first = min(first, beta_w)
+    second = 0.0
+    if frame["d_ref"] is not None and S > 0:
+        d_ref = frame["d_ref"]
+        gamma = float(np.dot(np.abs(d - d_ref), xnorm)) + 1e-14 * float(np.dot(d_ref, xnorm))
+        second = _least_eigenvalue_2x2(beta_w, gamma, beta_b + S)
+    return max(first, second, 0.0)
+
+
+def _least_subgradient(pb, theta, grad):
+    """The minimum-norm element of the subdifferential at theta of the whole objective, given the gradient
+    of its smooth part: coordinate-wise for l1 weights and bounds (at a zero coordinate the soft
+    threshold of the gradient; a bound adds its normal cone), per group for group norms. None where a
+    norm ball leaves only the gap bound."""
+    if pb.l1_balls or pb.l2_balls or pb.other_nonsmooth:
+        return None
+    a = pb.alpha
+    zero = theta == 0.0
+    low = np.where(zero, grad - a, grad + a * np.sign(theta))
+    high = np.where(zero, grad + a, low)
+    low = np.where(theta <= pb.lo, -np.inf, low)   # at a lower bound the cone adds (-inf, 0]
+    high = np.where(theta >= pb.hi, np.inf, high)  # at an upper bound [0, inf)
+    v = np.clip(0.0, low, high)
+    for idx, lam in pb.groups:
+        if np.any(a[idx] > 0):
+            return None
+        th, g = theta[idx], grad[idx]
+        norm = float(np.sqrt(np.dot(th, th)))
+        if norm > 0:
+            v[idx] = g + lam * th / norm
+        else:
+            gn = float(np.sqrt(np.dot(g, g)))
+            v[idx] = g * max(0.0, 1.0 - lam / gn) if gn > 0 else 0.0
+    return v
+
+
+def _subgradient_slack(pb, s, derivs):
+    """eps = sum_i rho_i (phi_i(s_i) + phi_i*(d_i) - d_i s_i) over the rows whose d_i is not the catalog's
+    derivative at s_i (those rows' d_i are eps_i-subgradients, Fenchel-Young); None when such a row's
+    term has no conjugate or d_i lies outside its domain."""
+    eps = 0.0
+    for term, d in zip(pb.row_terms, derivs):
+        value, exact = term.value_and_derivative(s, pb.cols, pb.tun)
+        off = (d != exact) & (term.rho != 0.0)
+        if not np.any(off):
+            continue
+        if term.conj_kernel is None:
+            return None
+        with np.errstate(all="ignore"):
+            fy = value[off] + term.conjugate_rows(d[off], off) - d[off] * s[off]
+        if not np.all(np.isfinite(fy)):
+            return None
+        eps += float(np.sum(np.abs(term.rho[off]) * np.maximum(fy, 0.0)))
+    return eps
+
+
+def _shift_norm(c):
+    """||T||_2 for T = [[I, 0], [-c^T, 1]], the map (w, b + c.w) -> (w, b); 1 for no shift."""
+    if c is None:
+        return 1.0
+    q = float(np.sqrt(np.dot(c, c)))
+    return math.sqrt(0.5 * (2.0 + q * q + q * math.sqrt(4.0 + q * q)))
+
+
+def _coordinate_factor(pb):
+    """||T||_2 from the solver's centred coordinates to the user's (1 without centring)."""
+    return _shift_norm(pb.center)
+
+
+def _gradient_in(pb, grad, c):
+    """The gradient in the coordinates (w, b + c.w) from the solver's (w, b + m.w), m its centre: only
+    the weights' part moves, by (m - c) times the intercept's."""
+    if pb.b_index is None:
+        return grad
+    m = pb.center if pb.center is not None else 0.0
+    shift = m - (c if c is not None else 0.0)
+    if np.all(np.asarray(shift) == 0.0):
+        return grad
+    out = grad.copy()
+    out[pb.w_index] = grad[pb.w_index] + shift * grad[pb.b_index]
+    return out
+
+
+def _gram_modulus(pb):
+    """The least eigenvalue of the exact Hessian H + diag(beta) of a squared-loss problem held as a Gram
+    matrix, less a rounding allowance (the eigensolver is backward stable: its eigenvalues are exact for
+    a matrix within a few size x eps x ||H|| of H; forming H from X rounds by about sqrt(n) eps ||H||)."""
+    G = pb.gram
+    if "modulus" not in G:
+        H = G["H"] + np.diag(pb.beta)
+        if H.shape[0] > 600:
+            G["modulus"] = 0.0
+        else:
+            least = float(np.linalg.eigvalsh(H)[0])
+            allowance = 10.0 * (H.shape[0] + math.sqrt(pb.n)) * 2.2e-16 * float(np.sqrt(np.sum(H * H)))
+            G["modulus"] = max(least - allowance, 0.0)
+    return G["modulus"]
+
+
+def distance_certificate(pb, theta, P, gap, s=None, derivs=None, Atu=None, grad=None):
+    """A bound on ||theta - theta*|| in the user's coordinates (theta in the solver's own): returns
+    (bound or None, mu or None, note, residual) with residual the norm of the least subgradient in the
+    user's coordinates (the optimality residual reported where no bound is proved). `derivs`/`Atu` give
+    the dual point the certificate used (a nonsmooth row's derivative there counts with its
+    Fenchel-Young slack); `grad` the exact gradient of a smooth objective (the Gram path)."""
+    if not pb.standard:
+        pb.last_least_subgradient = None
+        return None, None, "no bound: the score is not of the form w . x + b", None
+    eps = 0.0
+    u_rows, frame = None, None
+    gram = getattr(pb, "gram", None) is not None and grad is not None
+    if grad is None:
+        if s is None:
+            s = score(pb, theta)
+        fresh = []
+        for k, term in enumerate(pb.row_terms):
+            d = None if derivs is None else derivs[k]
+            if term.smooth or d is None:  # a smooth row's own derivative at s: exact, no slack
+                exact = term.value_and_derivative(s, pb.cols, pb.tun)[1]
+                d = exact if d is None or not np.array_equal(d, exact) else d
+            fresh.append(d)
+        if Atu is None or derivs is None or any(a is not b for a, b in zip(fresh, derivs)):
+            Atu = adjoint(pb, dual_adjoint_inputs(pb, fresh))
+        eps = _subgradient_slack(pb, s, fresh)
+        grad = Atu + smooth_penalties(pb, theta)[1]
+        u_rows = dual_adjoint_inputs(pb, fresh)
+    v_int = _least_subgradient(pb, theta, grad)
+    pb.last_least_subgradient = v_int  # the run's curvature estimate reads it where no bound is proved
+    v_user = None if v_int is None else _least_subgradient(pb, theta, _gradient_in(pb, grad, None))
+    residual = None if v_user is None else float(np.sqrt(np.dot(v_user, v_user)))
+    # the gap is a difference of two sums rounded to about eps |P| each: allow for that
+    gap = max(gap, 0.0) + 1e-15 * abs(P) if np.isfinite(gap) else math.inf
+    if not gram:
+        if s is None:
+            s = score(pb, theta)
+        frame = _analysis_frame(pb, s)
+    # the computed gradient is off the exact one by at most g_round, and the least subgradient moves with
+    # it by no more (a projection of 0 onto a box or ball shifted by the gradient): add it to ||v||
+    g_round = _gradient_rounding(pb, theta, grad, u_rows, frame)
+
+    def bounds(mu, v):
+        """(subgradient bound, gap bound) for a modulus mu and the least subgradient v (its frame's)."""
+        if not mu > 0:
+            return math.inf, math.inf
+        sub = math.inf
+        if v is not None and eps is not None:
+            norm = float(np.sqrt(np.dot(v, v))) + g_round
+            sub = (norm + math.sqrt(norm * norm + 4.0 * mu * eps)) / (2.0 * mu)
+        return sub, math.sqrt(2.0 * gap / mu)
+
+    def better(best, mu, v, factor, ball, source):
+        sub, by_gap = bounds(mu, v)
+        kind = "subgradient" if sub <= by_gap else "gap"
+        value = min(sub, by_gap)
+        if ball is not None and not value < ball:
+            return best, value
+        if value * factor < best[0]:
+            return (value * factor, mu, kind, factor, ball, source), value
+        return best, value
+
+    best = (math.inf, None, "", 1.0, None, "")
+    pb.last_rounding = None
+    if gram:
+        best, _ = better(best, _gram_modulus(pb), v_int, _coordinate_factor(pb), None,
+                         "the least eigenvalue of the exact Hessian (the Gram matrix), less a rounding allowance")
+    else:
+        c = frame["c"]
+        v = None if v_int is None else _least_subgradient(pb, theta, _gradient_in(pb, grad, c))
+        factor = _shift_norm(c)
+        d_all = _row_curvature(pb, s, np.full(pb.n, np.inf))
+        everywhere = d_all is not None and np.any(d_all > 0)
+        source = ("the ridge weights and the loss's curvature floor on the data" if everywhere
+                  else "the ridge weights on every learned parameter")
+        best, _ = better(best, _modulus(pb, frame, d_all if d_all is not None else np.zeros(pb.n)), v, factor,
+                         None, source)
+        d0 = _row_curvature(pb, s, np.zeros(pb.n))
+        if d0 is not None and pb.b_index is not None and np.any(d0 > (d_all if d_all is not None else 0.0)):
+            # curvature that holds near the answer only: prove it on a ball, grown until the bound fits
+            r = max(2.0 * min(bounds(_modulus(pb, frame, d0), v)), 1e-300)
+            for _ in range(6):
+                if not np.isfinite(r):
+                    break
+                mu_r = _modulus(pb, frame, _row_curvature(pb, s, frame["reach"] * r))
+                best, value = better(best, mu_r, v, factor, r, "the ridge weights and the loss's curvature floor "
+                                     f"over a ball of radius {r:.2g} around the answer")
+                if value < r:
+                    break
+                r = 4.0 * value
+    bound, mu, kind, factor, ball, source = best
+    pb.last_weights_bound = None
+    if not np.isfinite(bound):
+        reason = _no_bound_reason(pb, v_int, eps)
+        weights = _weights_bound(pb, gap)
+        if weights is not None:
+            pb.last_weights_bound = weights[0]
+            reason += (f"; certified for the weights alone: ||w - w*|| <= {weights[0]:.3g} by sqrt(2 gap / mu), "
+                       f"mu = {weights[1]:.3g} from the ridge weights on w (the intercept is not covered)")
+        return None, None, reason, residual
+    # the figure's rounding level: the least either bound can show when the gradient is only known up to
+    # g_round and the gap up to its 1e-15 |P| allowance
+    pb.last_rounding = factor * min(g_round / mu, math.sqrt(2e-15 * abs(P) / mu))
+    text = {"subgradient": "||v|| / mu, v the least subgradient" + (" (with its Fenchel-Young slack)" if eps else ""),
+            "gap": "sqrt(2 gap / mu)"}[kind]
+    note = f"certified: {text}; mu = {mu:.3g} from {source}"
+    if factor > 1.0 + 1e-12:
+        note += f"; times {factor:.4g}, the norm of the change of intercept coordinates"
+    return bound, mu, note, residual
+
+
+def _weights_bound(pb, gap):
+    """(bound on ||w - w*||, mu) for a free intercept with a ridge weight on every weight, else None.
+
+    F(w, b) = G(w, b) + (mu/2)||w||^2 with G convex (the rows' loss and the other ridge weights' excess over
+    mu) is strongly convex in w alone: F(theta) >= F(theta*) + <g, theta - theta*> + (mu/2)||w - w*||^2 for g
+    in the subdifferential at theta*, where 0 lies (Boyd & Vandenberghe 2004, Convex Optimization, sec. 9.1.2,
+    applied to the seminorm ||w||). So ||w - w*|| <= sqrt(2 gap / mu) whatever the intercept does; the
+    weights are the same in the solver's coordinates and the user's (only the intercept moves)."""
+    if pb.b_index is None or not pb.standard or not np.isfinite(gap):
+        return None
+    mu = float(np.min(pb.beta[pb.w_index])) if len(pb.beta[pb.w_index]) else 0.0
+    if not mu > 0:
+        return None
+    return math.sqrt(2.0 * gap / mu), mu
+
+
+def _gradient_rounding(pb, theta, grad, u, frame):
+    """A bound on the rounding error of the computed gradient's norm. A sum of k terms is off by at most
+    k u times the sum of their magnitudes in the worst case (Higham 2002, Accuracy and Stability of
+    Numerical Algorithms, 2nd ed., sec. 3.1), which at 1e5 rows already exceeds a 1e-6 distance; with
+    rounding errors independent and of mean zero it is off by at most lambda sqrt(k) u times that sum
+    with probability at least 1 - 2k exp(-lambda^2 / 2) (Higham & Mary 2019, SIAM J. Sci. Comput. 41(5),
+    A new approach to probabilistic rounding error analysis, Thm 2.4; recalled from memory). lambda = 10
+    here: a failure probability below 1e-20 per term. The Gram path sums n terms into H and q, then size
+    terms into H theta - q; the data path n terms u_i a_i, with ||a_i|| <= ||x_i - c|| + ||c|| + ||m|| + 1
+    (c the frame's centre, m the solver's). 0 where nothing is known (u and the Gram matrix both missing)."""
+    unit = 2.0 ** -53
+
+    def per_term(k):
+        return 10.0 * math.sqrt(k) * unit
+
+    pgrad = smooth_penalties(pb, theta)[1]
+    extra = float(np.sqrt(np.dot(pgrad, pgrad))) + float(np.sqrt(np.dot(grad, grad)))
+    if u is None:
+        G = getattr(pb, "gram", None)
+        if G is None or frame is not None:
+            return 0.0  # nothing known: never blame rounding
+        scale = float(np.sqrt(np.sum(G["H"] * G["H"]))) * float(np.sqrt(np.dot(theta, theta))) + \
+            float(np.sqrt(np.dot(G["q"], G["q"])))
+        return (per_term(pb.n) + per_term(pb.size + 1)) * (scale + extra)
+    shift = 1.0
+    for c in (frame["c"], pb.center):
+        if c is not None:
+            shift += float(np.sqrt(np.dot(c, c)))
+    scale = float(np.dot(np.abs(u), frame["xnorm"] + shift))
+    return per_term(pb.n + 1) * (scale + extra)
+
+
+def _no_bound_reason(pb, v, eps):
+    if v is None:
+        return "no bound: a norm-ball constraint leaves only the duality gap, and no curvature is known"
+    if eps is None:
+        return "no bound: a nonsmooth row term has no conjugate to price its subgradient"
+    if any(t.curv_floor is None for t in pb.row_terms) and not np.all(pb.beta > 0):
+        return "no bound: a row term has no curvature fact (a loss the spec defines) and not every parameter has a ridge weight"
+    if not np.all(pb.beta[pb.w_index] > 0):
+        return "no bound: not every weight has a ridge weight, so nothing proves strong convexity in all of them"
+    return ("no bound: the intercept is free and the loss has no curvature on the data (flat, or flat where "
+            "the rows lie)")
+
+
 # ---------------------------------------------------------------- L-BFGS
 
 def _two_loop(grad, memory):
@@ -859,19 +1287,118 @@ def lbfgs_scipy(fun, theta0, stop, max_iter, bounds=None):
 class _Run:
     """Bookkeeping shared by the methods: passes budget, progress, the best certified point."""
 
-    def __init__(self, pb, tol, max_passes, progress):
+    def __init__(self, pb, tol, max_passes, progress, param_tol=None):
         self.pb, self.tol, self.max_passes, self.progress = pb, tol, max_passes, progress
         self.iterations, self.cert_kind, self.cert_abs, self.objective = 0, None, math.inf, math.inf
         self.theta = None
         self.smoothing = None
+        self.param_tol = param_tol
+        self.distance = None   # (bound or None, mu or None, note, residual) of the kept point, once formed
+        self.checks = []       # the distance figure of each point that passed the gap, in order
+        self.floors = []       # the rounding level of each figure (None where unknown)
+        self.window = 20       # checks without progress before a stall is declared; a method may lengthen it
+        self.stop_reason = None
+        self.distance_floor = None  # the rounding level of the kept point's figure, where known
 
-    def record(self, theta, P, kind, absolute):
+    def record(self, theta, P, kind, absolute, s=None, derivs=None, Atu=None, grad=None, final=False):
+        """Keep the point if it is the best so far; True when the run may stop: the relative certificate
+        is within tol and, with a parameter tolerance, the distance to the optimum is within it (certified
+        where a bound exists, else estimated), or stopped improving (rounding), or `final` says no better
+        point can come (an exact finish)."""
         self.iterations += 1
-        if self.theta is None or absolute <= self.cert_abs or not np.isfinite(self.cert_abs):
+        passed = relative(absolute, P) <= self.tol
+        check = None
+        if passed and self.param_tol is not None:
+            check = self.distance_check(theta, P, absolute, s, derivs, Atu, grad)
+        kept_passed = self.theta is not None and relative(self.cert_abs, self.objective) <= self.tol
+        if passed and check is not None:
+            keep = not kept_passed or self.distance is None or check[0] <= self._figure(self.distance)
+        elif passed:
+            keep = not kept_passed or absolute <= self.cert_abs
+        else:
+            keep = not kept_passed and (self.theta is None or absolute <= self.cert_abs or
+                                        not np.isfinite(self.cert_abs))
+        if keep:
             self.theta, self.objective, self.cert_kind, self.cert_abs = np.array(theta, copy=True), P, kind, absolute
+            self.distance = None if check is None else check[1]
+            self.distance_floor = None if check is None else check[2]
         if self.progress is not None:
             self.progress(self.pb.passes, P, relative(absolute, P))
-        return relative(absolute, P) <= self.tol
+        if not passed:
+            return False
+        if check is None or final:
+            return True
+        figure = check[0]
+        self.checks.append(figure)
+        self.floors.append(check[2])
+        if figure <= self.param_tol:
+            return True
+        return self._stalled()
+
+    def _stalled(self):
+        """True, with `stop_reason` set, when the figure has not bettered the best before by a tenth over
+        the last `window` checks (the figure of a converging run is noisy, so a shorter window stops runs
+        that still progress). Rounding is blamed only when the best figure is within ten times its
+        rounding level (`_gradient_rounding`; the ten is our own margin); a stall above
+        that level waits five windows, then stops and says the method stalled."""
+        checks, window = self.checks, self.window
+        if len(checks) <= window or min(checks[-window:]) < 0.9 * min(checks[:-window]):
+            return False
+        best = min(range(len(checks)), key=checks.__getitem__)
+        floor = self.floors[best]
+        if floor is not None and checks[best] <= 10.0 * floor:
+            self.stop_reason = (f"the figure stopped improving at its rounding level ({checks[best]:.2g}, within ten "
+                                f"times the rounding of the gradient and gap, {floor:.2g})")
+            return True
+        if len(checks) <= 5 * window or min(checks[-5 * window:]) < 0.9 * min(checks[:-5 * window]):
+            return False
+        level = (f"more than ten times its rounding level {floor:.2g}" if floor is not None
+                 else "an uncertified estimate, whose rounding level is not known")
+        self.stop_reason = (f"the figure stopped improving over {5 * window} checks at {checks[best]:.2g}, {level}: "
+                            "the method stalled, not rounding")
+        return True
+
+    @staticmethod
+    def _figure(distance):
+        """What the stop compares with param_tol: the proved bound, else ten times the estimate (the
+        secants overestimate the least curvature, so the estimate runs low; a factor of ten is our own
+        margin, with no source: on the test tables it kept the weights within the tolerance). Where only
+        the weights have a proved bound (a free intercept, a flat loss), that bound too must pass."""
+        bound, estimate, weights = distance[0], distance[4], distance[5]
+        if bound is not None:
+            return bound
+        guess = 10.0 * estimate if estimate is not None else math.inf
+        if weights is not None:
+            return max(weights, guess) if estimate is not None else weights
+        return guess
+
+    def distance_check(self, theta, P, gap, s, derivs, Atu, grad):
+        """(figure compared with param_tol, the distance record). Without a proved bound the figure is an
+        estimate, ||v|| / mu_hat, with mu_hat the least curvature seen along the last steps (secants of
+        the least subgradient): uncertified, and said so."""
+        pb = self.pb
+        with np.errstate(all="ignore"):
+            bound, mu, note, residual = distance_certificate(pb, theta, P, gap if pb.use_gap else math.inf, s, derivs,
+                                                             Atu, grad)
+        estimate = None
+        if bound is None and residual is not None:
+            last = getattr(self, "_last_subgradient", None)
+            v_now = getattr(pb, "last_least_subgradient", None)
+            if last is not None and v_now is not None:
+                step = theta - last[0]
+                ss = float(np.dot(step, step))
+                if ss > 0:
+                    curv = float(np.dot(v_now - last[1], step)) / ss
+                    if curv > 0:
+                        self._mu_hat = min(getattr(self, "_mu_hat", math.inf), curv)
+            if v_now is not None:
+                self._last_subgradient = (np.array(theta, copy=True), v_now)
+            mu_hat = getattr(self, "_mu_hat", None)
+            if mu_hat is not None:
+                estimate = residual / mu_hat
+        record = (bound, mu, note, residual, estimate, getattr(pb, "last_weights_bound", None))
+        floor = getattr(pb, "last_rounding", None) if bound is not None else None
+        return self._figure(record), record, floor
 
     def note(self, P):
         """An iteration whose certificate was not formed (progress gets None for it)."""
@@ -940,12 +1467,93 @@ def method_lbfgs(run, theta0, use_scipy):
             run.note(P)
             return False
         kind, absolute = certificate(pb, ev, P, float(np.sqrt(np.dot(ev.grad, ev.grad))))
-        return run.record(ev.theta, P, kind, absolute)
+        return run.record(ev.theta, P, kind, absolute, s=ev.s, derivs=ev.derivs, Atu=ev.Atu)
 
     theta, _, status = _lbfgs_driver(run, theta0, 0.0, inner_stop, use_scipy)
     if run.theta is None or done["skipped"]:
         inner_stop(evaluate_smooth(pb, theta), force=True)
+    if _polish_wanted(run) and newton_polish(run, lambda ev: inner_stop(ev, force=True)):
+        return "converged"
     return status
+
+
+def _polish_wanted(run):
+    """The kept point misses the parameter tolerance (or the gap) and an exact Hessian is at hand: a
+    standard score, every row term with a curvature fact, ridge as the only smooth penalty."""
+    pb = run.pb
+    if run.param_tol is None or run.theta is None or run.out_of_passes() or not pb.standard or pb.other_smooth:
+        return False
+    if pb.size > 2000 or any(t.curv_floor is None for t in pb.row_terms):
+        return False
+    passed = relative(run.cert_abs, run.objective) <= run.tol
+    return not passed or run.distance is None or run._figure(run.distance) > run.param_tol
+
+
+def _newton_hessian(pb, s):
+    """The exact Hessian A^T D A + diag(beta) in the solver's coordinates (one pass), with D the rows'
+    second derivatives: the catalog's least l'' over the one-point interval [s_i, s_i] is l''(s_i)
+    (tests/test_catalog.py checks that fact by finite differences). None without a curvature fact."""
+    d = _row_curvature(pb, s, np.zeros(pb.n))
+    if d is None:
+        return None
+    w, m, X = pb.w_index, pb.center, pb.X
+    if _is_sparse(X):
+        Hww = np.asarray((X.T @ X.multiply(d[:, None])).todense(), dtype=np.float64)
+        h = np.asarray(X.T @ d, dtype=np.float64).ravel()
+        if m is not None:  # (X - 1 m^T)^T D (X - 1 m^T), expanded
+            Hww = Hww - np.outer(m, h) - np.outer(h, m) + float(np.sum(d)) * np.outer(m, m)
+            h = h - m * float(np.sum(d))
+    else:
+        Hww, h = np.zeros((pb.p, pb.p)), np.zeros(pb.p)
+        chunk = max(1, (8 << 20) // (8 * pb.p))  # one block of at most 8 MB copied at a time
+        for first in range(0, pb.n, chunk):
+            block = X[first:first + chunk]
+            if m is not None:
+                block = block - m
+            dd = d[first:first + chunk]
+            Hww += (block * dd[:, None]).T @ block
+            h += block.T @ dd
+    pb.passes += 1
+    H = np.zeros((pb.size, pb.size))
+    H[np.ix_(w, w)] = Hww
+    if pb.b_index is not None:
+        H[w, pb.b_index] = H[pb.b_index, w] = h
+        H[pb.b_index, pb.b_index] = float(np.sum(d))
+    return H + np.diag(pb.beta)
+
+
+def newton_polish(run, stop, steps=4):
+    """A few Newton steps from the kept point, accepted on a decrease of the gradient's norm rather than
+    of the objective: near the optimum the objective's changes fall below its rounding (L-BFGS-B's line
+    search then gives up) while the gradient still carries digits. Newton's method converges
+    quadratically there (Nocedal & Wright 2006, Numerical Optimization, Thm 3.5). `stop(ev)` certifies a
+    point (the run keeps the better one) and says whether the run may end."""
+    pb = run.pb
+    ev = evaluate_smooth(pb, np.array(run.theta, copy=True))
+    norm = float(np.sqrt(np.dot(ev.grad, ev.grad)))
+    for _ in range(steps):
+        if run.out_of_passes() or not norm > 0:
+            return False
+        H = _newton_hessian(pb, ev.s)
+        if H is None:
+            return False
+        try:
+            delta = -np.linalg.solve(H, ev.grad)
+        except np.linalg.LinAlgError:
+            delta = -np.linalg.lstsq(H, ev.grad, rcond=None)[0]
+        for _halving in range(4):
+            with np.errstate(over="ignore", invalid="ignore"):
+                trial = evaluate_smooth(pb, ev.theta + delta)
+            trial_norm = float(np.sqrt(np.dot(trial.grad, trial.grad)))
+            if np.isfinite(trial.f) and trial_norm < norm:
+                break
+            delta = 0.5 * delta
+        else:
+            return False
+        ev, norm = trial, trial_norm
+        if stop(ev):
+            return True
+    return False
 
 
 def method_fista(run, theta0, mu=0.0, inner_stop=None):
@@ -978,7 +1586,7 @@ def method_fista(run, theta0, mu=0.0, inner_stop=None):
         if inner_stop is not None:
             if inner_stop(ev, x_new, P_new, kind, absolute):
                 return "converged"
-        elif run.record(x_new, P_new, kind, absolute):
+        elif run.record(x_new, P_new, kind, absolute, s=s_new):
             return "converged"
         if run.out_of_passes():
             return "max passes"
@@ -1104,12 +1712,18 @@ def method_fista_gram(run, theta0):
     x = prox(pb, np.asarray(theta0, dtype=np.float64), 1.0)
     y, t = x, 1.0
     L = _largest_eigenvalue(pb.gram["H"]) + float(np.max(pb.beta, initial=0.0)) + 1e-300
+    mu = _gram_modulus(pb)
+    if mu > 0:
+        # restarted FISTA shrinks the error by a constant factor every O(sqrt(L / mu)) iterations (O'Donoghue
+        # & Candes 2015, Adaptive restart for accelerated gradient schemes, sec. 3), so on an ill-conditioned
+        # Gram matrix twenty checks can pass without a tenth's progress while the run still converges
+        run.window = max(run.window, int(math.ceil(10.0 * math.sqrt(L / mu))))
     iterations = 0
     while True:
         f_y, g_y, _ = _gram_smooth(pb, y)
         while True:
             x_new = prox(pb, y - g_y / L, 1.0 / L)
-            f_new, _, Ht_new = _gram_smooth(pb, x_new)
+            f_new, g_new, Ht_new = _gram_smooth(pb, x_new)
             diff = x_new - y
             if f_new <= f_y + float(np.dot(g_y, diff)) + 0.5 * L * float(np.dot(diff, diff)) + 1e-12 * abs(f_new):
                 break
@@ -1119,11 +1733,17 @@ def method_fista_gram(run, theta0):
             kind, absolute = "duality gap", gram_gap(pb, x_new, P_new, Ht_new)
         else:
             kind, absolute = "optimality residual", L * float(np.sqrt(np.dot(diff, diff)))
-        if run.record(x_new, P_new, kind, absolute):
+        if run.record(x_new, P_new, kind, absolute, grad=g_new):
             return "converged"
         iterations += 1
-        if iterations >= 20 * max(run.max_passes, 1) or (iterations % 1000 == 0 and _stalled(run, iterations)):
+        if iterations >= 20 * max(run.max_passes, 1):
             return "max iterations"
+        if iterations % 1000 == 0 and _stalled(run, iterations):
+            if run.stop_reason is None:
+                run.stop_reason = (f"the kept point's certificate did not improve over a thousand iterations, at "
+                                   f"{run.cert_abs:.2g} ({run.cert_abs / max(1e-300, 1e-15 * abs(P_new)):.2g} times the "
+                                   "gap's rounding allowance 1e-15 |P|)")
+            return "no progress"
         if float(np.dot(y - x_new, x_new - x)) > 0:
             t = 1.0
         t_new = 0.5 * (1.0 + math.sqrt(1.0 + 4.0 * t * t))
@@ -1182,7 +1802,7 @@ def method_smoothing(run, theta0, use_scipy, inner):
             run.theta, run.cert_abs = None, math.inf  # only the last stage's point counts
 
         def stage_over(ev, P, absolute, P_mu, mu=mu, final=final):
-            if final and run.record(ev.theta if P_mu is None else ev.theta, P, run_kind(pb), absolute):
+            if final and run.record(ev.theta, P, run_kind(pb), absolute, s=ev.s, derivs=ev.derivs, Atu=ev.Atu):
                 finished["done"] = True
                 return True
             if not final:
@@ -1323,7 +1943,7 @@ def _band_qp_intercept(A, g, kink, lo, hi, beta, k, tol, b0):
     # bracket the root: step away from b0 downhill, doubling; F' moves by at most sum(hi - lo) overall
     step = 1e-3 * (1.0 + abs(b0))
     direction = -1.0 if f0 > 0 else 1.0
-    a, fa, best = b0, f0, (abs(f0), b0, tw0, v0)
+    a, fa, twa, va, best = b0, f0, tw0, v0, (abs(f0), b0, tw0, v0)
     for _ in range(80):
         b = a + direction * step
         fb, twb, vb = slope(b)
@@ -1331,11 +1951,14 @@ def _band_qp_intercept(A, g, kink, lo, hi, beta, k, tol, b0):
             best = (abs(fb), b, twb, vb)
         if fb == 0.0 or (fb > 0) != (fa > 0):
             break
-        a, fa, step = b, fb, 2.0 * step
+        a, fa, twa, va, step = b, fb, twb, vb, 2.0 * step
     else:
         return None, None
     if fb == 0.0:
         return candidate(b, twb, vb)
+    # the two ends of the bracket with their true F' values (the Illinois halving below changes
+    # only the copies f_low / f_high that steer the secant)
+    ends = {-1: (a, fa, twa, va), 1: (b, fb, twb, vb)} if fa < 0 else {-1: (b, fb, twb, vb), 1: (a, fa, twa, va)}
     low, f_low, high, f_high = (a, fa, b, fb) if a < b else (b, fb, a, fa)  # f_low < 0 < f_high
     scale = float(np.sum(hi - lo)) + abs(g[k])
     last, repeats = 0, 0
@@ -1351,6 +1974,7 @@ def _band_qp_intercept(A, g, kink, lo, hi, beta, k, tol, b0):
         if fm == 0.0:
             break
         side = -1 if fm < 0 else 1
+        ends[side] = (mid, fm, twm, vm)
         repeats = repeats + 1 if side == last else 1
         if side < 0:
             low, f_low = mid, fm
@@ -1362,7 +1986,49 @@ def _band_qp_intercept(A, g, kink, lo, hi, beta, k, tol, b0):
                 f_low *= 0.5
         last = side
     _, b, tw, v = best
+    if best[0] > 1e-14 * scale:
+        # F' jumps over zero (F has a kink at its minimum: band rows sit exactly at their kinks, so the
+        # restricted dual at that b has many optimal v): the ends of the bracket are optimal duals on
+        # either side of the jump, and the convex combination of them with g_k + sum v = 0 meets the
+        # equality exactly, stays in the box, and theta_w (linear in v) follows the same combination
+        (b_lo, f_lo, tw_lo, v_lo), (b_hi, f_hi, tw_hi, v_hi) = ends[-1], ends[1]
+        lam = f_hi / (f_hi - f_lo)
+        b = lam * b_lo + (1.0 - lam) * b_hi
+        v = np.clip(lam * v_lo + (1.0 - lam) * v_hi, lo, hi)
+        tw = lam * tw_lo + (1.0 - lam) * tw_hi
+    polished = _polish_with_intercept(Aw, gw, bw, kink, lo, hi, float(g[k]), v)
+    if polished is not None:
+        tw, b, v = polished
     return candidate(b, tw, v)
+
+
+def _polish_with_intercept(Aw, gw, bw, kink, lo, hi, gk, v):
+    """The band problem's KKT system solved exactly for the rows strictly inside their box: those rows sit
+    at their kinks (Aw_i w + b = kink_i) with w = -(gw + Aw^T v) / bw, and g_k + sum v = 0, a linear system
+    in (v_inside, b). Returns (w, b, v), or None when it leaves the box (the search's point stays; the
+    gap of the whole problem judges either)."""
+    width = hi - lo
+    inside = (v > lo + 1e-12 * width) & (v < hi - 1e-12 * width)
+    m = int(np.sum(inside))
+    if m == 0:
+        return None
+    fixed = ~inside
+    w0 = -(gw + Aw[fixed].T @ v[fixed]) / bw
+    A_in = Aw[inside]
+    K = np.zeros((m + 1, m + 1))
+    K[:m, :m] = -(A_in / bw) @ A_in.T
+    K[:m, m] = 1.0
+    K[m, :m] = 1.0
+    rhs = np.concatenate([kink[inside] - A_in @ w0, [-gk - float(np.sum(v[fixed]))]])
+    solution = np.linalg.lstsq(K, rhs, rcond=None)[0]
+    v_in, b = solution[:m], float(solution[m])
+    slack = 1e-12 * width[inside]
+    if not (np.all(np.isfinite(solution)) and np.all(v_in >= lo[inside] - slack) and
+            np.all(v_in <= hi[inside] + slack)):
+        return None
+    v = v.copy()
+    v[inside] = np.clip(v_in, lo[inside], hi[inside])
+    return -(gw + Aw.T @ v) / bw, b, v
 
 
 def _box_qp(A, g, kink, lo, hi, beta, tol, x0=None):
@@ -1374,6 +2040,9 @@ def _box_qp(A, g, kink, lo, hi, beta, tol, x0=None):
     coordinates) when that stays in the box and does not raise the value. theta = -(g + A^T v) / beta.
     The projected-gradient tolerance follows the run's: 1e-8 sufficed for a relative gap of 1e-6 on
     the benchmark tables, 1e-7 did not; the gap of the whole problem decides in any case."""
+    if len(kink) == 0:
+        # no row near a kink: nothing to optimize (SciPy refuses an empty list of bounds)
+        return -g / beta, np.zeros(0), np.zeros(0)
     gtol = min(1e-8, max(1e-2 * tol, 1e-13))
     width = np.maximum(hi - lo, 1e-300)
     Aw = A * width[:, None]  # Q = Aw diag(1/beta) Aw^T has rank <= size: applied through Aw, never formed
@@ -1495,7 +2164,8 @@ def exact_finish(run, theta, mu, rounds=3):
         Atu = adjoint(pb, rho * d)
         P = objective_value(pb, candidate, s_new)
         gap = duality_gap(pb, candidate, P, [d], Atu)
-        if run.record(candidate, P, "duality gap", gap):
+        # an exact finish is as good as this point gets: its distance is reported, not chased further
+        if run.record(candidate, P, "duality gap", gap, s=s_new, derivs=[d], Atu=Atu, final=True):
             return True
         crossed = np.flatnonzero(~band & (d != slope))
         if not len(crossed) or np.sum(band) + len(crossed) > limit:
@@ -1656,10 +2326,15 @@ def _mu0(pb):
 
 
 def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e-6, max_passes=None,
-               allow_nonconvex=False, theta0=None, progress=None, use_scipy=True):
-    """Fit the spec's objective to the data; returns a dict of plain values (see `solve`)."""
+               allow_nonconvex=False, theta0=None, progress=None, use_scipy=True, param_tol=1e-6):
+    """Fit the spec's objective to the data; returns a dict of plain values (see `solve`).
+
+    The run stops when the relative certificate is within `tol` and, unless `param_tol` is None, the
+    distance of the parameters to the optimum is within `param_tol` (a proved bound where the objective
+    is strongly convex in every learned parameter, else an uncertified estimate)."""
     import time
     started = time.perf_counter()
+    param_tol = _parameter_tolerance(param_tol)
     if not spec["trainable"]:
         raise SolverInputError(spec["refusal"])
     if not spec["accepted"] and not allow_nonconvex:
@@ -1686,7 +2361,7 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
     pb.finished_exactly = False
     if max_passes is None:
         max_passes = 20000
-    run = _Run(pb, float(tol), int(max_passes), progress)
+    run = _Run(pb, float(tol), int(max_passes), progress, param_tol if spec["accepted"] else None)
     theta = _to_internal(pb, _initial_theta(pb, theta0))
     if theta0 is not None:
         with np.errstate(all="ignore"):
@@ -1728,6 +2403,7 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
     P = objective_value(pb, theta)
     theta = _to_external(pb, theta)
     rel = relative(run.cert_abs, P)
+    method_status = status
     if not spec["accepted"]:
         status = "local (non-convex)"
     elif rel <= tol:
@@ -1744,18 +2420,76 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
     note = notes.get(run.cert_kind, "")
     if not spec["accepted"]:
         note += "; the objective is not certified convex, so this is at best a local minimum"
+    distance = _distance_report(pb, run, P, method, param_tol, rel <= tol, method_status)
     params = {}
     for pname, (start, size, vector) in pb.slots.items():
         params[pname] = theta[start:start + size].copy() if vector else float(theta[start])
     return {
         "theta": theta, "params": params, "objective": P, "term_values": term_values(pb, _to_internal(pb, theta)),
         "status": status, "method": name,
-        "certificate": {"kind": run.cert_kind, "absolute": float(run.cert_abs), "relative": float(rel),
-                        "tolerance": float(tol), "note": note},
+        "certificate": dict({"kind": run.cert_kind, "absolute": float(run.cert_abs), "relative": float(rel),
+                             "tolerance": float(tol), "note": note}, **distance),
         "iterations": run.iterations, "passes": pb.passes + pb.row_reads // pb.n,
         "seconds": time.perf_counter() - started,
         "input_names": pb.input_names,
     }
+
+
+# why a method ended, for a parameter tolerance not reached (the stall detector gives its own reason)
+_STOP_REASONS = {
+    "max passes": "the pass budget ran out",
+    "max iterations": "the iteration budget ran out",
+    "no progress": "the method's line search could not lower the objective further (common once its changes "
+                   "approach the objective's rounding)",
+    "line search failed": "the method's line search could not lower the objective further (common once its changes "
+                          "approach the objective's rounding)",
+    "converged": "the method's own stop",
+}
+
+
+def _parameter_tolerance(param_tol):
+    """The parameter tolerance as a float, or None (the parameter stop switched off)."""
+    if param_tol is None:
+        return None
+    try:
+        value = float(param_tol)
+    except (TypeError, ValueError):
+        raise SolverInputError(f"param_tol must be a positive number or None (off), not {param_tol!r}") from None
+    if not (math.isfinite(value) and value > 0.0):
+        raise SolverInputError(f"param_tol must be a positive number (a distance can only be certified down to "
+                               f"rounding), or None to switch the parameter stop off; got {value:g}")
+    return value
+
+
+def _distance_report(pb, run, P, method, param_tol, gap_passed, method_status=""):
+    """The certificate's distance fields for the kept point (formed now when the run never formed them)."""
+    record = run.distance
+    if record is None and pb.spec["accepted"] and method != "subgradient":
+        gap = run.cert_abs if run.cert_kind == "duality gap" else math.inf
+        with np.errstate(all="ignore"):
+            record = distance_certificate(pb, run.theta, P, gap) + (None, getattr(pb, "last_weights_bound", None))
+    if record is None:
+        record = (None, None, "no bound: the objective is not certified convex (a local result)", None, None, None)
+    bound, mu, note, residual, estimate, weights = record
+    if bound is None:
+        if residual is not None:
+            note += f"; optimality residual (norm of the least subgradient) {residual:.3g}"
+        if estimate is not None:
+            note += (f"; estimated distance {estimate:.3g}, uncertified (the residual over the least curvature "
+                     "seen along the last steps)")
+    figure = _Run._figure(record)  # what the stop compared with param_tol
+    if param_tol is not None and gap_passed and np.isfinite(figure) and figure > param_tol:
+        why = run.stop_reason or _STOP_REASONS.get(method_status, f"the method ended: {method_status}")
+        floor = run.distance_floor if run.stop_reason is None else None
+        if floor is not None:  # say where the figure stood against its rounding level
+            why += (f"; the figure {figure:.2g} is {'within' if figure <= 10.0 * floor else 'more than'} ten times its "
+                    f"rounding level {floor:.2g}")
+        note += f"; the parameter tolerance {param_tol:g} was not reached ({why})"
+    return {"distance": None if bound is None else float(bound), "curvature": None if mu is None else float(mu),
+            "distance_note": note, "param_tolerance": param_tol,
+            "residual": None if residual is None else float(residual),
+            "distance_estimate": None if estimate is None else float(estimate),
+            "weights_distance": float(bound) if bound is not None else (None if weights is None else float(weights))}
 
 
 def decision_values(spec, params, X, input_names=None, tunables=None):

@@ -539,3 +539,111 @@ def test_every_catalog_construction_is_emitted_as_is():
         code = ast.unparse(ast.fix_missing_locations(ast.Expression(cpb._to_ast(recorded))))
         value = eval(compile(code, "<emitted>", "eval"), {"cp": cp, "np": np, "v": cp.Constant(point)})  # noqa: S307
         assert np.allclose(value.value, entry.cvxpy(cp, cp.Constant(point), **opts).value), entry.name
+
+
+# ---------------------------------------------------------------- tunable exponents and settings, perrow
+
+def clarabel(objective, constraints=()):
+    """An independent formulation written in the test from the math, solved tightly by Clarabel."""
+    problem = cp.Problem(cp.Minimize(objective), list(constraints))
+    # 1e-10 ends 'inaccurate' on the second-order-cone form of x^1.5 here (measured); 1e-9 does not
+    problem.solve(solver="CLARABEL", tol_gap_abs=1e-9, tol_gap_rel=1e-9, tol_feas=1e-9)
+    assert problem.status == "optimal"
+    return problem
+
+
+POWER_SPEC = "tune q = 2 within 1.5 .. 4\ngoal mean pos(1 - y * s) ^ q + 0.05 * l2sq(w)"
+
+
+@pytest.mark.parametrize("q", [1.5, 2.0, 2.7, 4.0])
+def test_a_tunable_exponent_is_built_as_its_number(iris_pair, q):
+    # cvxpy's power(x, p) takes a number p (a Parameter exponent is not DPP, cvxpy documentation
+    # "DPP"); the problem objc builds is DCP at every q of the declared range and its optimum is the
+    # one of mean max(0, 1 - y_i f_i)^q + 0.05 ||w||^2 written here with cp.power
+    X, y = iris_pair
+    checked = check(POWER_SPEC)
+    built = cpb.build_problem(checked, X, y, None, names_for(X), {"q": q})
+    assert built.problem.is_dcp() and dict(built.built_in) == {"q": q}
+    fit = cpb.solve_build(built)
+    w, b = cp.Variable(X.shape[1]), cp.Variable()
+    ref = clarabel(cp.sum(cp.power(cp.pos(1 - cp.multiply(y, X @ w + b)), q)) / len(y) + 0.05 * cp.sum_squares(w))
+    assert rel(fit.objective, ref.value) < OBJ_RTOL
+    assert np.max(np.abs(fit.params["w"] - w.value)) < PARAM_ATOL and abs(fit.params["b"] - b.value) < PARAM_ATOL
+
+
+def test_a_sweep_over_an_exponent_builds_the_problem_again(iris_pair):
+    X, y = iris_pair
+    checked = check(POWER_SPEC)
+    built = cpb.build_problem(checked, X, y, None, names_for(X))
+    at_two = cpb.solve_build(built)
+    at_three = cpb.solve_build(built, tunables={"q": 3.0})
+    fresh = cpb.fit(checked, X, y, None, names_for(X), tunables={"q": 3.0})
+    assert rel(at_three.objective, fresh.objective) < 1e-8 and rel(at_two.objective, at_three.objective) > 1e-3
+    assert at_three.extra["tunables"] == {"q": 3.0}
+    # in place, the number built in cannot change: a located message, not a silently stale problem
+    with pytest.raises(SpecError) as info:
+        cpb.set_tunables(built, {"q": 3.0})
+    assert code_of(info) == "C401" and "exponent or a catalog setting" in info.value.diagnostics[0].message
+
+
+def test_a_tunable_quantile_matches_sklearn_quantile_regressor(diabetes):
+    # QuantileRegressor: (1/n) sum pinball_t(r_i) + alpha ||w||_1 (scikit-learn 1.9 documentation),
+    # which is `perrow` (and `mean`) of the pinball loss without row weights; a sweep over t
+    X, y = diabetes
+    checked = check("tune t = 0.5 within 0.05 .. 0.95\ngoal perrow pinball(y - s, t) + 0.1 * l1(w)")
+    built = cpb.build_problem(checked, X, y, None, names_for(X))
+    for t in (0.3, 0.8):
+        fit = cpb.solve_build(built, tunables={"t": t})
+        sk, reference = quantile_reference(X, y, q=t, alpha=0.1)
+        assert rel(fit.objective, reference) < OBJ_RTOL
+        assert fit.objective <= reference + 1e-9 * max(1.0, reference)
+
+
+@pytest.mark.parametrize("d", [0.5, 20.0])
+def test_a_tunable_huber_threshold_matches_cvxpy_huber(diabetes, d):
+    # cvxpy's huber(x, M) is x^2 for |x| <= M and 2M|x| - M^2 beyond (cvxpy atom documentation): twice
+    # objc's half-scaled huber(r, d), so the reference objective is sum huber(r, d) / (2 n)
+    X, y = diabetes
+    checked = check("tune d = 1.35 within 0.1 .. 50\ngoal mean huber(y - s, d) + 0.01 * l2sq(w)")
+    fit = cpb.fit(checked, X, y, None, names_for(X), tunables={"d": d})
+    w, b = cp.Variable(X.shape[1]), cp.Variable()
+    ref = clarabel(cp.sum(cp.huber(y - X @ w - b, d)) / (2 * len(y)) + 0.01 * cp.sum_squares(w))
+    assert rel(fit.objective, ref.value) < OBJ_RTOL
+    assert np.max(np.abs(fit.params["w"] - w.value)) < 1e-3 * max(1.0, float(np.max(np.abs(w.value))))
+
+
+def test_perrow_divides_by_the_row_count_as_ridge_sample_weights_do(diabetes):
+    # Ridge.fit(X, y, sample_weight=c) minimizes sum_i c_i (y_i - x_i.w - b)^2 + alpha ||w||^2
+    # (scikit-learn 1.9 documentation). perrow (y - s)^2 + lam * l2sq(w) is that sum / n + lam ||w||^2,
+    # so it has Ridge's minimizer at alpha = lam * n, and not at alpha = lam * sum c (which `mean` has)
+    X, y = diabetes
+    c = np.random.default_rng(5).integers(0, 5, size=len(y)).astype(float)
+    n, lam = len(y), 0.02
+    assert abs(c.sum() - n) > 0.2 * n  # the two conventions differ clearly on these weights
+    ours = {}
+    for agg in ("perrow", "mean"):
+        checked = check(f"goal {agg} (y - s)^2 + {lam} * l2sq(w)", table="  rowweight cw\n")
+        ours[agg] = cpb.fit(checked, X, y, c, names_for(X))
+    by_rows = Ridge(alpha=lam * n, solver="cholesky").fit(X, y, sample_weight=c)
+    by_weights = Ridge(alpha=lam * c.sum(), solver="cholesky").fit(X, y, sample_weight=c)
+    assert np.max(np.abs(ours["perrow"].params["w"] - by_rows.coef_)) < PARAM_ATOL
+    assert abs(ours["perrow"].params["b"] - by_rows.intercept_) < PARAM_ATOL
+    assert np.max(np.abs(ours["mean"].params["w"] - by_weights.coef_)) < PARAM_ATOL
+    assert np.max(np.abs(ours["perrow"].params["w"] - by_weights.coef_)) > 100 * PARAM_ATOL
+    r = y - X @ by_rows.coef_ - by_rows.intercept_
+    assert rel(ours["perrow"].objective, float(c @ r ** 2) / n + lam * float(by_rows.coef_ @ by_rows.coef_)) < OBJ_RTOL
+
+
+def test_emitted_module_reads_exponents_and_settings_from_its_tunables(diabetes, tmp_path):
+    X, y = diabetes
+    checked = check("tune q = 1.5 within 1 .. 3\ntune t = 0.5 within 0.1 .. 0.9\n"
+                    "goal perrow pinball(y - s, t) + 0.01 * mean abs(y - s) ^ q + 0.01 * l2sq(w)",
+                    table="  rowweight cw\n")
+    module = load(cpb.emit_module(checked), tmp_path / "tuned_model.py")
+    c = np.linspace(0.2, 3.0, len(y))
+    for setting in ({}, {"q": 2.5, "t": 0.8}):
+        out = module.solve(X, y, c, **setting)
+        ours = cpb.fit(checked, X, y, c, names_for(X), tunables=setting)
+        assert out["status"] == "optimal" and rel(out["objective"], ours.objective) < 1e-8
+    with pytest.raises(ValueError, match="outside its declared range"):
+        module.build(X, y, None, q=0.5)
