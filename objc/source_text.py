@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 
 
@@ -26,10 +27,31 @@ class Span:
 NO_SPAN = Span(0, 0, 0, 0)
 
 
+# The one rule for where a line ends, for every part of objc that counts lines: LF, CRLF or CR.
+# Other characters Unicode calls line breaks (VT, FF, FS, GS, RS, NEL, U+2028, U+2029) are not line
+# ends here but errors at their place (spec_parser), so a caret is never drawn under another line.
+_LINE_END = re.compile(r"\r\n|\r|\n")
+
+
+def _invisible(ch: str) -> bool:
+    code = ord(ch)
+    return code < 0x20 or 0x7F <= code <= 0x9F or code in (0x2028, 0x2029)
+
+
+def split_lines(text: str) -> list[str]:
+    """The lines of `text`, split at LF, CRLF and CR only (not at str.splitlines' other breaks)."""
+    return _LINE_END.split(text)
+
+
+def normalize_line_ends(text: str) -> str:
+    """CRLF and CR as LF: the same lines, the same columns."""
+    return text.replace("\r\n", "\n").replace("\r", "\n")
+
+
 def position_at(text: str, index: int) -> Span:
     """The one-character span at a character index of `text` (lines and columns from 1)."""
-    line = text.count("\n", 0, index) + 1
-    column = index - (text.rfind("\n", 0, index) + 1) + 1
+    before = split_lines(text[:index])
+    line, column = len(before), len(before[-1]) + 1
     return Span(line, column, line, column + 1)
 
 
@@ -64,7 +86,7 @@ class SourceText:
     text: str
 
     def line_text(self, line: int) -> str:
-        lines = self.text.splitlines()
+        lines = split_lines(self.text)
         if 1 <= line <= len(lines):
             return lines[line - 1]
         return ""
@@ -81,7 +103,8 @@ class SourceText:
         """The span's first line with a caret underline, ready to print under a message."""
         if span.line == 0:
             return ""
-        text = self.line_text(span.line).expandtabs(1)
+        # a control character would move the terminal's cursor: show it as '?' so the caret lines up
+        text = "".join("?" if _invisible(c) else c for c in self.line_text(span.line).expandtabs(1))
         width = (span.end_column if span.end_line == span.line else len(text) + 1) - span.column
         width = max(1, min(width, len(text) - span.column + 2))
         gutter = f"{span.line:>4} | "

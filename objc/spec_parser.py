@@ -17,7 +17,7 @@ from lark import Token, Transformer, v_args
 
 from objc import syntax_tree as st
 from objc.diagnostics import Diagnostic, SpecError
-from objc.source_text import SourceText, Span
+from objc.source_text import SourceText, Span, normalize_line_ends, split_lines
 
 STATEMENT_KEYWORDS = ("table", "target", "inputs", "feature", "rowweight", "classweight", "standardize",
                       "holdout", "validate", "missing", "group", "tune", "learn", "score", "loss", "goal", "keep")
@@ -261,7 +261,7 @@ def _diagnose(err: lark.exceptions.LarkError, source: SourceText) -> Diagnostic:
     if isinstance(err, lark.exceptions.UnexpectedToken):
         tok = err.token
         if tok.type == "$END":
-            lines = source.text.rstrip().split("\n")
+            lines = split_lines(source.text.rstrip())
             span = Span(len(lines), max(1, len(lines[-1])), len(lines), len(lines[-1]) + 1)
             return Diagnostic("E102", "the spec ends in the middle of a statement", span,
                               hint=f"expected {_expected_words(err.expected)}", source_name=source.name)
@@ -294,9 +294,46 @@ def _diagnose(err: lark.exceptions.LarkError, source: SourceText) -> Diagnostic:
     return Diagnostic("E100", f"could not parse the spec: {err}", Span(1, 1, 1, 2), source_name=source.name)
 
 
+# control characters a spec may hold: the tab (read as a space) and the line ends LF and CR
+_ALLOWED_CONTROLS = frozenset("\t\n\r")
+_CONTROL_NAMES = {0x00: "NUL", 0x0B: "vertical tab", 0x0C: "form feed", 0x1C: "file separator",
+                  0x1D: "group separator", 0x1E: "record separator", 0x1F: "unit separator", 0x7F: "DEL",
+                  0x85: "next line, NEL", 0x2028: "line separator", 0x2029: "paragraph separator",
+                  0xFEFF: "byte order mark"}
+
+
+def _is_forbidden(ch: str) -> bool:
+    code = ord(ch)
+    if ch in _ALLOWED_CONTROLS:
+        return False
+    return code < 0x20 or 0x7F <= code <= 0x9F or code in (0x2028, 0x2029) or (code == 0xFEFF)
+
+
+def _control_characters(source: SourceText) -> list[Diagnostic]:
+    """Every control character outside tab, LF and CR, at its place: the one line rule (LF, CRLF or
+    CR end a line) holds only if no other character can be taken for a line break."""
+    out = []
+    for number, line in enumerate(split_lines(source.text), start=1):
+        for k, ch in enumerate(line):
+            if _is_forbidden(ch) and not (number == 1 and k == 0 and ch == "\ufeff"):
+                name = _CONTROL_NAMES.get(ord(ch), "a control character")
+                out.append(Diagnostic("E107", f"U+{ord(ch):04X} ({name}) is not allowed in a spec",
+                                      Span(number, k + 1, number, k + 2),
+                                      hint="delete it; a line ends at LF, CRLF or CR, and only spaces and tabs "
+                                      "separate words", source_name=source.name))
+                if len(out) >= MAX_SYNTAX_ERRORS:
+                    return out
+    return out
+
+
 def parse(source: SourceText) -> st.SpecTree:
     """Parse spec text into a syntax tree, or raise SpecError listing every syntax problem."""
-    text = source.text.replace("\r\n", "\n").replace("\t", " ")
+    controls = _control_characters(source)
+    if controls:
+        raise SpecError(tuple(controls), source)
+    text = normalize_line_ends(source.text).replace("\t", " ")
+    if text.startswith("\ufeff"):  # a byte order mark at the very start is an encoding mark, not text
+        text = " " + text[1:]
     diagnostics: list[Diagnostic] = []
     tree = None
     for _ in range(MAX_SYNTAX_ERRORS):

@@ -302,3 +302,31 @@ def test_perrow_binds_like_mean_and_sum() -> None:
     assert isinstance(left, syn.Binary) and left.op == "*"
     assert isinstance(left.left, syn.Aggregate) and left.left.kind == "perrow"
     assert "perrow" in RESERVED_WORDS
+
+
+# ---------------------------------------------------------------- one rule for line ends
+
+CONTROL_CHARACTERS = ["\v", "\f", "\x00", "\x1c", "\x1d", "\x1e", "\x7f", "\x85", "\u2028", "\u2029"]
+
+
+@pytest.mark.parametrize("ch", CONTROL_CHARACTERS, ids=[f"U+{ord(c):04X}" for c in CONTROL_CHARACTERS])
+def test_a_control_character_is_an_error_at_its_place(ch) -> None:
+    # regression: str.splitlines breaks lines at these (Python documentation, str.splitlines) while
+    # the parser counted only LF, so carets were drawn under another line
+    text = HEADER.replace("  inputs a, b, c\n", f"  inputs a,{ch} b, c\n") + "goal l2sq(w)\n"
+    with pytest.raises(SpecError) as info:
+        check_text(text, "ctl.objc")
+    (d,) = info.value.diagnostics
+    assert (d.code, d.span.line, d.span.column) == ("E107", 3, 12) and f"U+{ord(ch):04X}" in d.message
+    shown = str(info.value).splitlines()
+    assert shown[1].startswith("   3 |   inputs a,? b, c") and shown[2].index("^") == shown[1].index("?")
+
+
+@pytest.mark.parametrize("end", ["\n", "\r\n", "\r"], ids=["LF", "CRLF", "CR"])
+def test_lf_crlf_and_cr_end_lines_alike(end) -> None:
+    text = (HEADER + "goal l2sq(w) $\n").replace("\n", end)
+    with pytest.raises(SpecError) as info:
+        check_text("\ufeff" + text if end == "\r" else text, "ends.objc")  # a leading BOM is no character
+    (d,) = info.value.diagnostics
+    assert (d.code, d.span.line, d.span.column) == ("E101", 6, 14)
+    assert "   6 | goal l2sq(w) $" in str(info.value)
