@@ -893,16 +893,18 @@ def _analysis_frame(pb, s):
     return frame
 
 
-def _row_curvature(pb, s, reach):
+def _row_curvature(pb, s, reach, rows=None):
     """d_i, a lower bound on the second derivative in the score of row i's terms (rho included) wherever
     row i's score lies within reach_i of s_i, from the catalog's curvature floors; None when a row term
-    has no curvature fact (a loss the spec defines) or a negative weight."""
-    d = np.zeros(pb.n)
+    has no curvature fact (a loss the spec defines) or a negative weight. With `rows`, s and reach hold
+    those rows only and so does the result."""
+    d = np.zeros(pb.n if rows is None else len(rows))
     for term in pb.row_terms:
         floor_fn = term.curv_floor
         if floor_fn is None or np.any(term.rho < 0):
             return None
-        y = term.y
+        y = term.y if rows is None else term.y[rows]
+        rho = term.rho if rows is None else term.rho[rows]
         with np.errstate(invalid="ignore", over="ignore"):
             if term.role == "margin":  # phi(s) = l(y s): phi'' = y^2 l''(y s); m moves by |y| |ds|
                 m, spread = y * s, np.where(y != 0.0, np.abs(y) * reach, 0.0)
@@ -913,7 +915,7 @@ def _row_curvature(pb, s, reach):
             else:
                 return None
         floor = np.where(np.isfinite(floor) & (floor > 0.0), floor, 0.0)
-        d += term.rho * floor
+        d += rho * floor
     return d
 
 
@@ -946,6 +948,129 @@ def _modulus(pb, frame, d):
         gamma = float(np.dot(np.abs(d - d_ref), xnorm)) + 1e-14 * float(np.dot(d_ref, xnorm))
         second = _least_eigenvalue_2x2(beta_w, gamma, beta_b + S)
     return max(first, second, 0.0)
+
+
+# A modulus from a sample of the Hessian. For any set S of rows, A^T D A >= A_S^T D_S A_S in the Loewner order
+# (the rows left out add the terms d_i a_i a_i^T, PSD for d_i >= 0), and the least eigenvalue is monotone in
+# that order (Weyl's inequality), so the least eigenvalue of M + diag(beta), M = A_S^T D_S A_S in the solver's
+# own coordinates (rows a_i = (x_i - m, 1)), is a modulus of the whole objective. M is formed once per fit,
+# with D0 the curvature at the first point checked; at a later point and radius r, the floors d_i(r) over the
+# ball (as above) give kappa = min_S d_i(r) / d0_i, so A_S^T D(r) A_S >= kappa M, and for kappa <= 1,
+# kappa M + diag(beta) >= kappa (M + diag(beta)): the modulus on the ball is kappa times the one formed.
+# Unlike the cheap frame above it sees the loss's curvature in the weights' directions: on the logistic
+# benchmark table (1e-4 ridge) the frame proves 1e-4, the Hessian's least eigenvalue is 1.6e-3 at 1e5 rows
+# and 1.2e-3 at 1e4 (measured), and a sample of a fifth of the rows proves about a fifth of it.
+#
+# Rounding: M's entries are sums of k products of entries of D^1/2 A_S (each rounded three times: the
+# centring, the square root, the product), off by at most gamma_{k+8} sum_i d_i |a_ij| |a_il| (Higham 2002,
+# Accuracy and Stability of Numerical Algorithms, 2nd ed., sec. 3.1, gamma_n = n u / (1 - n u)), so the
+# error matrix has Frobenius norm at most gamma_{k+8} sum_i d_i ||a_i||^2 (the triangle inequality over the
+# rows, ||a a^T||_F = ||a||^2); the symmetric eigensolver is backward stable (its eigenvalues are exact for a
+# matrix within a small multiple of size x u x ||H|| of H; the factor 10 is our own margin, the same as
+# `_gram_modulus`). Both are taken off.
+#
+# The sample: every (n / k)-th row (deterministic; a table sorted by class still yields a spread), with
+# k = max(50 size, 20 n / size), or every row once that reaches n / 2. The rule: M costs k size^2
+# multiply-adds at matrix-matrix speed, measured on the benchmark machine at about ten times a pass's
+# memory-bound rate per operation, so k rows cost about k size / (10 n) passes (20 n / size rows about two);
+# a sample dearer than 20 passes is not formed (after the gap passed, the parameter stop's own iterations
+# cost 4-45 passes on the benchmark tables, so more would rarely pay; our own limit, from those
+# measurements). At least 50 size rows keep a sample's least eigenvalue near its share of the whole (for a
+# k x size Gaussian sample it is about (1 - sqrt(size / k))^2 times that share: a textbook random-matrix
+# value, recalled from memory). With every row, M + diag(beta) is the exact Hessian at the first point
+# checked (the one-point floor is l'' itself) and L-BFGS hands over to Newton steps with it (`method_lbfgs`).
+# Dense tables only: a sparse table's rows would be densified.
+
+def _sampled_curvature(pb, s):
+    """The sample's (rows or None for all, d0, reach_i = ||a_i|| (an upper bound), least eigenvalue of
+    M + diag(beta) less its rounding allowance), formed once per fit at the first check; None where the
+    argument does not apply (sparse table, a loss without a curvature fact, no curvature on the sample)."""
+    cached = getattr(pb, "sampled", None)
+    if cached is not None:
+        return cached or None
+    pb.sampled = False
+    if _is_sparse(pb.X) or not pb.standard or pb.size > 2000:
+        return None
+    n, size, unit = pb.n, pb.size, 2.0 ** -53
+    k = max(50 * size, (20 * n) // size)
+    k = n if 2 * k >= n else k  # at most twice the cost for the exact Hessian, which also gives a Newton step
+    if k * size > 200 * n:  # over about 20 passes (k size / (10 n), the rule below): the frame is cheaper
+        return None
+    rows = None if k >= n else (np.arange(k, dtype=np.intp) * n) // k
+    d0 = _row_curvature(pb, s if rows is None else s[rows], np.zeros(k), rows)
+    if d0 is None or not np.any(d0 > 0.0):
+        return None
+    w, m, X = pb.w_index, pb.center, pb.X
+    Mww, h, sq = np.zeros((pb.p, pb.p)), np.zeros(pb.p), np.empty(k)
+    # S^T S with S = D^1/2 (X_S - 1 m^T), one block of about 1 MB at a time in one reused buffer: the
+    # product then runs as a symmetric rank-k update on cached rows (measured: about six times faster than
+    # (B * d)^T B over 8 MB blocks at 1e6 x 50 on a busy machine)
+    root = np.sqrt(d0)
+    chunk = max(1, (1 << 20) // (8 * pb.p))
+    buf = np.empty((min(chunk, k), pb.p))
+    for first in range(0, k, chunk):
+        last = min(first + chunk, k)
+        block = buf[:last - first]
+        if rows is None:
+            block[...] = X[first:last]
+        else:
+            np.take(X, rows[first:last], axis=0, out=block)
+        if m is not None:
+            block -= m
+        sq[first:last] = np.einsum("ij,ij->i", block, block)
+        r = root[first:last]
+        block *= r[:, None]
+        Mww += block.T @ block
+        h += block.T @ r
+    pb.row_reads += k
+    intercept = 1.0 if pb.b_index is not None else 0.0
+    H = np.zeros((size, size))
+    H[np.ix_(w, w)] = Mww
+    if pb.b_index is not None:
+        H[w, pb.b_index] = H[pb.b_index, w] = h
+        H[pb.b_index, pb.b_index] = float(np.sum(d0))
+    H += np.diag(pb.beta)
+    norms2 = sq * (1.0 + 4.0 * unit) + intercept  # ||a_i||^2, rounded up
+    gamma = (k + 8) * unit / (1.0 - (k + 8) * unit)  # k products, each entry of S off by at most 3u
+    allowance = gamma * float(np.dot(d0, norms2)) * (1.0 + 1e-10) + \
+        10.0 * size * unit * float(np.sqrt(np.sum(H * H)))
+    least = float(np.linalg.eigvalsh(H)[0]) - allowance
+    if not least > 0.0:
+        return None
+    pb.sampled = {"rows": rows, "d0": d0, "reach": np.sqrt(norms2) * (1.0 + 2.0 * unit), "least": least, "k": k,
+                  "H": H if rows is None else None}  # all rows: the exact Hessian at the first point checked
+    return pb.sampled
+
+
+def _sampled_modulus(pb, sampled, s, r):
+    """kappa(r) times the sample's least eigenvalue: a modulus on the ball of radius r about the point whose
+    score is s (the argument above)."""
+    rows, d0 = sampled["rows"], sampled["d0"]
+    d = _row_curvature(pb, s if rows is None else s[rows], sampled["reach"] * r, rows)
+    if d is None:
+        return 0.0
+    used = d0 > 0.0
+    kappa = float(np.min(d[used] / d0[used])) * (1.0 - 4.0 * 2.0 ** -53)  # the division's rounding
+    return min(max(kappa, 0.0), 1.0) * sampled["least"]
+
+
+def _table_norm(pb):
+    """||X||_F (rounded up), once per fit: one read of the table, no copy."""
+    norm = getattr(pb, "table_norm", None)
+    if norm is None:
+        X = pb.X
+        if _is_sparse(X):
+            total = float(np.dot(X.data, X.data))
+        elif X.flags.c_contiguous or X.flags.f_contiguous:
+            flat = X.ravel(order="K")  # a view for a contiguous table
+            total = float(np.dot(flat, flat))
+        else:
+            total = float(np.einsum("ij,ij->", X, X))
+        # a sum of n p squares, off by at most gamma_{np} times itself (Higham 2002, sec. 3.1)
+        unit = 2.0 ** -53 * (X.shape[0] * X.shape[1] + 2)
+        norm = math.sqrt(total * (1.0 + unit / (1.0 - unit))) * (1.0 + 2.0 ** -52)
+        pb.table_norm = norm
+    return norm
 
 
 def _least_subgradient(pb, theta, grad):
@@ -1062,7 +1187,8 @@ def distance_certificate(pb, theta, P, gap, s=None, derivs=None, Atu=None, grad=
             fresh.append(d)
         if Atu is None or derivs is None or any(a is not b for a, b in zip(fresh, derivs)):
             Atu = adjoint(pb, dual_adjoint_inputs(pb, fresh))
-        eps = _subgradient_slack(pb, s, fresh)
+        # a smooth row's d in `fresh` is its derivative at s by construction: slack only from the others
+        eps = 0.0 if all(term.smooth for term in pb.row_terms) else _subgradient_slack(pb, s, fresh)
         grad = Atu + smooth_penalties(pb, theta)[1]
         u_rows = dual_adjoint_inputs(pb, fresh)
     v_int = _least_subgradient(pb, theta, grad)
@@ -1071,10 +1197,13 @@ def distance_certificate(pb, theta, P, gap, s=None, derivs=None, Atu=None, grad=
     residual = None if v_user is None else float(np.sqrt(np.dot(v_user, v_user)))
     # the gap is a difference of two sums rounded to about eps |P| each: allow for that
     gap = max(gap, 0.0) + 1e-15 * abs(P) if np.isfinite(gap) else math.inf
+    sampled = None
     if not gram:
         if s is None:
             s = score(pb, theta)
-        frame = _analysis_frame(pb, s)
+        sampled = _sampled_curvature(pb, s) if v_int is not None and eps is not None else None
+        if sampled is None:
+            frame = _analysis_frame(pb, s)
     # the computed gradient is off the exact one by at most g_round, and the least subgradient moves with
     # it by no more (a projection of 0 onto a box or ball shifted by the gradient): add it to ||v||
     g_round = _gradient_rounding(pb, theta, grad, u_rows, frame)
@@ -1104,7 +1233,25 @@ def distance_certificate(pb, theta, P, gap, s=None, derivs=None, Atu=None, grad=
     if gram:
         best, _ = better(best, _gram_modulus(pb), v_int, _coordinate_factor(pb), None,
                          "the least eigenvalue of the exact Hessian (the Gram matrix), less a rounding allowance")
-    else:
+    if not gram and sampled is not None:
+        # the sample's Hessian, on a ball grown until the bound fits (the ball argument above)
+        factor = _coordinate_factor(pb)
+        r = max(2.0 * min(bounds(sampled["least"], v_int)), 1e-300)
+        for _ in range(6):
+            if not np.isfinite(r):
+                break
+            best, value = better(best, _sampled_modulus(pb, sampled, s, r), v_int, factor, r,
+                                 f"the least eigenvalue of the Hessian over {sampled['k']} of the {pb.n} rows (a "
+                                 f"lower bound), times the loss's curvature floor over a ball of radius {r:.2g}")
+            if value < r:
+                break
+            r = 4.0 * value
+        # the cheap frame's modulus never exceeds the least ridge weight on w (it adds to it only through the
+        # intercept's 2 x 2 block): needed only when the sample proved less
+        if best[1] is None or best[1] < float(np.min(pb.beta[pb.w_index])):
+            frame = _analysis_frame(pb, s)
+            g_round = min(g_round, _gradient_rounding(pb, theta, grad, u_rows, frame))
+    if not gram and frame is not None:
         c = frame["c"]
         v = None if v_int is None else _least_subgradient(pb, theta, _gradient_in(pb, grad, c))
         factor = _shift_norm(c)
@@ -1189,6 +1336,13 @@ def _gradient_rounding(pb, theta, grad, u, frame):
             float(np.sqrt(np.dot(G["q"], G["q"])))
         return (per_term(pb.n) + per_term(pb.size + 1)) * (scale + extra)
     shift = 1.0
+    if frame is None:
+        # no row norms at hand: sum_i |u_i| ||a_i|| <= ||u|| sqrt(sum_i ||a_i||^2) (Cauchy-Schwarz), and
+        # ||a_i|| <= ||x_i|| + ||m|| + 1 gives sqrt(sum_i ||a_i||^2) <= ||X||_F + sqrt(n) (||m|| + 1) (Minkowski)
+        if pb.center is not None:
+            shift += float(np.sqrt(np.dot(pb.center, pb.center)))
+        scale = float(np.sqrt(np.dot(u, u))) * (_table_norm(pb) + math.sqrt(pb.n) * shift) * (1.0 + 1e-12)
+        return per_term(pb.n + 1) * (scale + extra)
     for c in (frame["c"], pb.center):
         if c is not None:
             shift += float(np.sqrt(np.dot(c, c)))
@@ -1467,7 +1621,15 @@ def method_lbfgs(run, theta0, use_scipy):
             run.note(P)
             return False
         kind, absolute = certificate(pb, ev, P, float(np.sqrt(np.dot(ev.grad, ev.grad))))
-        return run.record(ev.theta, P, kind, absolute, s=ev.s, derivs=ev.derivs, Atu=ev.Atu)
+        ended = run.record(ev.theta, P, kind, absolute, s=ev.s, derivs=ev.derivs, Atu=ev.Atu)
+        sampled = getattr(pb, "sampled", None)
+        if ended or force or done.get("newton") or not run.checks or not sampled or sampled["H"] is None:
+            return ended
+        # the gap passed but the distance did not, and the exact Hessian of the first check is at hand (formed
+        # for the modulus): Newton steps with it converge faster than L-BFGS's last iterations, at one
+        # evaluation each. Tried once; when they fail, L-BFGS goes on.
+        done["newton"] = True
+        return newton_polish(run, lambda e: inner_stop(e, force=True), steps=3, H=sampled["H"], ev=ev)
 
     theta, _, status = _lbfgs_driver(run, theta0, 0.0, inner_stop, use_scipy)
     if run.theta is None or done["skipped"]:
@@ -1522,19 +1684,22 @@ def _newton_hessian(pb, s):
     return H + np.diag(pb.beta)
 
 
-def newton_polish(run, stop, steps=4):
+def newton_polish(run, stop, steps=4, H=None, ev=None):
     """A few Newton steps from the kept point, accepted on a decrease of the gradient's norm rather than
     of the objective: near the optimum the objective's changes fall below its rounding (L-BFGS-B's line
     search then gives up) while the gradient still carries digits. Newton's method converges
     quadratically there (Nocedal & Wright 2006, Numerical Optimization, Thm 3.5). `stop(ev)` certifies a
-    point (the run keeps the better one) and says whether the run may end."""
+    point (the run keeps the better one) and says whether the run may end. A given `H` is used for every
+    step (a Hessian formed near the point: the steps then converge linearly, fast when it is close)."""
     pb = run.pb
-    ev = evaluate_smooth(pb, np.array(run.theta, copy=True))
+    if ev is None or not np.array_equal(ev.theta, run.theta):  # `ev`: the kept point's evaluation, if at hand
+        ev = evaluate_smooth(pb, np.array(run.theta, copy=True))
     norm = float(np.sqrt(np.dot(ev.grad, ev.grad)))
+    fixed = H
     for _ in range(steps):
         if run.out_of_passes() or not norm > 0:
             return False
-        H = _newton_hessian(pb, ev.s)
+        H = fixed if fixed is not None else _newton_hessian(pb, ev.s)
         if H is None:
             return False
         try:

@@ -802,6 +802,26 @@ def test_default_fit_certifies_the_distance_of_its_weights(cancer, lam):
     assert cert.param_tolerance == 1e-6
 
 
+def test_distance_certified_from_a_row_sample_of_the_hessian():
+    # 20000 x 50: the modulus comes from the Hessian over a strided sample of the rows (fewer than all);
+    # it must prove more curvature than the ridge weight alone and still contain the distance measured
+    # against Newton's method on the exact objective
+    rng = np.random.default_rng(3)
+    X = rng.normal(size=(20000, 50))
+    y = np.where(X @ (rng.normal(size=50) * (rng.random(50) < 0.3)) + 0.5 + rng.normal(size=20000) > 0, 1.0, -1.0)
+    names = tuple(f"x{j}" for j in range(50))
+    checked = objc.check_text(spec("mean logistic(y * s) + 5e-05 * l2sq(w)", margin=True), "lr.objc")
+    result = nm.fit(checked, X, y, None, names)
+    exact, _ = _newton_logistic(X, y, 5e-05)
+    measured = float(np.linalg.norm(np.r_[result.params["w"], result.params["b"]] - exact))
+    cert = result.certificate
+    sample = re.search(r"over (\d+) of the 20000 rows", cert.distance_note)
+    assert sample is not None and int(sample.group(1)) < 20000, cert.distance_note
+    assert cert.distance is not None and measured <= cert.distance <= 1e-6, (measured, cert)
+    # the cheap frame cannot prove more than the ridge weight on w (2 x 5e-5): the sample does
+    assert cert.curvature > 1e-4, cert
+
+
 def test_switching_the_parameter_stop_off_keeps_the_old_stop(cancer):
     X, y, names = cancer
     checked = objc.check_text(spec("mean logistic(y * s) + 5e-3 * l2sq(w)", margin=True), "lr.objc")
