@@ -59,8 +59,41 @@ def _tspan(tok: Token) -> Span:
     return Span(tok.line, tok.column, tok.end_line, tok.end_column)
 
 
+class _LocatedFault(Exception):
+    """Raised inside the transformer for a token lark accepted but objc cannot read; parse turns it
+    into a diagnostic at the token, not at 1:1 as an internal error."""
+
+    def __init__(self, message: str, span: Span, hint: str) -> None:
+        super().__init__(message)
+        self.span, self.hint = span, hint
+
+
+# one escape each: a backslash and what a Python string literal lets follow it
+_ESCAPE = re.compile(r"\\(x[0-9a-fA-F]{2}|u[0-9a-fA-F]{4}|U[0-9a-fA-F]{8}|N\{[^}]*\}|.?)")
+
+
 def _unquote(tok: Token) -> str:
-    return bytes(str(tok)[1:-1], "utf-8").decode("unicode_escape") if "\\" in tok else str(tok)[1:-1]
+    body = str(tok)[1:-1]
+    if "\\" not in body:
+        return body
+    try:
+        # non-ASCII text as escapes first: unicode_escape reads bytes as Latin-1, not UTF-8
+        return body.encode("latin-1", "backslashreplace").decode("unicode_escape")
+    except UnicodeDecodeError:
+        bad = next((m for m in _ESCAPE.finditer(body) if not _decodes(m.group(0))), None)
+        start, escape = (bad.start(), bad.group(0)) if bad is not None else (-1, str(tok))
+        column = tok.column + 1 + start
+        raise _LocatedFault(f"the escape '{escape}' in this string is incomplete or unknown",
+                            Span(tok.line, column, tok.line, column + len(escape)),
+                            'write a backslash as \\\\; \\xHH, \\uHHHH and \\N{name} need their digits or name') from None
+
+
+def _decodes(escape: str) -> bool:
+    try:
+        escape.encode("latin-1", "backslashreplace").decode("unicode_escape")
+        return True
+    except UnicodeDecodeError:
+        return False
 
 
 @v_args(meta=True)
@@ -165,6 +198,9 @@ class _ToTree(Transformer):
     def holdout_clause(self, meta, c):
         amount, percent, seed = c
         fraction = float(amount) / 100.0 if percent is not None else float(amount)
+        if seed is not None and not float(seed).is_integer():  # inf (1e400) or a fraction
+            raise _LocatedFault(f"the holdout seed must be a whole number, not {seed}", _tspan(seed),
+                                "e.g. holdout 20% seed 7")
         return st.HoldoutClause(fraction, None if seed is None else int(float(seed)), _span(meta))
 
     def validate_clause(self, meta, c):
@@ -367,5 +403,9 @@ def parse(source: SourceText) -> st.SpecTree:
     try:
         return _ToTree().transform(tree)
     except lark.exceptions.VisitError as err:  # a transformer bug, reported rather than leaked
+        if isinstance(err.orig_exc, _LocatedFault):
+            fault = err.orig_exc
+            raise SpecError((Diagnostic("E108", str(fault), fault.span, hint=fault.hint,
+                                        source_name=source.name),), source) from None
         raise SpecError((Diagnostic("E100", f"internal parse error: {err.orig_exc}", Span(1, 1, 1, 2),
                                     source_name=source.name),), source) from None

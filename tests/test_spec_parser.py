@@ -330,3 +330,35 @@ def test_lf_crlf_and_cr_end_lines_alike(end) -> None:
     (d,) = info.value.diagnostics
     assert (d.code, d.span.line, d.span.column) == ("E101", 6, 14)
     assert "   6 | goal l2sq(w) $" in str(info.value)
+
+
+# ---------------------------------------------------------------- found by tests/test_fuzz.py
+
+@pytest.mark.parametrize("string, column, shown", [
+    ('"\\x"', 15, "\\x"),  # regression: was E100 "internal parse error" at 1:1
+    ('"ab\\\\\\u12zz"', 19, "\\u"),  # an escaped backslash, then a \u with too few digits
+    ('"\\u00e9\\N{no such name}"', 21, "\\N{no such name}"),
+], ids=["truncated \\x", "short \\u", "unknown \\N name"])
+def test_a_broken_string_escape_is_located_at_the_escape(string: str, column: int, shown: str) -> None:
+    text = f"table t from {string}\n"
+    with pytest.raises(SpecError) as info:
+        parse(SourceText("esc.objc", text))
+    (d,) = info.value.diagnostics
+    assert (d.code, d.span.line, d.span.column) == ("E108", 1, column)
+    assert text[d.span.column - 1:d.span.end_column - 1] == shown and shown in d.message
+
+
+def test_non_ascii_text_beside_an_escape_keeps_its_letters() -> None:
+    # regression: unicode_escape decoded the UTF-8 bytes as Latin-1, so "é" came back as "Ã©"
+    (stmt,) = parse(SourceText("esc.objc", 'table t from "caf\u00e9\\n.csv"\n')).statements
+    assert stmt.path == "caf\u00e9\n.csv"
+
+
+@pytest.mark.parametrize("seed", ["1e400", "2.5"])
+def test_a_holdout_seed_that_is_not_whole_is_located(seed: str) -> None:
+    # regression: `seed 1e400` raised OverflowError inside the parser, shown as E100 at 1:1
+    text = f'table t from "a.csv"\n  holdout 20% seed {seed}\n'
+    with pytest.raises(SpecError) as info:
+        parse(SourceText("seed.objc", text))
+    (d,) = info.value.diagnostics
+    assert (d.code, d.span.line, d.span.column) == ("E108", 2, 20) and seed in d.message
