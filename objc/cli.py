@@ -239,9 +239,11 @@ def cmd_fit(args) -> int:
                                                      Path(args.data) if args.data else None)
     show = _progress_printer(not args.json and sys.stderr.isatty())
     result = training.run_backend(checked, train, args.backend, tunables, tol=args.tol, solver=args.solver,
-                                  allow_nonconvex=args.local_ok, progress=show, param_tol=args.param_tol)
+                                  allow_nonconvex=args.local_ok, progress=show, param_tol=args.param_tol,
+                                  max_passes=args.max_passes)
     if show:
         sys.stderr.write("\r" + " " * 70 + "\r")
+    training.require_finished(checked, result, args.max_passes)
     out = Path(args.output) if args.output else Path(spec_path.stem + ".model.json")
     doc = training.evaluated_document(checked, spec_path, train, held, held_label, result, tunables)
     train_metrics, held_metrics = doc["training_metrics"], doc["holdout_metrics"]
@@ -295,6 +297,16 @@ def _distance_line(cert) -> str:
         return head
     return head + "\n" + textwrap.fill(cert.distance_note, width=100, initial_indent=" " * 10,
                                        subsequent_indent=" " * 10)
+
+
+def _positive_int(text: str) -> int:
+    try:
+        n = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number of passes, got '{text}'") from None
+    if n < 1:
+        raise argparse.ArgumentTypeError(f"the pass budget must be at least 1, got {n}")
+    return n
 
 
 def _param_tol(text: str) -> float | None:
@@ -441,7 +453,8 @@ def cmd_sweep(args) -> int:
         setting = dict(base, **{t.name: best})
         train, held, held_label = training.bind_training(checked, spec_path.parent, Path(args.data) if args.data else None)
         fit = training.run_backend(checked, train, args.backend, setting, tol=args.tol, solver=args.solver,
-                                   param_tol=args.param_tol)
+                                   param_tol=args.param_tol, max_passes=args.max_passes)
+        training.require_finished(checked, fit, args.max_passes)
         doc = training.evaluated_document(checked, spec_path, train, held, held_label, fit, setting)
         written.append(str(save_model(Path(args.save_best), doc, fit.params)))
     if args.json:
@@ -544,6 +557,8 @@ def _parser() -> argparse.ArgumentParser:
                    help="numpy backend: also stop only once the learned parameters are within X (Euclidean norm) "
                         "of the exact optimum: a certified bound where the objective is strongly convex in all of "
                         "them, else an uncertified estimate; 'off' stops on --tol alone (default 1e-6)")
+    f.add_argument("--max-passes", type=_positive_int, metavar="N",
+                   help="numpy backend: a budget of passes over the data; a fit that runs out writes nothing")
     f.add_argument("--set", action="append", metavar="NAME=VALUE", help="give a tunable a value (repeatable)")
     f.add_argument("-o", "--output", help="model file to write (.json; the arrays go beside it as .npz)")
     f.add_argument("--local-ok", action="store_true",
@@ -571,6 +586,8 @@ def _parser() -> argparse.ArgumentParser:
     sw.add_argument("--param-tol", type=_param_tol, default=1e-6, metavar="X",
                     help="as for fit: each fit stops once its parameters are within X of the optimum; 'off' "
                          "stops on --tol alone (default 1e-6)")
+    sw.add_argument("--max-passes", type=_positive_int, metavar="N",
+                    help="numpy backend: pass budget of the --save-best refit; running out writes nothing")
     sw.add_argument("--set", action="append", metavar="NAME=VALUE", help="hold another tunable at a value")
     sw.add_argument("--plot", metavar="PNG", help="also draw the sweep to this PNG file")
     sw.add_argument("--save-best", metavar="MODEL", help="refit at the chosen value and save the model")
@@ -621,7 +638,8 @@ def main(argv: list[str] | None = None) -> int:
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return EXIT_OK
     except KeyboardInterrupt:
-        sys.stderr.write("objc: interrupted; nothing was written\n")
+        # every output is staged and renamed into place whole, so whatever was written is complete
+        sys.stderr.write("objc: interrupted; no output was left half-written\n")
         return 130
     except Exception as err:  # noqa: BLE001 - the promise is: never a traceback
         msg = f"objc {args.command}: internal error ({type(err).__name__}: {err}); nothing was written. " \

@@ -3,11 +3,15 @@ atomically so a failed run leaves nothing half-written."""
 
 from __future__ import annotations
 
+import contextlib
+import errno
 import hashlib
 import io
 import json
 import os
+import signal
 import tempfile
+import threading
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -46,9 +50,31 @@ def _current_umask() -> int:
     return mask
 
 
-def _atomic_write(path: Path, data: bytes) -> None:
+def _write_failed(path: Path, err: OSError) -> SpecError:
+    """A write that the system refused (read-only folder, a folder in the way, a full disk) as one
+    clear message, never a traceback."""
+    reason = err.strerror or type(err).__name__
+    if isinstance(err, IsADirectoryError) or path.is_dir():
+        reason, hint = "it is a folder", "give a file name, e.g. OUT/model.json"
+    elif getattr(err, "errno", None) == errno.ENOSPC:
+        hint = "free some space on that disk, or write elsewhere"
+    elif isinstance(err, PermissionError):
+        hint = "choose a folder you may write to"
+    else:
+        hint = "check the output path"
+    return SpecError((Diagnostic("M507", f"cannot write {path}: {reason}; nothing was written", NO_SPAN,
+                                 hint=hint, source_name=str(path)),))
+
+
+def _staged(path: Path, data: bytes) -> str:
+    """`data` in a hidden temporary file beside `path`, flushed to disk; its name."""
+    if path.is_dir():
+        raise IsADirectoryError(errno.EISDIR, "Is a directory", str(path))
+    if path.exists() and not path.is_file():
+        # a device or a pipe (/dev/full, a FIFO): renaming over it would replace the node itself
+        raise OSError(errno.EINVAL, "not a regular file (a device or a pipe)", str(path))
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
         # mkstemp creates the file 0600; the output is an ordinary file, so it gets the mode the
         # user's umask gives a new file, as open() would
@@ -57,15 +83,66 @@ def _atomic_write(path: Path, data: bytes) -> None:
             f.write(data)
             f.flush()
             os.fsync(f.fileno())
-        os.replace(tmp, path)
     except BaseException:
         if os.path.exists(tmp):
             os.unlink(tmp)
         raise
+    return tmp
+
+
+@contextlib.contextmanager
+def _signals_held():
+    """Hold Ctrl-C and SIGTERM back for the few renames that put a set of files in place, so an
+    interruption lands before them (nothing new) or after them (all new), never between.
+
+    The Python-level handlers are swapped, not the thread's signal mask: a process-directed signal
+    may be taken by any thread (BLAS starts some), but Python runs every handler in the main thread."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    pending: list[int] = []
+    held = (signal.SIGINT, signal.SIGTERM)
+    previous = {s: signal.signal(s, lambda signum, frame: pending.append(signum)) for s in held}
+    try:
+        yield
+    finally:
+        for s, handler in previous.items():
+            signal.signal(s, handler)
+        if pending:
+            signal.raise_signal(pending[0])  # now delivered to the handler that was in force
+
+
+def atomic_write_files(items: list[tuple[Path, bytes]]) -> None:
+    """Write every file or none: each is staged in full first, then all are renamed into place in
+    order, so an interruption (Ctrl-C, a full disk) before the renames leaves nothing new. A SIGKILL
+    cannot be caught: it may leave a hidden `.NAME.*.tmp` file, never a file under the output name."""
+    staged: list[tuple[str, Path]] = []
+    current = Path(items[0][0]) if items else Path()
+    try:
+        for path, data in items:
+            current = Path(path)
+            staged.append((_staged(current, data), current))
+        with _signals_held():
+            for tmp, path in staged:
+                current = path
+                os.replace(tmp, path)
+    except OSError as err:
+        raise _write_failed(current, err) from None
+    finally:
+        for tmp, _ in staged:
+            if os.path.exists(tmp):
+                os.unlink(tmp)
+
+
+def _atomic_write(path: Path, data: bytes) -> None:
+    atomic_write_files([(Path(path), data)])
 
 
 def save_model(out: Path, document: dict, params: dict[str, np.ndarray | float]) -> Path:
-    """Write MODEL.json and MODEL.npz; the JSON records the npz's sha256 so a mismatched pair is caught."""
+    """Write MODEL.json and MODEL.npz; the JSON records the npz's sha256 so a mismatched pair is caught.
+
+    Both are staged before either is renamed, the JSON last: a reader finds the JSON only once its
+    arrays are in place."""
     json_path, npz_path = model_paths(out)
     buf = io.BytesIO()
     np.savez(buf, **{name: np.asarray(v, dtype=np.float64) for name, v in params.items()})
@@ -77,8 +154,7 @@ def save_model(out: Path, document: dict, params: dict[str, np.ndarray | float])
     doc = plain_json(doc)
     doc["document_sha256"] = document_digest(doc)
     text = dumps_strict(doc).encode("utf-8") + b"\n"
-    _atomic_write(npz_path, arrays)
-    _atomic_write(json_path, text)
+    atomic_write_files([(npz_path, arrays), (json_path, text)])
     return json_path
 
 

@@ -59,6 +59,8 @@ from __future__ import annotations
 
 import difflib
 import fnmatch
+import re
+import warnings
 import zipfile
 from dataclasses import dataclass, replace
 from pathlib import Path
@@ -78,6 +80,7 @@ Task = Literal["margin", "residual"]
 
 MAX_ROWS_LISTED = 5
 _ROW_NOTE = "rows count data records from 1 (a CSV header line is not counted)"
+_THOUSANDS = re.compile(r"[-+]?\d{1,3}([,.' ]\d{3})+([.,]\d+)?")
 _CSV_SUFFIXES = (".csv", ".csv.gz", ".csv.bz2", ".csv.xz", ".csv.zip")
 
 
@@ -264,12 +267,71 @@ def _frame_table(frame, where: _Where, span: Span) -> dict[str, np.ndarray]:
 
 
 def _read_csv(path: Path, sep: str, where: _Where, span: Span) -> dict[str, np.ndarray]:
-    # pandas renames a repeated header name ("a", "a.1"); read the header line raw to catch that
-    header = pd.read_csv(path, sep=sep, header=None, nrows=1, dtype=str, keep_default_na=False)
+    try:
+        # pandas renames a repeated header name ("a", "a.1"); read the header line raw to catch that
+        header = pd.read_csv(path, sep=sep, header=None, nrows=1, dtype=str, keep_default_na=False)
+    except UnicodeDecodeError as exc:
+        raise _not_utf8(path, exc, where, span) from None
     raw_names = [str(v) for v in header.iloc[0].tolist()] if len(header) else []
+    for j, n in enumerate(raw_names):
+        if not n.strip():
+            # pandas would invent a name ("Unnamed: 1") the user never wrote and `all` would pick it
+            raise where.error("T104", f"column {j + 1} of {_q(where.file)} has no name", span,
+                              "give every column a name in the header line (a trailing separator makes "
+                              "an empty last column)")
     _check_unique(raw_names, where, span)
-    return _frame_columns(pd.read_csv(path, sep=sep, keep_default_na=False, na_values=list(MISSING_CELLS)),
-                          where, span)
+    with warnings.catch_warnings():
+        # a record with more fields than the header: by default pandas would silently make the first
+        # column the index and shift every name one column over; index_col=False keeps the names in
+        # place, and its warning (fields dropped) is made an error here
+        warnings.simplefilter("error", pd.errors.ParserWarning)
+        try:
+            frame = pd.read_csv(path, sep=sep, keep_default_na=False, na_values=list(MISSING_CELLS),
+                                index_col=False)
+        except pd.errors.ParserWarning:
+            line = _first_long_line(path, sep, len(raw_names))
+            raise where.error("T102", f"cannot read {_q(where.file)} as csv: "
+                              + (f"line {line}" if line else "a record") + f" has more fields than the "
+                              f"{len(raw_names)} names of the header", span,
+                              "give every record one field per header name (quote fields holding "
+                              "the separator)") from None
+        except UnicodeDecodeError as exc:
+            raise _not_utf8(path, exc, where, span) from None
+    return _frame_columns(frame, where, span)
+
+
+def _first_long_line(path: Path, sep: str, width: int) -> int | None:
+    """The file line where the first record with more than `width` fields starts (plain files only)."""
+    if _format_of(path) not in ("csv", "tsv") or not path.name.lower().endswith((".csv", ".tsv")):
+        return None
+    import csv
+    with open(path, newline="", encoding="utf-8", errors="replace") as f:
+        reader = csv.reader(f, delimiter=sep)
+        start = 1
+        for record in reader:
+            if len(record) > width:
+                return start
+            start = reader.line_num + 1
+    return None
+
+
+def _not_utf8(path: Path, exc: UnicodeDecodeError, where: _Where, span: Span) -> SpecError:
+    """A CSV that is not UTF-8: say which line holds the first bad byte, and how to convert."""
+    line = None
+    if not path.name.lower().endswith((".gz", ".bz2", ".xz", ".zip")):
+        raw = path.read_bytes()
+        try:
+            raw.decode("utf-8")
+        except UnicodeDecodeError as e:
+            line = raw.count(b"\n", 0, e.start) + 1
+            exc = e
+    utf16 = exc.object[:2] in (b"\xff\xfe", b"\xfe\xff") if isinstance(exc.object, bytes) else False
+    at = f" at line {line}" if line else ""
+    hint = ("it looks like UTF-16 text: save it as UTF-8" if utf16 else
+            "save the file as UTF-8 (a spreadsheet's 'CSV UTF-8' export, or iconv -f latin1 -t utf-8 for "
+            "a Latin-1 file)")
+    return where.error("T102", f"cannot read {_q(where.file)} as csv: byte 0x{exc.object[exc.start]:02x}{at} "
+                       "is not UTF-8 text", span, hint)
 
 
 def _check_unique(names: Sequence[str], where: _Where, span: Span) -> None:
@@ -586,8 +648,11 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
         values, text_rows = _as_float(table[name])
         if len(text_rows):
             examples = ", ".join(_value(table[name][i]) for i in text_rows[:3])
+            cells = [str(table[name][i]) for i in text_rows[:3]]
+            hint = ("remove the thousands separators (write 1000, not 1,000)"
+                    if any(_THOUSANDS.fullmatch(c.strip()) for c in cells) else "")
             diags.append(where.diag(code, f"{what} {_q(name)} in {_q(shown)} is not numeric at "
-                                    f"{_rows_text(text_rows + 1)} (values {examples})", span, rows=True))
+                                    f"{_rows_text(text_rows + 1)} (values {examples})", span, hint, rows=True))
         floats[name] = values
 
     for p in picks:
@@ -840,12 +905,18 @@ def _matches(raw: np.ndarray, value: str | float) -> np.ndarray:
 
 
 def _fit_stats(X: np.ndarray, names: tuple[str, ...], spans: Sequence[Span], where: _Where) -> Standardization:
-    means = X.mean(axis=0)
-    scales = X.std(axis=0)  # population standard deviation (ddof 0), as scikit-learn's StandardScaler
+    with np.errstate(over="ignore", invalid="ignore"):
+        means = X.mean(axis=0)
+        scales = X.std(axis=0)  # population standard deviation (ddof 0), as scikit-learn's StandardScaler
     diags = []
     for j, name in enumerate(names):
         top = np.max(np.abs(X[:, j])) if len(X) else 0.0
-        if not scales[j] > 1e-12 * top:  # zero spread, or only rounding noise
+        if not (np.isfinite(scales[j]) and np.isfinite(means[j])):
+            # values near the float limit: the spread overflows, and dividing by inf would zero the column
+            diags.append(where.diag("T150", f"input {_q(name)} of {_q(where.file)} holds values too large to "
+                                    f"standardize (up to {_value(top)}; their spread overflows)", spans[j],
+                                    "rescale the column (e.g. a feature dividing it by a power of ten)"))
+        elif not scales[j] > 1e-12 * top:  # zero spread, or only rounding noise
             diags.append(where.diag("T150", f"input {_q(name)} of {_q(where.file)} is constant "
                                     f"(every value is {_value(X[0, j])}); `standardize` would divide by "
                                     "zero", spans[j], "leave it out of the inputs"))

@@ -111,7 +111,8 @@ def numpy_refusal(checked: CheckedObjective, err) -> SpecError:
 def run_backend(checked: CheckedObjective, data: tables.BoundData, backend: Backend,
                 tunables: dict[str, float] | None = None, *, tol: float = 1e-6, solver: str | None = None,
                 allow_nonconvex: bool = False, progress: Callable | None = None,
-                theta0: np.ndarray | None = None, param_tol: float | None = 1e-6) -> FitResult:
+                theta0: np.ndarray | None = None, param_tol: float | None = 1e-6,
+                max_passes: int | None = None) -> FitResult:
     """Train on bound data. The NumPy backend stops at a relative certificate of `tol` and, unless
     `param_tol` is None, once the parameters are within `param_tol` of the optimum (a certified bound
     where the objective is strongly convex in all of them); the cvxpy backend reports its solver's status."""
@@ -141,7 +142,7 @@ def run_backend(checked: CheckedObjective, data: tables.BoundData, backend: Back
         try:
             result = numpy_module.fit(checked, data.X, data.y, data.weights, data.input_names, tunables, tol=tol,
                                       allow_nonconvex=allow_nonconvex, progress=record, theta0=theta0,
-                                      param_tol=param_tol)
+                                      param_tol=param_tol, max_passes=max_passes)
         except numpy_module.NotSupported as err:
             raise numpy_refusal(checked, err) from None
         step = max(1, len(history) // 200)  # a few hundred points draw the curve; keep the model file small
@@ -149,6 +150,26 @@ def run_backend(checked: CheckedObjective, data: tables.BoundData, backend: Back
     if not result.seconds:
         result = replace(result, seconds=time.perf_counter() - start)
     return result
+
+
+# statuses that mean the solver stopped on its budget, not on its certificate
+BUDGET_STATUSES = ("max passes", "max iterations")
+
+
+def require_finished(checked: CheckedObjective, result: FitResult, max_passes: int | None) -> None:
+    """Refuse to save a fit that ran out of passes (E404): a model file would claim a trained model.
+    With an explicit pass budget, anything short of the asked certificate counts as running out."""
+    short = result.status in BUDGET_STATUSES or (
+        max_passes is not None and result.status not in ("optimal", "local (non-convex)"))
+    if not short:
+        return
+    rel = result.certificate.relative
+    reached = "" if rel is None else f" (relative certificate {rel:.3g}, asked {result.certificate.tolerance:g})"
+    raise SpecError((Diagnostic("E404", f"training stopped after {result.passes} passes over the data without "
+                                f"reaching its certificate{reached}: status '{result.status}'; nothing was "
+                                "written", NO_SPAN,
+                                hint="allow more passes (--max-passes), or loosen --tol",
+                                source_name=checked.source.name),), checked.source)
 
 
 def scores(form: ScoreForm, params: dict, X: np.ndarray, y: np.ndarray | None = None) -> np.ndarray:
@@ -273,7 +294,9 @@ def model_document(checked: CheckedObjective, spec_path: Path, data: tables.Boun
                             "distance_note": result.certificate.distance_note,
                             "param_tolerance": result.certificate.param_tolerance,
                             "weights_distance": result.certificate.weights_distance},
-            "iterations": result.iterations, "passes": result.passes, "seconds": result.seconds,
+            # no wall-clock time here: a timing belongs to a run, not to the model, and the document's
+            # digest must come out the same for the same spec, data and seed (docs/reliability.md)
+            "iterations": result.iterations, "passes": result.passes,
             "history": result.extra.get("history", []),
         },
         "training_metrics": train_metrics,

@@ -95,7 +95,10 @@ CLEAN = "a,b,y,w,s\n1,10,yes,1,p\n2,20,no,2,q\n3,31,yes,1,r\n4,39,no,0.5,s\n5,52
 
 # ============================================================== the broken corpus
 # Each case: files to write, the binding, the task, then what the error must say: code, span, the
-# column it names, the rows it lists (None when the problem is not about rows).
+# column it names, the rows it lists (None when the problem is not about rows). These are the cases
+# whose bindings are built by hand; every case a spec can state (ragged rows, empty files, duplicate
+# names, one class, weights, constant columns under standardize, ...) lives in the one end-to-end
+# corpus, tests/test_tables_corpus.py, which runs it through bind_table and the command line.
 
 def _case(id, files, b, code, span, column, rows, task="margin", extra=None):
     return pytest.param(files, b, task, code, span, column, rows, extra or {}, id=id)
@@ -115,13 +118,8 @@ BROKEN = [
           TABLE, "a", None),
     _case("npz-columns-mismatch", {"data.npz": {"data": np.ones((3, 2)), "columns": np.array(["a", "b", "y"])}},
           binding("data.npz"), "T102", TABLE, None, None),
-    _case("csv-ragged", {"data.csv": "a,b,y\n1,2,yes\n1,2,3,4\n"}, binding(), "T102", TABLE, None, None,
-          extra={"in_message": "line 3"}),
     _case("csv-not-text", {"data.csv": b"\xff\xfe\x00\x81\x00\xc3(\n\x9f,\x80\n"}, binding(), "T102", TABLE,
           None, None),
-    _case("csv-header-only", {"data.csv": "a,b,y\n"}, binding(), "T103", TABLE, None, None),
-    _case("csv-empty-file", {"data.csv": ""}, binding(), "T103", TABLE, None, None),
-    _case("duplicate-column", {"data.csv": "a,b,a,y\n1,2,3,yes\n"}, binding(), "T104", TABLE, "a", None),
     _case("input-missing", {"data.csv": CLEAN}, binding(inputs=columns("a", "bb"), label_map=yes_no()), "T110",
           INPUTS, "bb", None, extra={"hint": "did you mean 'b'?"}),
     _case("target-missing", {"data.csv": CLEAN}, binding(target="late", label_map=yes_no()), "T110", TARGET,
@@ -154,23 +152,13 @@ BROKEN = [
           [2, 3, 5, 7, 8], extra={"in_message": "(7 rows in all)", "hint": 'maybe -> -1'}),
     _case("zero-one-without-map", {"data.csv": "a,b,y\n1,2,1\n2,3,0\n3,4,1\n"}, binding(), "T131", TARGET, "y", [2],
           extra={"hint": "target y: 1 -> +1, 0 -> -1"}),
-    _case("one-class", {"data.csv": "a,b,y\n1,2,yes\n2,3,yes\n"}, binding(label_map=yes_no()), "T132", TARGET, "y",
-          None),
     _case("real-target-text", {"data.csv": "a,b,y\n1,2,3.5\n2,3,n/a?\n3,4,1\n"}, binding(), "T133", TARGET, "y", [2],
           task="residual"),
     _case("label-map-bad-label", {"data.csv": CLEAN}, binding(label_map=LabelMap((("yes", 2.0), ("no", -1.0)), TARGET)),
           "T134", TARGET, None, None),
-    _case("negative-row-weight", {"data.csv": "a,b,y,w\n1,2,yes,1\n2,3,no,-1\n3,5,yes,2\n4,4,no,-0.5\n"},
-          binding(label_map=yes_no(), row_weight="w", row_weight_span=ROWW), "T140", ROWW, "w", [2, 4]),
-    _case("nan-row-weight", {"data.csv": "a,b,y,w\n1,2,yes,1\n2,3,no,\n3,5,yes,2\n"},
-          binding(label_map=yes_no(), row_weight="w", row_weight_span=ROWW), "T120", ROWW, "w", [2]),
-    _case("zero-row-weights", {"data.csv": "a,b,y,w\n1,2,yes,0\n2,3,no,0\n"},
-          binding(label_map=yes_no(), row_weight="w", row_weight_span=ROWW), "T141", ROWW, "w", None),
     _case("class-weights-on-real-target", {"data.csv": "a,b,y\n1,2,0.5\n2,3,1.5\n"},
           binding(class_weights=((1.0, 3.0),), class_weights_span=CLASSW), "T142", CLASSW, None, None,
           task="residual"),
-    _case("constant-under-standardize", {"data.csv": "a,b,y\n1,7,yes\n2,7,no\n3,7,yes\n"},
-          binding(label_map=yes_no(), standardize=True), "T150", INPUTS, "b", None),
     _case("unknown-function", {"data.csv": CLEAN},
           binding(label_map=yes_no(), features=(feature("f", call("log2p", name("a"))),)), "T160", FEATURE, None, None,
           extra={"hint": "log1p"}),
@@ -221,7 +209,7 @@ def test_broken_table_is_reported_at_its_clause(tmp_path, files, b, task, code, 
 
 def test_corpus_covers_many_codes():
     codes = {p.values[3] for p in BROKEN}
-    assert len(BROKEN) >= 15 and len(codes) >= 20
+    assert len(BROKEN) >= 15 and len(codes) >= 15
 
 
 def test_several_missing_columns_reported_together(tmp_path):
@@ -253,12 +241,6 @@ def test_saved_stats_missing_an_input(tmp_path):
     stats = Standardization(("a",), (0.0,), (1.0,))
     d = error_of(lambda: bind(tmp_path, binding(label_map=yes_no()), standardization=stats), "T151")
     assert "'b'" in d.message
-
-
-def test_pickled_npz_is_refused(tmp_path):
-    np.savez(tmp_path / "data.npz", a=np.array([{"x": 1}, None], dtype=object), y=np.array([1.0, -1.0]))
-    d = error_of(lambda: bind(tmp_path, binding("data.npz", inputs=columns("a"))), "T102")
-    assert "'data.npz'" in d.message
 
 
 # ============================================================== holdout errors
