@@ -2573,6 +2573,9 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
         status = "local (non-convex)"
     elif rel <= tol:
         status = "optimal"
+    elif run.out_of_passes():
+        # the method stops itself when the budget runs out and calls that converged: say which it was
+        status = "max passes"
     elif status == "converged":
         status = "optimal (inaccurate)"
     elif status in ("no progress", "line search failed"):

@@ -963,3 +963,18 @@ def test_generated_command_line_binds_missing_cells_as_objc_does(tmp_path):
     assert proc.returncode == 0, proc.stderr
     here = nm.fit(checked, data.X, data.y, data.weights, data.input_names)
     assert json.loads((tmp_path / "w.json").read_text())["objective"] == pytest.approx(here.objective, rel=1e-9)
+
+
+def test_a_fit_that_runs_out_of_passes_says_so(cancer):
+    # regression: L-BFGS stopped by the pass budget was reported as 'optimal (inaccurate)'
+    X, y, names = cancer
+    checked = objc.check_text(spec("mean logistic(y * s) + 0.0001 * l2sq(w)", margin=True), "budget.objc")
+    result = nm.fit(checked, X, y, None, names, max_passes=6)
+    assert result.status == "max passes" and result.certificate.relative > 1e-6
+    # with room to finish, the same fit is optimal (against scikit-learn's newton-cg on the same
+    # objective, breast cancer: Street, Wolberg & Mangasarian 1993; C = 1 / (2 n 1e-4))
+    from sklearn.linear_model import LogisticRegression
+    full = nm.fit(checked, X, y, None, names)
+    ref = LogisticRegression(C=1 / (2 * len(y) * 1e-4), solver="newton-cg", tol=1e-14, max_iter=10000).fit(X, y)
+    assert full.status == "optimal"
+    np.testing.assert_allclose(full.params["w"], ref.coef_[0], atol=1e-5)
