@@ -228,24 +228,12 @@ def _frame_column(frame, name):
 def _frame_inputs(frame, table):
     """X as the spec's table clause reads it: the named, matched or `all` inputs in its order, then
     each `feature` computed from the columns; returns (matrix, input names)."""
-    import fnmatch
-    header = [str(c) for c in frame.columns]
-    reserved = {c for c in (table["target"], table["row_weight"]) if c is not None}
-    chosen = []
-    for kind, text in table["inputs"]:
-        if kind == "column":
-            if text not in header:
-                raise ValueError(f"X has no column {text!r}, which the spec names as an input")
-            chosen.append(text)
-        elif kind == "pattern":
-            matched = [c for c in header if fnmatch.fnmatchcase(c, text) and c not in reserved]
-            if not matched:
-                raise ValueError(f"no column of X matches the spec's input pattern {text!r}")
-            chosen += matched
-        else:
-            chosen += [str(c) for c in frame.columns
-                       if str(c) not in reserved and np.asarray(frame[c]).dtype.kind in "biuf"]
-    chosen = [c for c in dict.fromkeys(chosen) if c not in table["excluded"]]
+    by_name = {str(c): c for c in frame.columns}
+
+    def fail(message):
+        raise ValueError(f"X: {message}")
+    chosen = _select_inputs(table, list(by_name), lambda c: np.asarray(frame[by_name[c]]).dtype.kind in "biuf",
+                            fail)
     data = {c: _frame_column(frame, c) for c in chosen}
     n = len(frame)
     for fname, fn in table["features"]:
@@ -345,30 +333,40 @@ def _numeric(path, name, cells):
     return values  # an infinite value is treated as a missing one, by the spec's `missing` rule, as objc does
 
 
-def _choose_inputs(path, table, header, columns):
+def _select_inputs(table, header, numeric, fail):
+    """The spec's input columns among `header`, in the spec's order: named, matched by a pattern, or
+    every column `numeric(name)` accepts for `all`, less the target, the row weights and `except`;
+    `fail(message)` raises the caller's own error. The one selection rule of the module's command
+    line and of its estimator given a DataFrame."""
     import fnmatch
     reserved = {c for c in (table["target"], table["row_weight"]) if c is not None}
     chosen = []
     for kind, text in table["inputs"]:
         if kind == "column":
-            if text not in columns:
-                raise TableError(f"{path}: input column {text!r} is not in the table")
+            if text not in header:
+                fail(f"input column {text!r} is not in the table")
             chosen.append(text)
         elif kind == "pattern":
             matched = [c for c in header if fnmatch.fnmatchcase(c, text) and c not in reserved]
             if not matched:
-                raise TableError(f"{path}: pattern {text!r} matches no column")
+                fail(f"pattern {text!r} matches no column")
             chosen += matched
         else:
-            for c in header:
-                if c in reserved or c in table["excluded"]:
-                    continue
-                try:
-                    [float(v) for v in columns[c] if v not in _MISSING_CELLS]
-                except ValueError:
-                    continue
-                chosen.append(c)
-    chosen = [c for c in dict.fromkeys(chosen) if c not in table["excluded"]]
+            chosen += [c for c in header if c not in reserved and c not in table["excluded"] and numeric(c)]
+    return [c for c in dict.fromkeys(chosen) if c not in table["excluded"]]
+
+
+def _choose_inputs(path, table, header, columns):
+    def numbers_only(name):
+        try:
+            [float(v) for v in columns[name] if v not in _MISSING_CELLS]
+        except ValueError:
+            return False
+        return True
+
+    def fail(message):
+        raise TableError(f"{path}: {message}")
+    chosen = _select_inputs(table, header, numbers_only, fail)
     if not chosen:
         raise TableError(f"{path}: no input column selected")
     return chosen
