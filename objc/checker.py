@@ -474,7 +474,7 @@ def _kink_at_zero_only(e: tt.TExpr) -> bool:
 def _is_sum_with_square(e: tt.TExpr) -> bool:
     if isinstance(e, tt.Add):
         return _is_sum_with_square(e.left) or _is_sum_with_square(e.right)
-    return isinstance(e, tt.Apply) and e.entry == "power" and not e.tuned and e.option_dict.get("p") == 2
+    return tt.is_square(e)
 
 
 # ---------------------------------------------------------------- numerical evaluation (witnesses)

@@ -247,6 +247,11 @@ class Aggregate:
 TExpr = Union[Const, TunableRef, DataRef, ParamRef, ScoreRef, Apply, CustomLoss, Add, Neg, Mul, Div, Dot, Aggregate]
 
 
+def is_square(e: TExpr) -> bool:
+    """e is u ^ 2 with the exponent written as the number 2 (not a tunable that defaults to 2)."""
+    return isinstance(e, Apply) and e.entry == "power" and not e.tuned and e.option_dict.get("p") == 2.0
+
+
 def children(e: TExpr) -> tuple[TExpr, ...]:
     """The direct subexpressions of a typed node (a score's expression and a custom loss's argument
     and body included), for the walks every later stage makes."""

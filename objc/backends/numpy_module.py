@@ -369,15 +369,14 @@ def _penalty_form(core: tt.TExpr) -> str | None:
     if isinstance(core, tt.Apply) and core.entry == "abs" and is_param(core.args[0]) and \
             core.args[0].shape.kind == "scalar":
         return "l1"
-    if isinstance(core, tt.Apply) and core.entry == "power" and not core.tuned and core.option_dict.get("p") == 2.0 and \
-            is_param(core.args[0]) and core.args[0].shape.kind == "scalar":
+    if tt.is_square(core) and is_param(core.args[0]) and core.args[0].shape.kind == "scalar":
         return "l2sq"
     if isinstance(core, tt.Aggregate) and core.kind == "sum" and core.over == "entries" and \
             isinstance(core.operand, tt.Apply) and is_param(core.operand.args[0]):
         inner = core.operand
         if inner.entry == "abs":
             return "l1"
-        if inner.entry == "power" and not inner.tuned and inner.option_dict.get("p") == 2.0:
+        if tt.is_square(inner):
             return "l2sq"
     return None
 
