@@ -209,7 +209,7 @@ class _Resolver:
                 walk(e.operand)
             elif isinstance(e, st.Power):
                 walk(e.base)
-                if not isinstance(e.exponent, st.Number):
+                if st.literal_number(e.exponent) is None:
                     self.error("E219", "an exponent in a feature must be a literal number", e.exponent.span,
                                hint="features are fixed transformations of the data; a tunable exponent belongs "
                                     "in the goal or a loss")
@@ -236,11 +236,7 @@ class _Resolver:
         if isinstance(e, st.Power):
             base = self.expr(e.base, loss_env, where)
             exp = e.exponent
-            value = None
-            if isinstance(exp, st.Number):
-                value = exp.value
-            elif isinstance(exp, st.Negate) and isinstance(exp.operand, st.Number):
-                value = -exp.operand.value
+            value = st.literal_number(exp)
             tuned = self._tunable_setting(exp, loss_env)
             if tuned is not None:
                 return self._tuned_power(e, base, tuned) or bad

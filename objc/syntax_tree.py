@@ -68,6 +68,18 @@ class Select:
 Expr = Union[Number, Name, Call, Negate, Binary, Power, Aggregate, Select]
 
 
+def literal_number(e: Expr) -> float | None:
+    """The value of a number written in the spec, signs included (`-1`, `- -2`); None for anything
+    else. The one rule for where a literal is required: exponents and catalog settings, in features
+    and in the goal alike."""
+    if isinstance(e, Number):
+        return float(e.value)
+    if isinstance(e, Negate):
+        inner = literal_number(e.operand)
+        return None if inner is None else -inner
+    return None
+
+
 # ---------------------------------------------------------------- statements
 
 @dataclass(frozen=True)

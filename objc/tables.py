@@ -439,15 +439,6 @@ def _missing_mask(a: np.ndarray) -> np.ndarray:
 
 # ---------------------------------------------------------------- derived features
 
-def _literal(e: st.Expr) -> float | None:
-    if isinstance(e, st.Number):
-        return float(e.value)
-    if isinstance(e, st.Negate):
-        inner = _literal(e.operand)
-        return None if inner is None else -inner
-    return None
-
-
 def _expr_names(e: st.Expr) -> list[st.Name]:
     if isinstance(e, st.Name):
         return [e]
@@ -481,7 +472,7 @@ def _check_expr(e: st.Expr, feature: DerivedFeature, where: _Where) -> list[Diag
             return bad("a dot product is not a row-by-row formula", e.span)
         return _check_expr(e.left, feature, where) + _check_expr(e.right, feature, where)
     if isinstance(e, st.Power):
-        p = _literal(e.exponent)
+        p = st.literal_number(e.exponent)
         if p is None:
             return bad("the exponent after ^ must be a number", e.exponent.span)
         return _check_options("power", (p,), feature, e.span, where) + _check_expr(e.base, feature, where)
@@ -506,7 +497,7 @@ def _check_expr(e: st.Expr, feature: DerivedFeature, where: _Where) -> list[Diag
             return bad(f"{e.func} takes {entry.arity} argument(s)", e.span)
         settings = []
         for a in e.args[entry.arity:]:
-            v = _literal(a)
+            v = st.literal_number(a)
             if v is None:
                 return bad(f"the settings of {e.func} after its argument must be numbers", a.span)
             settings.append(v)
@@ -538,14 +529,14 @@ def _eval_expr(e: st.Expr, values: Mapping[str, np.ndarray], n: int) -> np.ndarr
             return {"+": np.add, "-": np.subtract, "*": np.multiply, "/": np.divide}[e.op](a, b)
         if isinstance(e, st.Power):
             entry = CATALOG["power"]
-            opts = entry.resolve_options((_literal(e.exponent),))
+            opts = entry.resolve_options((st.literal_number(e.exponent),))
             return np.asarray(entry.value(_eval_expr(e.base, values, n), **opts), dtype=np.float64)
         if isinstance(e, st.Call):
             entry = CATALOG[e.func]
             if entry.arity == 0:
                 return np.asarray(entry.value(*[_eval_expr(a, values, n) for a in e.args]), dtype=np.float64)
             args = [_eval_expr(a, values, n) for a in e.args[:entry.arity]]
-            opts = entry.resolve_options(tuple(_literal(a) for a in e.args[entry.arity:]))
+            opts = entry.resolve_options(tuple(st.literal_number(a) for a in e.args[entry.arity:]))
             return np.asarray(entry.value(*args, **opts), dtype=np.float64)
     raise AssertionError(f"unchecked feature expression {e!r}")  # _check_expr rejects everything else
 

@@ -211,3 +211,33 @@ def test_perrow_resolves_over_rows_only() -> None:
     goal = _goal_node("goal perrow hinge(y * s) + 0.5 * l2sq(w)\n")
     agg = goal.left
     assert isinstance(agg, tt.Aggregate) and (agg.kind, agg.over) == ("perrow", "rows")
+
+
+# ---------------------------------------------------------------- one rule for a literal number
+
+def test_a_negative_literal_exponent_is_the_same_number_in_a_feature_and_in_the_goal(tmp_path):
+    # regression: `(d + 1) ^ -1` was accepted in a goal and refused in a feature (E219), and the NumPy
+    # module could not compute the feature; now the resolver, the table binder and the generated
+    # module read a signed literal by one rule (syntax_tree.literal_number)
+    import numpy as np
+    import pandas as pd
+    from objc import training
+    from objc.backends import numpy_module
+    text = HEADER.replace("  inputs a, b, c\n", "  feature inv = (a + 1) ^ -1\n  feature h = max(c, -(-0.5)) ^ -(-2)\n"
+                          "  inputs a, b, c\n") + "goal mean logistic(y * s) + 0.1 * l2sq(w)\n"
+    checked = check_text(text, str(tmp_path / "feat.objc"))
+    rng = np.random.default_rng(3)
+    frame = pd.DataFrame({"a": rng.uniform(0, 4, 60), "b": rng.normal(size=60), "c": rng.normal(size=60),
+                          "label": np.where(rng.normal(size=60) > 0, "yes", "no")})
+    train, _, _ = training.bind_training(checked, tmp_path, frame=frame)
+    assert train.input_names == ("a", "b", "c", "inv", "h")
+    # the values by hand: 1 / (a + 1) and max(c, 0.5) ^ 2
+    np.testing.assert_allclose(train.X[:, 3], 1.0 / (frame["a"].to_numpy() + 1.0), rtol=1e-15)
+    np.testing.assert_allclose(train.X[:, 4], np.maximum(frame["c"].to_numpy(), 0.5) ** 2, rtol=1e-15)
+    # the generated module computes the same features from the frame as objc's binder did: its fit on
+    # the frame scores the rows as cvxpy's optimum (Clarabel, on the binder's matrix) does
+    module = numpy_module.load_module(numpy_module.emit_module(checked))
+    est = module["Model"]().fit(frame[["a", "b", "c"]], frame["label"])
+    ref = training.run_backend(checked, train, "cvxpy")
+    np.testing.assert_allclose(est.decision_function(frame[["a", "b", "c"]]),
+                               train.X @ ref.params["w"] + ref.params["b"], atol=1e-5)

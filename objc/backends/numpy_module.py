@@ -649,17 +649,18 @@ class _Emitter:
             if isinstance(e, st.Binary) and e.op in "+-*/":
                 op = {"+": ast.Add(), "-": ast.Sub(), "*": ast.Mult(), "/": ast.Div()}[e.op]
                 return _binop(walk(e.left), op, walk(e.right))
-            if isinstance(e, st.Power) and isinstance(e.exponent, st.Number):
-                return _call(self.kernel(CATALOG["power"].value), walk(e.base), p=ast.Constant(float(e.exponent.value)))
+            if isinstance(e, st.Power) and st.literal_number(e.exponent) is not None:
+                return _call(self.kernel(CATALOG["power"].value), walk(e.base),
+                             p=_const(st.literal_number(e.exponent)))
             if isinstance(e, st.Call) and e.func in CATALOG:
                 entry = CATALOG[e.func]
                 n_args = len(e.args) if entry.arity == 0 else entry.arity
                 args = [walk(a) for a in e.args[:n_args]]
-                literal = [a.value if isinstance(a, st.Number) else None for a in e.args[n_args:]]
+                literal = [st.literal_number(a) for a in e.args[n_args:]]
                 if any(v is None for v in literal):
                     raise NotSupported("options must be literal numbers", e.span)
                 opts = entry.resolve_options(tuple(float(v) for v in literal))
-                return _call(self.kernel(entry.value), *args, **{k: ast.Constant(v) for k, v in opts.items()})
+                return _call(self.kernel(entry.value), *args, **{k: _const(v) for k, v in opts.items()})
             raise NotSupported(f"feature {f.name!r} uses an expression the NumPy module "
                                "cannot compute", f.span)
         value = walk(f.expr)
