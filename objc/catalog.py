@@ -590,6 +590,18 @@ class Entry:
     refusal_hint: str = ""
     domain: tuple[float, float] = (-np.inf, np.inf)  # where the argument must lie
     test_points: tuple[float, float] = (-4.0, 4.0)  # where the property suite samples arguments
+    # how messages and the expanded objective write the entry: "" for name(args); "^" for base^p
+    infix: str = field(default="", kw_only=True)
+    # settings under which the composition rules hold only where the argument is nonnegative (u^p for
+    # p not an even integer): the checker then needs the argument's sign
+    needs_nonneg_argument: Callable[[dict], bool] = field(default=lambda _o: False, kw_only=True)
+    # settings under which the entry smooths a kink of its argument where the argument is 0 (pos(u)^p
+    # for p >= 2 is continuously differentiable)
+    smooths_zero_kink: Callable[[dict], bool] = field(default=lambda _o: False, kw_only=True)
+    # the argument's kink sits where the entry's value is 0 (pos, neg): a smoothing power sees no kink
+    kink_at_zero_value: bool = field(default=False, kw_only=True)
+    # warnings every goal that trains on the entry gets: (code, message, hint)
+    training_warnings: tuple[tuple[str, str, str], ...] = field(default=(), kw_only=True)
 
     def resolve_options(self, given: tuple[float, ...]) -> dict[str, float]:
         """Options from positional values; raise ValueError (caught by the resolver) when wrong."""
@@ -653,6 +665,13 @@ def _power_curvature(o: dict) -> Curvature:
     if 0 < p < 1:
         return CONCAVE
     return CONVEX
+
+
+def _power_needs_nonneg(p: float) -> bool:
+    """u^p is convex on the whole line only for even integer p; for other p > 1 and for p < 0 the
+    composition rules hold only on u >= 0 (elsewhere it is concave or undefined)."""
+    even = float(p).is_integer() and int(p) % 2 == 0
+    return (p > 1 and not even) or p < 0
 
 
 def _power_mono(_i: int, s: Sign, o: dict) -> Monotonicity:
@@ -723,7 +742,12 @@ ENTRIES: tuple[Entry, ...] = (
     Entry("perceptron", "loss", "perceptron loss of the margin", "max(0, -m)", _const(CONVEX),
           _fixed_mono(DEC), _nonneg, _k_perceptron, _k_perceptron_d, lambda cp, m: cp.pos(-m),
           lipschitz=_k(1.0), prox=_k_perceptron_prox, conjugate=_k_perceptron_conj, role="margin",
-          calibrated=False, curv_floor=_k_flat_curv_floor),
+          calibrated=False, curv_floor=_k_flat_curv_floor, training_warnings=(
+              ("W301", "the perceptron loss is minimized by w = 0 (with b = 0): under empirical risk it rewards the "
+                       "all-zero model; it is meant as an online update rule",
+               "use hinge(y * s) for a margin, or logistic(y * s)"),
+              ("W302", "the perceptron loss is not classification-calibrated (its derivative at margin 0 is 0; "
+                       "Bartlett, Jordan & McAuliffe 2006)", ""))),
     Entry("logistic", "loss", "logistic loss of the margin (natural log)", "log(1 + exp(-m))",
           _const(CONVEX), _fixed_mono(DEC), _nonneg, _k_logistic, _k_logistic_d,
           lambda cp, m: cp.logistic(-m), smooth=_yes, lipschitz=_k(1.0), grad_lipschitz=_k(0.25),
@@ -782,9 +806,9 @@ ENTRIES: tuple[Entry, ...] = (
           _k_sqrt, _k_sqrt_d, lambda cp, x: cp.sqrt(x), smooth=_yes, domain=(0.0, np.inf),
           test_points=(0.05, 6.0)),
     Entry("pos", "atom", "positive part", "max(x, 0)", _const(CONVEX), _fixed_mono(INC), _nonneg, _k_pos,
-          _k_pos_d, lambda cp, x: cp.pos(x), lipschitz=_k(1.0)),
+          _k_pos_d, lambda cp, x: cp.pos(x), lipschitz=_k(1.0), kink_at_zero_value=True),
     Entry("neg", "atom", "negative part", "max(-x, 0)", _const(CONVEX), _fixed_mono(DEC), _nonneg, _k_neg,
-          _k_neg_d, lambda cp, x: cp.neg(x), lipschitz=_k(1.0)),
+          _k_neg_d, lambda cp, x: cp.neg(x), lipschitz=_k(1.0), kink_at_zero_value=True),
     Entry("cosh", "atom", "hyperbolic cosine; cosh(0) = 1 and cosh'' = cosh >= 1, so strongly convex with "
           "modulus 1", "(e^x + e^-x) / 2", _const(CONVEX), _even_mono, _nonneg, _k_cosh, _k_cosh_d,
           lambda cp, x: (cp.exp(x) + cp.exp(-x)) / 2.0, smooth=_yes, test_points=(-3.0, 3.0)),
@@ -800,7 +824,9 @@ ENTRIES: tuple[Entry, ...] = (
           _fixed_mono(INC), _same_sign, _k_tanh, _k_tanh_d, lambda cp, x: None, smooth=_yes),
     Entry("power", "atom", "x^p (written x ^ p, p a number or a tunable)", "x^p; for p not an even integer x >= 0",
           _power_curvature, _power_mono, _power_sign, _k_power, _k_power_d, _cp_power,
-          options=(Option("p", 2.0, -np.inf, np.inf, meaning="the exponent, a number or a tunable"),), smooth=_yes),
+          options=(Option("p", 2.0, -np.inf, np.inf, meaning="the exponent, a number or a tunable"),), smooth=_yes,
+          infix="^", needs_nonneg_argument=lambda o: _power_needs_nonneg(o["p"]),
+          smooths_zero_kink=lambda o: o["p"] >= 2),
     Entry("max", "atom", "largest of its arguments", "max(a, b, ...)", _const(CONVEX), _fixed_mono(INC),
           _max_sign, _k_max, _k_max_d, lambda cp, *xs: cp.maximum(*xs), arity=0),
     Entry("min", "atom", "smallest of its arguments", "min(a, b, ...)", _const(CONCAVE), _fixed_mono(INC),

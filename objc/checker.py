@@ -178,8 +178,10 @@ def render(e: tt.TExpr, prec: int = 0) -> str:
         return e.name
     if isinstance(e, tt.Apply):
         tuned = dict(e.tuned)
-        if e.entry == "power":
-            return wrap(f"{render(e.args[0], 4)}^" + (tuned["p"].name if "p" in tuned else f"{e.option_dict['p']:g}"), 3)
+        if CATALOG[e.entry].infix:  # base^p: the one entry written as an operator
+            (setting, value), = e.options
+            return wrap(f"{render(e.args[0], 4)}{CATALOG[e.entry].infix}" + (
+                tuned[setting].name if setting in tuned else f"{value:g}"), 3)
         opts = [tuned[k].name if k in tuned else f"{v:g}" for k, v in e.options] if CATALOG[e.entry].options else []
         return f"{e.entry}({', '.join([render(a) for a in e.args] + opts)})"
     if isinstance(e, tt.CustomLoss):
@@ -324,14 +326,14 @@ def _analyse(e: tt.TExpr) -> Facts:
         signs = tuple(f.sign for f in facts)
         sign = entry.sign(signs, opts)
         smooth = entry.smooth(opts) and all(f.smooth for f in facts)
-        if entry.name == "power" and opts["p"] >= 2 and _kink_at_zero_only(e.args[0]):
+        if entry.smooths_zero_kink(opts) and _kink_at_zero_only(e.args[0]):
             smooth = True  # max(0, u)^p with p >= 2 is continuously differentiable: the kink has value 0
         inner_fault = next((f.fault for f in facts if f.fault), None)
         atom_curv = entry.curvature(opts)
         args = [(f.curvature, entry.monotonicity(i, f.sign, opts)) for i, f in enumerate(facts)]
         curv, faults = compose(atom_curv, args)
         fault = inner_fault
-        if entry.name == "power" and _power_needs_nonneg(opts["p"]) and not facts[0].sign.is_nonneg \
+        if entry.needs_nonneg_argument(opts) and not facts[0].sign.is_nonneg \
                 and facts[0].curvature != C.CONSTANT:
             p = opts["p"]
             return Facts(C.UNKNOWN, sign, smooth, fault or Fault(
@@ -427,7 +429,7 @@ def _unknown_factor_fault(factor: tt.TExpr, sign: Sign) -> Fault:
 
 
 def _apply_fault(e: tt.Apply, entry, atom_curv: Curvature, faults: tuple[ArgumentFault, ...], facts) -> Fault:
-    name = "x^p" if entry.name == "power" else entry.name
+    name = f"x{entry.infix}{entry.options[0].name}" if entry.infix else entry.name
     if atom_curv == Curvature.UNKNOWN:
         return Fault(e.span, f"{name} is neither convex nor concave, so '{render(e)}' is not covered by the "
                      "composition rules", "use a convex loss from the catalog (e.g. logistic or hinge)")
@@ -454,15 +456,8 @@ def _apply_fault(e: tt.Apply, entry, atom_curv: Curvature, faults: tuple[Argumen
     return Fault(e.span, msg, hint)
 
 
-def _power_needs_nonneg(p: float) -> bool:
-    """u^p is convex on the whole line only for even integer p; for other p > 1 and for p < 0 the
-    composition rules hold only on u >= 0 (elsewhere it is concave or undefined)."""
-    even = float(p).is_integer() and int(p) % 2 == 0
-    return (p > 1 and not even) or p < 0
-
-
 def _kink_at_zero_only(e: tt.TExpr) -> bool:
-    if isinstance(e, tt.Apply) and e.entry == "pos":
+    if isinstance(e, tt.Apply) and CATALOG[e.entry].kink_at_zero_value:
         return analyse(e.args[0]).smooth
     if isinstance(e, tt.Apply) and e.entry == "max" and len(e.args) == 2:
         zero = [a for a in e.args if isinstance(a, tt.Const) and a.value == 0]
@@ -1189,12 +1184,8 @@ def check(spec: tt.ResolvedSpec, source: SourceText | None = None) -> CheckedObj
 
     for t in terms:
         for node in _contains(t.core, tt.Apply):
-            if node.entry == "perceptron":
-                warn("W301", "the perceptron loss is minimized by w = 0 (with b = 0): under empirical risk "
-                     "it rewards the all-zero model; it is meant as an online update rule",
-                     node.span, hint="use hinge(y * s) for a margin, or logistic(y * s)")
-                warn("W302", "the perceptron loss is not classification-calibrated (its derivative at margin 0 is "
-                     "0; Bartlett, Jordan & McAuliffe 2006)", node.span)
+            for code, message, hint in CATALOG[node.entry].training_warnings:
+                warn(code, message, node.span, hint=hint)
         for node in _contains(t.core, tt.CustomLoss):
             if loss_role(node.arg) == "margin":
                 note = _calibration_note(node)
