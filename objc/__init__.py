@@ -10,13 +10,21 @@ The public surface:
     model = fit_spec("spec.objc", backend="numpy")      # or backend="cvxpy"
     model.predict(X); model.decision_function(X); model.predict_table("new.csv")
     model.save("out/model.json"); load_trained("out/model.json")
+
+    from objc import spec_estimator                     # needs scikit-learn
+    est = spec_estimator("spec.objc", lam=0.1)          # a scikit-learn estimator; tunables are parameters
 """
 
 from objc.diagnostics import Diagnostic, SpecError
 from objc.frontend import check_file, check_text
 
 __version__ = "0.1.0"
-__all__ = ["check_text", "check_file", "fit_spec", "load_trained", "SpecError", "Diagnostic", "__version__"]
+__all__ = ["check_text", "check_file", "fit_spec", "load_trained", "SpecError", "Diagnostic", "spec_estimator",
+           "spec_estimator_class", "SpecEstimator", "SpecClassifier", "SpecRegressor", "EstimatorInputError",
+           "__version__"]
+
+_ESTIMATOR_NAMES = ("spec_estimator", "spec_estimator_class", "SpecEstimator", "SpecClassifier", "SpecRegressor",
+                    "EstimatorInputError")
 
 
 def __getattr__(name: str):
@@ -24,4 +32,7 @@ def __getattr__(name: str):
     if name in ("fit_spec", "load_trained", "TrainedModel"):
         from objc import training
         return getattr(training, name)
+    if name in _ESTIMATOR_NAMES:  # scikit-learn is imported only by those who ask for an estimator
+        from objc import estimator
+        return getattr(estimator, name)
     raise AttributeError(f"module 'objc' has no attribute {name!r}")

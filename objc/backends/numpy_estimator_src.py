@@ -124,6 +124,11 @@ class EstimatorBase:
         n, p = X.shape
         y = np.asarray(y)
         if y.ndim == 2 and y.shape[1] == 1:
+            import warnings  # here, not at the top: the generated module's header imports only what the solver needs
+            # scikit-learn's warning type when scikit-learn is already loaded (never imported here)
+            loaded = sys.modules.get("sklearn.exceptions")
+            warnings.warn("A column-vector y was passed when a 1d array was expected; it is read as one column",
+                          loaded.DataConversionWarning if loaded is not None else UserWarning, stacklevel=2)
             y = y.ravel()
         if y.ndim != 1 or y.shape[0] != n:
             raise ValueError(f"y must hold one value per row of X ({n}), got shape {y.shape}")
@@ -284,6 +289,47 @@ class ClassifierBase(EstimatorBase):
 
     def decision_function(self, X):
         return self._decision(X)
+
+    @property
+    def predict_proba(self):
+        """Class probabilities per row, columns in the order of classes_: present only where the spec's
+        loss has a probabilistic reading (see `_probability_term`), so hasattr tells, as in scikit-learn."""
+        if _probability_term(SPEC, self._tunable_values()) is None:
+            raise AttributeError(f"{type(self).__name__} has no predict_proba: the spec's loss has no probabilistic "
+                                 "reading (that needs one smooth, classification-calibrated margin loss, such as "
+                                 "logistic(y * s))")
+        return self._class_probabilities
+
+    def _class_probabilities(self, X):
+        s = self._decision(X)
+        tunables = self._tunable_values()
+        rows = _probability_term(SPEC, tunables)["rows"]
+        ones = np.ones_like(s)
+        return class_probabilities(rows(s, ones, {}, tunables)[1], rows(s, -ones, {}, tunables)[1])
+
+
+def _probability_term(spec, tunables):
+    """The goal's one per-row term when it is a catalog margin loss of y * s that is smooth and
+    classification-calibrated, else None. For a convex loss differentiable at 0, calibrated means a
+    negative derivative at margin 0 (Bartlett, Jordan & McAuliffe, JASA 2006), which the term's own
+    derivative function tells; objc's estimator reads the same fact from the catalog."""
+    rows = [t for t in spec["terms"] if t["kind"] == "rows"]
+    if len(rows) != 1 or rows[0].get("role") != "margin" or rows[0].get("loss") is None or not rows[0]["smooth"]:
+        return None
+    at_zero = rows[0]["rows"](np.zeros(1), np.ones(1), {}, tunables)[1]
+    return rows[0] if float(np.asarray(at_zero).ravel()[0]) < 0 else None
+
+
+def class_probabilities(d_pos, d_neg):
+    """[P(y = -1), P(y = +1)] per row from the derivatives in the score s of the per-row loss at
+    y = +1 (d_pos) and at y = -1 (d_neg): the probability at which s minimizes the expected loss,
+    P(+1) d_pos + P(-1) d_neg = 0 (Zhang, Annals of Statistics 2004). For logistic loss this is
+    1 / (1 + exp(-s)). For a smooth, calibrated, nonincreasing margin loss d_neg - d_pos > 0 at every s,
+    and computing each column from its own derivative keeps a tiny probability accurate."""
+    d_pos = np.asarray(d_pos, dtype=np.float64)
+    d_neg = np.asarray(d_neg, dtype=np.float64)
+    total = d_neg - d_pos
+    return np.column_stack([-d_pos / total, d_neg / total])
 
 
 class _NotFitted(ValueError, AttributeError):
