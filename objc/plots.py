@@ -113,3 +113,40 @@ def convergence_curve(history: list[dict], out: Path, title: str) -> Path:
     ax.set_xlabel("passes over the data")
     ax.legend(frameon=False, fontsize=8)
     return _save(fig, plt, out)
+
+
+def weight_path(values: list[float], weights: list[np.ndarray] | np.ndarray, names: list[str] | tuple[str, ...],
+                tunable: str, chosen: float | None, out: Path) -> Path:
+    """Each weight against the tunable along a regularization path (one line per input, the largest
+    ones named at the right end), the chosen value marked; log axis when every value is positive."""
+    xs = np.asarray(values, dtype=float)
+    W = np.asarray(weights, dtype=float).reshape(len(xs), -1)
+    if W.shape[1] != len(names):
+        raise ValueError(f"{W.shape[1]} weights per point for {len(names)} names")
+    order = np.argsort(xs)
+    xs, W = xs[order], W[order]
+    fig, ax, plt = _figure(f"regularization path: each weight against {tunable}")
+    ax.axhline(0.0, color=_INK, linewidth=0.8)
+    # the inputs that reach the largest weight anywhere get a colour and a label; the rest stay grey
+    reach = np.max(np.abs(W), axis=0) if len(xs) else np.zeros(len(names))
+    named = set(np.argsort(-reach)[:len(_PALETTE)][reach[np.argsort(-reach)[:len(_PALETTE)]] > 0].tolist())
+    k = 0
+    for j, name in enumerate(names):
+        if j in named:
+            colour = _PALETTE[k % len(_PALETTE)]
+            k += 1
+            ax.plot(xs, W[:, j], color=colour, linewidth=1.8, label=str(name))
+        else:
+            ax.plot(xs, W[:, j], color="#b9b4aa", linewidth=1.0)
+    if len(named) < len(names):
+        ax.plot([], [], color="#b9b4aa", linewidth=1.0, label=f"{len(names) - len(named)} other input(s)")
+    if chosen is not None:
+        ax.axvline(float(chosen), color=_INK, linewidth=1.0, linestyle=(0, (2, 2)), label=f"chosen {tunable}")
+        ax.annotate(f"{tunable} = {float(chosen):.3g}", (float(chosen), ax.get_ylim()[1]), fontsize=8,
+                    ha="left", va="top", xytext=(4, -4), textcoords="offset points")
+    if len(xs) and np.all(xs > 0):
+        ax.set_xscale("log")
+    ax.set_xlabel(tunable)
+    ax.set_ylabel("weight")
+    ax.legend(frameon=False, fontsize=8, loc="best")
+    return _save(fig, plt, out)

@@ -949,15 +949,20 @@ def fit(checked: CheckedObjective, X: Any, y: Any, weights: Any, input_names: tu
         tunables: dict[str, float] | None = None, tol: float = 1e-6, max_passes: int | None = None,
         allow_nonconvex: bool = False, theta0: Any = None,
         progress: Callable[[int, float, float | None], None] | None = None,
-        use_scipy: bool = True, param_tol: float | None = 1e-6) -> FitResult:
+        use_scipy: bool = True, param_tol: float | None = 1e-6, prepared: dict | None = None,
+        certify_only: bool = False) -> FitResult:
     """Train with the generated module itself: emit, compile, execute (once per spec and process, see
     `_compiled`), call its solver.
+
+    `prepared` and `certify_only` are the solver's (a cache kept across the fits of a path; only the
+    certificate of theta0); see `run_solver`.
 
     Raises NotSupported for specs this backend cannot solve and ValueError for unusable data or
     settings (the message says which)."""
     ns = _compiled(checked)
-    out = ns["solve"](X, y, weights, tuple(input_names) if input_names is not None else None, tunables, tol,
-                      max_passes, allow_nonconvex, theta0, progress, use_scipy, param_tol)
+    out = ns["run_solver"](ns["SPEC"], X, y, weights, tuple(input_names) if input_names is not None else None,
+                           tunables, tol, max_passes, allow_nonconvex, theta0, progress, use_scipy, param_tol,
+                           prepared=prepared, certify_only=certify_only)
     cert = out["certificate"]
     return FitResult(params=out["params"], objective=float(out["objective"]), term_values=tuple(out["term_values"]),
                      status=out["status"], backend="numpy", method=out["method"],
@@ -968,3 +973,12 @@ def fit(checked: CheckedObjective, X: Any, y: Any, weights: Any, input_names: tu
                                              weights_distance=cert.get("weights_distance")),
                      iterations=int(out["iterations"]), passes=int(out["passes"]), seconds=float(out["seconds"]),
                      extra={"theta": out["theta"], "input_names": out["input_names"]})
+
+
+def bound_problem(checked: CheckedObjective, X: Any, y: Any, weights: Any, input_names: tuple[str, ...] | list[str],
+                  tunables: dict[str, float] | None = None) -> tuple[dict[str, Any], Any]:
+    """(the generated module's namespace, its problem bound to these rows): the spec's terms with their
+    row weights, penalties and bounds, for code that reads the objective's pieces without solving
+    (a path's start, a screening test). Raises NotSupported or ValueError like `fit`."""
+    ns = _compiled(checked)
+    return ns, ns["build_problem"](ns["SPEC"], X, y, weights, tuple(input_names), tunables)

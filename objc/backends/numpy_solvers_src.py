@@ -504,9 +504,10 @@ def objective_value(pb, theta, s=None):
     return float(value + pb.constant)
 
 
-def term_values(pb, theta):
-    """Each goal term's value (coefficient included), in the spec's order."""
-    s = score(pb, theta)
+def term_values(pb, theta, s=None):
+    """Each goal term's value (coefficient included), in the spec's order (from s if given)."""
+    if s is None:
+        s = score(pb, theta)
     out = {}
     for term in pb.row_terms:
         out[term.index] = term.weighted_sum(term.value_and_derivative(s, pb.cols, pb.tun)[0])
@@ -708,51 +709,113 @@ def _adjoint_of_rows(pb, rows, delta):
     return g
 
 
-def duality_gap(pb, theta, P, derivs, Atu):
-    """P(theta) - D(u) for the dual point u built from the per-row derivatives (REFERENCE.md).
+def balanced_dual(pb, derivs, Atu):
+    """(per-row derivatives, z = -A^T u) of a dual point with sum u = 0 where a free intercept needs it.
 
-    `Atu` is A^T u, u = dual_adjoint_inputs(pb, derivs) (the gradient's own pass). A free intercept
-    needs sum u = 0: a few rows on the side with the surplus shrink toward zero (`_balance_rows`),
-    or, when that would take many rows, the whole side is scaled down at the price of one more
-    pass; then the whole point is scaled by t (Kim et al. 2007) so the penalty's conjugate is
-    finite. Returns +inf when no finite dual value is found.
-    """
-    if pb.balance:
-        u = dual_adjoint_inputs(pb, derivs)
-        fix = _balance_rows(pb, u)
-        if fix is not None:
-            rows, f = fix
-            z = -Atu
-            if len(rows):
-                z = z - _adjoint_of_rows(pb, rows, (f - 1.0) * u[rows])
-            derivs = [d.copy() if len(rows) else d for d in derivs]
-            for d in derivs:
-                if len(rows):
-                    d[rows] *= f
-        else:
-            plus_total = float(np.sum(np.maximum(u, 0.0)))
-            minus_total = -float(np.sum(np.minimum(u, 0.0)))
-            r_plus = min(1.0, minus_total / plus_total) if plus_total > 0 else 1.0
-            r_minus = min(1.0, plus_total / minus_total) if minus_total > 0 else 1.0
-            At_plus = adjoint(pb, np.maximum(u, 0.0))
-            z = -(r_plus * At_plus + r_minus * (Atu - At_plus))
-            row_factor = np.where(u > 0, r_plus, r_minus)
-            derivs = [d * row_factor for d in derivs]
-        z = np.array(z, dtype=np.float64, copy=True)
-        z[pb.b_index] = 0.0  # balanced exactly; drop the rounding
-    else:
+    `Atu` is A^T u, u = dual_adjoint_inputs(pb, derivs) (the gradient's own pass). A few rows on the
+    side with the surplus shrink toward zero (`_balance_rows`), or, when that would take many rows,
+    the whole side is scaled down at the price of one more pass."""
+    if not pb.balance:
+        return derivs, -Atu
+    u = dual_adjoint_inputs(pb, derivs)
+    fix = _balance_rows(pb, u)
+    if fix is not None:
+        rows, f = fix
         z = -Atu
+        if len(rows):
+            z = z - _adjoint_of_rows(pb, rows, (f - 1.0) * u[rows])
+        derivs = [d.copy() if len(rows) else d for d in derivs]
+        for d in derivs:
+            if len(rows):
+                d[rows] *= f
+    else:
+        plus_total = float(np.sum(np.maximum(u, 0.0)))
+        minus_total = -float(np.sum(np.minimum(u, 0.0)))
+        r_plus = min(1.0, minus_total / plus_total) if plus_total > 0 else 1.0
+        r_minus = min(1.0, plus_total / minus_total) if minus_total > 0 else 1.0
+        At_plus = adjoint(pb, np.maximum(u, 0.0))
+        z = -(r_plus * At_plus + r_minus * (Atu - At_plus))
+        row_factor = np.where(u > 0, r_plus, r_minus)
+        derivs = [d * row_factor for d in derivs]
+    z = np.array(z, dtype=np.float64, copy=True)
+    z[pb.b_index] = 0.0  # balanced exactly; drop the rounding
+    return derivs, z
+
+
+def dual_value(pb, derivs, z):
+    """(t, D) for the dual point scaled by t (Kim et al. 2007) so the penalty's conjugate is finite;
+    D = -inf when no t > 0 does it."""
     t = _dual_scale(pb, z)
     if not t > 0.0:
-        return math.inf
+        return t, -math.inf
     conj = 0.0
     with np.errstate(all="ignore"):
         for term, d in zip(pb.row_terms, derivs):
             values = term.conjugate(t * d)
             conj += term.weighted_sum(values)
-    dual = -conj - _penalty_conjugate(pb, t * z)
-    gap = P - (dual + pb.constant)
+    return t, -conj - _penalty_conjugate(pb, t * z) + pb.constant
+
+
+def duality_gap(pb, theta, P, derivs, Atu):
+    """P(theta) - D(u) for the dual point u built from the per-row derivatives (REFERENCE.md), balanced
+    for a free intercept (`balanced_dual`) and scaled (`dual_value`). Returns +inf when no finite dual
+    value is found."""
+    derivs, z = balanced_dual(pb, derivs, Atu)
+    _t, dual = dual_value(pb, derivs, z)
+    gap = P - dual
     return gap if np.isfinite(gap) else math.inf
+
+
+def gap_safe_screen(spec, X, y, weights, input_names, tunables, theta, curvature, candidates, prepared=None):
+    """The Gap Safe sphere test (Fercoq, Gramfort & Salmon, "Mind the duality gap: safer rules for the
+    Lasso", ICML 2015; Ndiaye, Fercoq, Gramfort & Salmon, "Gap safe screening rules for sparsity
+    enforcing penalties", JMLR 2017, for other smooth losses) at `theta` (any point, e.g. the answer
+    at the previous value of a path): which of the weight coordinates `candidates` are zero at the
+    optimum of this problem. Returns (a boolean mask over `candidates`, the duality gap at theta).
+
+    The dual variables are the rows' derivatives d. Each row term phi_k has a derivative with
+    Lipschitz constant curvature[k] (the catalog's grad_lipschitz, times y^2 for a margin loss), so
+    phi_k* is 1/curvature[k]-strongly convex and the dual is strongly concave with Hessian at most
+    -diag(rho_k / curvature[k]); at the dual optimum d*, for any feasible d with gap G,
+    sum_k sum_i rho_ki (d_ki - d*_ki)^2 / curvature[k] <= 2 G. By Cauchy-Schwarz,
+    |a_j^T (u - u*)| <= sqrt(2 G) ||a_j||_R, R_i = sum_k curvature[k] rho_ki, and with a free
+    intercept (sum u = sum u* = 0) a_j may be centred by any constant, here the R-weighted mean. A
+    weight with |a_j^T u| + sqrt(2 G) ||a_j||_R < alpha_j has |a_j^T u*| < alpha_j, so it is zero at
+    the optimum (its optimality condition). Valid only for a separable L1 weight alpha_j > 0 with no
+    bound, ball or group on the coordinate (the caller checks; here the gap must be available)."""
+    pb = build_problem(spec, X, y, weights, input_names, tunables)
+    setup_problem(pb, "fista", prepared)
+    candidates = np.asarray(candidates, dtype=np.intp)
+    none = np.zeros(candidates.shape[0], dtype=bool)
+    if not pb.use_gap or not pb.standard or len(curvature) != len(pb.row_terms):
+        return none, math.inf
+    theta = _to_internal(pb, np.asarray(theta, dtype=np.float64))
+    ev = evaluate_smooth(pb, theta)
+    P = ev.f + nonsmooth_penalties(pb, theta)
+    derivs, z = balanced_dual(pb, ev.derivs, ev.Atu)
+    t, dual = dual_value(pb, derivs, z)
+    gap = max(0.0, P - dual)
+    if not (np.isfinite(gap) and t > 0.0):
+        return none, math.inf
+    R = np.zeros(pb.n)
+    for term, L in zip(pb.row_terms, curvature):
+        R += float(L) * term.rho
+    key = ("column norms", id(pb.X), _fingerprint(R), bool(pb.balance))
+    norms = None if prepared is None else prepared.get(key)
+    if norms is None:
+        Xsq = np.einsum("ij,ij,i->j", pb.X, pb.X, R) if not _is_sparse(pb.X) else \
+            np.asarray(pb.X.multiply(pb.X).T @ R, dtype=np.float64).ravel()
+        pb.passes += 1
+        if pb.balance:
+            XR = np.asarray(pb.X.T @ R, dtype=np.float64).ravel()
+            Xsq = Xsq - XR * XR / float(np.sum(R))
+        norms = np.sqrt(np.maximum(Xsq, 0.0))
+        if prepared is not None:
+            prepared[key] = norms
+    cols = pb.w_index[candidates] if pb.w_index is not None else candidates
+    reach = t * np.abs(z[cols]) + math.sqrt(2.0 * gap) * norms[candidates]
+    # a relative margin of 1e-9 against the rounding of a_j^T u (common practice, no source)
+    return reach < pb.alpha[cols] * (1.0 - 1e-9), gap
 
 
 def relative(value, objective):
@@ -1783,23 +1846,69 @@ def gram_possible(pb):
 
 
 def build_gram(pb):
-    """H = A^T diag(rho) A, q = A^T rho y and the sums the gap needs, A the (centred) design [X, 1]."""
+    """H = A^T diag(rho) A, q = A^T rho y and the sums the gap needs, A the (centred) design [X, 1].
+
+    With `pb.prepared` (a caller's cache across the fits of a path) the weight blocks are formed once
+    per row weights and target and reused; when it names a larger table ("X") and the columns of it
+    that pb.X holds ("columns", an input screened out of this fit), the blocks of the whole table are
+    formed once and these columns picked out (centring is per column, so the pick is exact)."""
     rho = np.sum([t.rho for t in pb.row_terms], axis=0)
     y = pb.y
-    m = pb.center if pb.center is not None else np.zeros(pb.p)
     P = pb.size
     H, q, h = np.zeros((P, P)), np.zeros(P), np.zeros(P)
     w = pb.w_index
-    if not (not _is_sparse(pb.X) and np.ptp(rho) == 0.0 and _gram_uncentred(pb, rho, y, m, H, q, h)):
-        _gram_centred_blocks(pb, rho, y, m, H, q, h)
+    prep = getattr(pb, "prepared", None)
+    blocks = None
+    if prep is not None:
+        source = prep.get("X", pb.X)
+        columns = prep.get("columns")
+        key = ("gram", id(source), _fingerprint(rho), _fingerprint(y), pb.center is not None)
+        blocks = prep.get(key)
+        if blocks is None:
+            whole = pb if source is pb.X else _columns_problem(pb, source)
+            blocks = _gram_weight_blocks(whole, rho, y)
+            prep[key] = blocks
+            pb.passes += whole.passes if whole is not pb else 0
+        if columns is not None and source is not pb.X:
+            cols = np.asarray(columns, dtype=np.intp)
+            blocks = (blocks[0][np.ix_(cols, cols)], blocks[1][cols], blocks[2][cols])
+    else:
+        blocks = _gram_weight_blocks(pb, rho, y)
+    Hww, qw, hw = blocks
+    H[np.ix_(w, w)] = Hww
+    q[w], h[w] = qw, hw
     if pb.b_index is not None:
         b = pb.b_index
         H[w, b] = H[b, w] = h[w]
         H[b, b] = h[b] = float(np.sum(rho))
         q[b] = float(np.dot(rho, y))
-    pb.passes += 1
     pb.gram = {"H": H, "q": q, "h": h, "yy": float(np.dot(rho, y * y)), "rho_sum": float(np.sum(rho)),
                "rho_y": float(np.dot(rho, y))}
+
+
+def _columns_problem(pb, X):
+    """A stand-in for pb on the whole table X (the weight blocks read only X, its centre and sizes)."""
+    whole = _Problem()
+    whole.X, whole.n, whole.p = X, X.shape[0], X.shape[1]
+    whole.w_index = np.arange(whole.p, dtype=np.intp)
+    whole.passes = 1 if pb.center is not None else 0
+    whole.center = (np.asarray(X.T @ pb.c, dtype=np.float64).ravel() / float(np.sum(pb.c))
+                    if pb.center is not None else None)
+    return whole
+
+
+def _gram_weight_blocks(pb, rho, y):
+    """(H_ww, q_w, h_w): the weight blocks of the Gram matrix and its two vectors (one or two passes)."""
+    m = pb.center if pb.center is not None else np.zeros(pb.p)
+    size = pb.p
+    H, q, h = np.zeros((size, size)), np.zeros(size), np.zeros(size)
+    view = _Problem()
+    view.X, view.n, view.p, view.w_index = pb.X, pb.n, pb.p, np.arange(size, dtype=np.intp)
+    view.passes = 0
+    if not (not _is_sparse(pb.X) and np.ptp(rho) == 0.0 and _gram_uncentred(view, rho, y, m, H, q, h)):
+        _gram_centred_blocks(view, rho, y, m, H, q, h)
+    pb.passes += view.passes + 1
+    return H, q, h
 
 
 def _gram_uncentred(pb, rho, y, m, H, q, h):
@@ -2490,13 +2599,49 @@ def _mu0(pb):
     return 1.0
 
 
+def setup_problem(pb, method, prepared=None):
+    """The choices a method needs before it starts: whether a free intercept balances the dual point, the
+    column centring that goes with it, and whether the duality gap can be formed. `prepared` (a dict a
+    caller keeps across fits on the same rows, or None) supplies the centre when it holds one."""
+    pb.prepared = prepared
+    pb.balance = pb.b_index is not None and pb.b_index in _free_coordinates(pb)
+    if pb.balance and method != "subgradient":
+        # a free intercept: centre the columns inside the score (never copying X) so that w and b do
+        # not fight over the mean (s = (X - 1 m^T) w + b' with b' = b + m.w)
+        # with a cache: the centre of the whole table ("X"), of which pb.X holds "columns" (or all)
+        source = pb.X if prepared is None else prepared.get("X", pb.X)
+        columns = None if prepared is None or source is pb.X else prepared.get("columns")
+        key = ("center", id(source), _fingerprint(pb.c))
+        center = None if prepared is None else prepared.get(key)
+        if center is None:
+            center = np.asarray(source.T @ pb.c, dtype=np.float64).ravel() / float(np.sum(pb.c))
+            pb.passes += 1
+            if prepared is not None:
+                prepared[key] = center
+        pb.center = center if columns is None else center[np.asarray(columns, dtype=np.intp)]
+    pb.use_gap = method != "subgradient" and gap_available(pb)
+
+
+def _fingerprint(v):
+    """A digest of an array's bytes: what a `prepared` cache compares (row weights, targets)."""
+    import hashlib
+    return hashlib.sha1(np.ascontiguousarray(v).view(np.uint8)).hexdigest()
+
+
 def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e-6, max_passes=None,
-               allow_nonconvex=False, theta0=None, progress=None, use_scipy=True, param_tol=1e-6):
+               allow_nonconvex=False, theta0=None, progress=None, use_scipy=True, param_tol=1e-6, *,
+               prepared=None, certify_only=False):
     """Fit the spec's objective to the data; returns a dict of plain values (see `solve`).
 
     The run stops when the relative certificate is within `tol` and, unless `param_tol` is None, the
     distance of the parameters to the optimum is within `param_tol` (a proved bound where the objective
-    is strongly convex in every learned parameter, else an uncertified estimate)."""
+    is strongly convex in every learned parameter, else an uncertified estimate).
+
+    `prepared`: a dict the caller keeps across fits on the same rows (a regularization path), where
+    summaries that do not depend on the tunables are kept (the column centre, a squared loss's Gram
+    matrix); its "X" and "columns" entries, when given, say that X is those columns of a larger
+    table whose Gram matrix is computed once. `certify_only`: no iterations, only the certificate of
+    theta0 (status "optimal" when it passes `tol`, else "not certified")."""
     import time
     started = time.perf_counter()
     param_tol = _parameter_tolerance(param_tol)
@@ -2514,13 +2659,7 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
         method = "fista" if method == "lbfgs" else "smoothing+fista"
     if not spec["accepted"]:
         method = "subgradient"
-    pb.balance = pb.b_index is not None and pb.b_index in _free_coordinates(pb)
-    if pb.balance and method != "subgradient":
-        # a free intercept: centre the columns inside the score (never copying X) so that w and b do
-        # not fight over the mean (s = (X - 1 m^T) w + b' with b' = b + m.w)
-        pb.center = np.asarray(pb.X.T @ pb.c, dtype=np.float64).ravel() / float(np.sum(pb.c))
-        pb.passes += 1
-    pb.use_gap = method != "subgradient" and gap_available(pb)
+    setup_problem(pb, method, prepared)
     pb.mu0 = _mu0(pb)
     pb.finish = finish_kind(pb) if method.startswith("smoothing") else None
     pb.finished_exactly = False
@@ -2528,7 +2667,7 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
         max_passes = 20000
     run = _Run(pb, float(tol), int(max_passes), progress, param_tol if spec["accepted"] else None)
     theta = _to_internal(pb, _initial_theta(pb, theta0))
-    if theta0 is not None:
+    if theta0 is not None and not (method == "fista" and gram_possible(pb)):  # a squared loss cannot overflow
         with np.errstate(all="ignore"):
             start = evaluate_smooth(pb, theta)
         if not (np.isfinite(start.f) and np.all(np.isfinite(start.grad))):
@@ -2536,7 +2675,9 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
     scipy_used = use_scipy and _scipy_optimize is not None
     lbfgs_name = "L-BFGS (SciPy L-BFGS-B)" if scipy_used else "L-BFGS (own two-loop recursion)"
     with _ThreadLimits():
-        if method == "lbfgs":
+        if certify_only:
+            status, name = "not certified", "certificate of the given point (no iterations)"
+        elif method == "lbfgs":
             status = method_lbfgs(run, theta, use_scipy)
             name = lbfgs_name
         elif method == "fista" and gram_possible(pb):
@@ -2565,7 +2706,9 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
         P0 = ev.f + nonsmooth_penalties(pb, theta)
         run.record(theta, P0, *certificate(pb, ev, P0, float(np.sqrt(np.dot(ev.grad, ev.grad)))))
     theta = run.theta
-    P = objective_value(pb, theta)
+    theta_internal = theta
+    s_final = score(pb, theta)  # one pass for the objective and every term's value
+    P = objective_value(pb, theta, s_final)
     theta = _to_external(pb, theta)
     rel = relative(run.cert_abs, P)
     method_status = status
@@ -2593,7 +2736,7 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
     for pname, (start, size, vector) in pb.slots.items():
         params[pname] = theta[start:start + size].copy() if vector else float(theta[start])
     return {
-        "theta": theta, "params": params, "objective": P, "term_values": term_values(pb, _to_internal(pb, theta)),
+        "theta": theta, "params": params, "objective": P, "term_values": term_values(pb, theta_internal, s_final),
         "status": status, "method": name,
         "certificate": dict({"kind": run.cert_kind, "absolute": float(run.cert_abs), "relative": float(rel),
                              "tolerance": float(tol), "note": note}, **distance),

@@ -1,0 +1,251 @@
+"""Regularization paths with K-fold cross-validation: objc's fit_path per fold against scikit-learn's
+cross-validated estimators, on the same table, the same folds, the same grid and the same thread caps.
+
+    .venv/bin/python bench/bench_paths.py                 # 1e5 x 100, 5 folds, both cases
+    .venv/bin/python bench/bench_paths.py --rows 20000 --cases lasso
+
+The cases (the issue's targets):
+- Lasso, `mean squared(y - s) + lam * l1(w)`, 50 values of lam from the path's start (the value
+  above which every weight is zero, paths.path_start on all rows) down to 1e-3 of it, against
+  LassoCV(alphas=the same values, cv=the same folds). LassoCV minimizes (1 / 2n) ||y - X w - b||^2 +
+  alpha ||w||_1 on each training part of n rows; objc's `squared(r)` is r^2 / 2 and `mean` divides by
+  n, so lam = alpha exactly.
+- logistic + L2, `mean logistic(y * s) + lam * l2sq(w)`, 20 values of C = logspace(-4, 4) against
+  LogisticRegressionCV(Cs=the same, cv=the same folds, solver lbfgs). scikit-learn minimizes
+  C sum_i log(1 + exp(-y_i s_i)) + ||w||^2 / 2 (intercept free); dividing by C n gives objc's goal
+  with lam = 1 / (2 C n), n the training part's rows (all parts have the same size here).
+
+Both sides do the same work: per fold, the whole path on the training part (warm starts), the
+held-out score of every point; then one refit at the chosen value on all rows. objc runs at its
+default certificate (relative duality gap 1e-6, parameter tolerance 1e-6). scikit-learn's `tol` is
+chosen here, in this run: the largest of a few values whose answers, on the first fold's path, reach
+objc's default relative duality gap (1e-6) as measured by objc's own evaluator (the generated
+module's certificate of the peer's parameters, no iterations); the gaps the chosen tol reached are
+printed. Ratios are objc's seconds over the peer's (below 1: objc is faster).
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import platform
+import sys
+import time
+import warnings
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+import objc  # noqa: E402
+from objc import paths, training  # noqa: E402
+from objc.backends import numpy_module as nm  # noqa: E402
+from bench_solvers import ThreadCap, make_data  # noqa: E402  (the same caps and the same seeded tables)
+
+FOLDS = 5
+SEED = 0
+
+
+def spec_text(goal: str, margin: bool) -> str:
+    target = "target y: yes -> +1, no -> -1" if margin else "target y"
+    return (f'table t from "t.csv"\n  {target}\n  inputs all\ntune lam = 1 within 0 .. 1000000\n'
+            f"learn w over inputs, b\nscore s = w . x + b\ngoal {goal}\n")
+
+
+def bind(checked, X: np.ndarray, y: np.ndarray, margin: bool):
+    import pandas as pd
+    frame = pd.DataFrame(X, columns=[f"x{j}" for j in range(X.shape[1])])
+    frame["y"] = np.where(y > 0, "yes", "no") if margin else y
+    data, _held, _ = training.bind_training(checked, Path("."), frame=frame)
+    return data
+
+
+def folds_of(n: int) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Seeded folds: a permutation cut into FOLDS parts; (training rows, held-out rows) per fold."""
+    order = np.random.default_rng(SEED).permutation(n)
+    parts = np.array_split(order, FOLDS)
+    return [(np.sort(np.concatenate(parts[:k] + parts[k + 1:])), np.sort(parts[k])) for k in range(FOLDS)]
+
+
+def part(data, rows: np.ndarray):
+    return replace(data, X=np.ascontiguousarray(data.X[rows]), y=data.y[rows], weights=data.weights[rows],
+                   rows=data.rows[rows])
+
+
+def certify(checked, data, lam: float, w: np.ndarray, b: float) -> tuple[float, float]:
+    """(relative duality gap, objective) of given parameters, by objc's evaluator (no iterations)."""
+    r = nm.fit(checked, data.X, data.y, data.weights, data.input_names, {"lam": lam}, theta0=np.append(w, b),
+               certify_only=True)
+    return float(r.certificate.relative), float(r.objective)
+
+
+def objc_cv(checked, data, folds, values: list[float], score) -> tuple[float, dict]:
+    """objc: fit_path on each training part, the held-out score of every point, the refit. Seconds, facts."""
+    start = time.perf_counter()
+    table = np.zeros((len(folds), len(values)))
+    passes, screened, worst_gap, first = 0, 0, 0.0, None
+    for k, (tr, te) in enumerate(folds):
+        train, held = part(data, tr), part(data, te)
+        results = paths.fit_path(checked, train, {}, "lam", values)
+        for i, r in enumerate(results):
+            table[k, i] = score(held, r.params)
+            passes += r.passes
+            screened += len(r.extra.get("screening", {}).get("screened", []))
+            worst_gap = max(worst_gap, float(r.certificate.relative))
+        if k == 0:
+            first = results
+    best = int(np.argmin(table.mean(axis=0)))
+    final = training.run_backend(checked, data, "numpy", {"lam": values[best]})
+    seconds = time.perf_counter() - start
+    return seconds, {"best": best, "passes": passes, "screened": screened, "worst_gap": worst_gap,
+                     "first_fold": first, "final": final}
+
+
+def squared_error(held, params) -> float:
+    s = held.X @ params["w"] + params["b"]
+    return float(np.mean((held.y - s) ** 2))
+
+
+def log_loss(held, params) -> float:
+    m = held.y * (held.X @ params["w"] + params["b"])
+    return float(np.mean(np.logaddexp(0.0, -m)))
+
+
+def choose_tol(candidates, measure) -> tuple[float, float]:
+    """The largest tol whose worst measured relative gap is within objc's default 1e-6 (else the smallest)."""
+    for tol in candidates:
+        gap = measure(tol)
+        print(f"  peer tol {tol:g}: worst relative gap on fold 1's path {gap:.2e}", flush=True)
+        if gap <= 1e-6:
+            return tol, gap
+    return tol, gap
+
+
+def lasso_case(n: int, p: int, points: int) -> None:
+    from sklearn.linear_model import LassoCV, lasso_path
+    X, y = make_data(n, p, "residual")
+    checked = objc.check_text(spec_text("mean squared(y - s) + lam * l1(w)", False), "lasso_path.objc")
+    data = bind(checked, X, y, False)
+    folds = folds_of(n)
+    start = paths.path_start(checked, data, {}, "lam")
+    values = [float(v) for v in np.geomspace(start, 1e-3 * start, points)]
+    print(f"\n### Lasso path: `mean squared(y - s) + lam * l1(w)` at {n} x {p}, {points} values of lam from "
+          f"{start:.4g} (path start) to {values[-1]:.3g}, {FOLDS} folds\n", flush=True)
+    train0 = part(data, folds[0][0])
+
+    def measure(tol: float) -> float:
+        Xc, yc = train0.X - train0.X.mean(axis=0), train0.y - train0.y.mean()
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            _alphas, coefs, _gaps = lasso_path(Xc, yc, alphas=values, tol=tol, precompute=True)
+        worst = 0.0
+        for i, lam in enumerate(values):
+            w = coefs[:, i]
+            b = float(train0.y.mean() - train0.X.mean(axis=0) @ w)
+            worst = max(worst, certify(checked, train0, lam, w, b)[0])
+        return worst
+
+    with ThreadCap():
+        tol, gap = choose_tol([1e-4, 1e-5, 1e-6, 1e-7, 1e-8], measure)
+    with ThreadCap():
+        objc_cv(checked, part(data, folds[0][0][:2000]), [(np.arange(1500), np.arange(1500, 2000))], values[:3],
+                squared_error)  # emit and compile the module once, outside the timing (as a second run would)
+    with ThreadCap():
+        ours, facts = objc_cv(checked, data, folds, values, squared_error)
+    with ThreadCap(), warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        t0 = time.perf_counter()
+        peer = LassoCV(alphas=values, cv=folds, tol=tol).fit(X, y)
+        theirs = time.perf_counter() - t0
+    peer_best = int(np.argmin(np.abs(np.asarray(peer.alphas_) - peer.alpha_)))
+    peer_mse = peer.mse_path_.mean(axis=1)
+    print("| side | seconds | ratio objc/peer | chosen lam | note |\n|---|---:|---:|---:|---|")
+    print(f"| objc fit_path x {FOLDS} folds + refit | {ours:.2f} | {ours / theirs:.2f} | {values[facts['best']]:.4g} | "
+          f"worst relative gap {facts['worst_gap']:.1e} (tol 1e-6); {facts['passes']} passes in all; "
+          f"{facts['screened']} input-fits screened out (Gap Safe) |")
+    print(f"| sklearn LassoCV(tol={tol:g}) | {theirs:.2f} |  | {peer.alpha_:.4g} | worst relative gap of a lasso_path "
+          f"on fold 1 at this tol, by objc's evaluator: {gap:.1e} |")
+    final_gap = certify(checked, data, peer.alpha_, peer.coef_, float(peer.intercept_))[0]
+    same = peer.alpha_ == values[facts["best"]]
+    diff = float(np.max(np.abs(peer.coef_ - facts["final"].params["w"]))) if same else float("nan")
+    print(f"\nrefit at the chosen value: the peer's relative gap by objc's evaluator {final_gap:.1e}; "
+          f"max |w_peer - w_objc| {diff:.1e}; the peer's mean held-out MSE at its choice {peer_mse[peer_best]:.5g}")
+
+
+def logistic_case(n: int, p: int, points: int) -> None:
+    from sklearn.linear_model import LogisticRegression, LogisticRegressionCV
+    X, y = make_data(n, p, "margin")
+    checked = objc.check_text(spec_text("mean logistic(y * s) + lam * l2sq(w)", True), "logistic_path.objc")
+    data = bind(checked, X, y, True)
+    folds = folds_of(n)
+    n_train = len(folds[0][0])
+    assert all(len(tr) == n_train for tr, _ in folds)
+    Cs = np.logspace(-4, 4, points)
+    values = [float(1.0 / (2.0 * C * n_train)) for C in Cs]  # C ascending = lam descending: a path from the top
+    print(f"\n### logistic + L2 C path: `mean logistic(y * s) + lam * l2sq(w)` at {n} x {p}, {points} values of "
+          f"C = logspace(-4, 4) (lam = 1 / (2 C n)), {FOLDS} folds\n", flush=True)
+    train0 = part(data, folds[0][0])
+    y01 = (y > 0).astype(int)
+
+    def measure(tol: float) -> float:
+        model = LogisticRegression(C=Cs[0], tol=tol, max_iter=10000, warm_start=True)
+        worst = 0.0
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            for C, lam in zip(Cs, values):
+                model.set_params(C=C)
+                model.fit(train0.X, y01[folds[0][0]])
+                worst = max(worst, certify(checked, train0, lam, model.coef_.ravel(), float(model.intercept_[0]))[0])
+        return worst
+
+    with ThreadCap():
+        tol, gap = choose_tol([1e-4, 1e-6, 1e-8, 1e-10], measure)
+    with ThreadCap():
+        objc_cv(checked, part(data, folds[0][0][:2000]), [(np.arange(1500), np.arange(1500, 2000))], values[:3],
+                log_loss)
+    with ThreadCap():
+        ours, facts = objc_cv(checked, data, folds, values, log_loss)
+    with ThreadCap(), warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        t0 = time.perf_counter()
+        peer = LogisticRegressionCV(Cs=Cs, cv=folds, solver="lbfgs", tol=tol, max_iter=10000,
+                                    scoring="neg_log_loss").fit(X, y01)
+        theirs = time.perf_counter() - t0
+    # the peer's fold paths, scored by objc's evaluator: coefs_paths_[class][fold, C, weights + intercept]
+    paths_arr = next(iter(peer.coefs_paths_.values()))
+    worst = 0.0
+    for i, lam in enumerate(values):
+        w, b = paths_arr[0, i, :-1], float(paths_arr[0, i, -1])
+        worst = max(worst, certify(checked, train0, lam, w, b)[0])
+    print("| side | seconds | ratio objc/peer | chosen C | note |\n|---|---:|---:|---:|---|")
+    print(f"| objc fit_path x {FOLDS} folds + refit | {ours:.2f} | {ours / theirs:.2f} | {Cs[facts['best']]:.4g} | "
+          f"worst relative gap {facts['worst_gap']:.1e} (tol 1e-6); {facts['passes']} passes in all |")
+    print(f"| sklearn LogisticRegressionCV(lbfgs, tol={tol:g}) | {theirs:.2f} |  | {float(peer.C_[0]):.4g} | worst "
+          f"relative gap of its fold-1 path by objc's evaluator {worst:.1e} |")
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--rows", type=int, default=100_000)
+    ap.add_argument("--inputs", type=int, default=100)
+    ap.add_argument("--cases", default="lasso,logistic")
+    args = ap.parse_args(argv)
+    load = os.getloadavg() if hasattr(os, "getloadavg") else None
+    print(f"machine: {platform.platform()}, {os.cpu_count()} cores, Python {platform.python_version()}, "
+          f"NumPy {np.__version__}; load average at start {load}")
+    print("thread cap: every pool but NumPy at 1 thread (threadpoolctl), the same for both sides")
+    cases = args.cases.split(",")
+    if "lasso" in cases:
+        lasso_case(args.rows, args.inputs, 50)
+    if "logistic" in cases:
+        logistic_case(args.rows, args.inputs, 20)
+    if load is not None:
+        print(f"\nload average at the end {os.getloadavg()}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
