@@ -7,9 +7,10 @@ Every command takes --json and then prints exactly one JSON document on standard
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import sys
-import time
+from dataclasses import replace
 from pathlib import Path
 
 from objc.diagnostics import Diagnostic, SpecError
@@ -211,19 +212,40 @@ def _parse_settings(pairs: list[str], checked) -> dict[str, float]:
         raise UsageError(f"--set {err}") from None
 
 
-def _progress_printer(enabled: bool):
+# a bar appears only once a run has taken this long, so quick commands print nothing extra
+PROGRESS_DELAY = 1.0
+PROGRESS_INTERVAL = 0.1  # seconds between redraws, at the most
+
+
+def _progress_wanted(args) -> bool:
+    """Progress goes to a person watching: never under --json, never when stderr is a file or a pipe."""
+    return not getattr(args, "json", False) and sys.stderr.isatty()
+
+
+@contextlib.contextmanager
+def _progress_bar(enabled: bool, total: int | None, desc: str, unit: str):
+    """A tqdm bar on stderr (None when disabled), removed when the work ends."""
     if not enabled:
+        yield None
+        return
+    from tqdm import tqdm
+    bar = tqdm(total=total, desc=desc, unit=unit, delay=PROGRESS_DELAY, mininterval=PROGRESS_INTERVAL,
+               file=sys.stderr, leave=False, dynamic_ncols=True)
+    try:
+        yield bar
+    finally:
+        bar.close()
+
+
+def _fit_progress(bar):
+    """The solver's callback (passes, objective, relative certificate) drawn on a bar."""
+    if bar is None:
         return None
-    state = {"last": 0.0}
 
     def show(passes: int, objective: float, gap: float | None) -> None:
-        now = time.monotonic()
-        if now - state["last"] < 0.2:
-            return
-        state["last"] = now
-        g = "" if gap is None else f"  gap {gap:.2e}"
-        sys.stderr.write(f"\r  training: pass {passes:>6}  objective {objective:.8g}{g}   ")
-        sys.stderr.flush()
+        bar.set_postfix_str(f"objective {objective:.8g}" + ("" if gap is None else f", certificate {gap:.2e}"),
+                            refresh=False)
+        bar.update(max(0, int(passes) - bar.n))
     return show
 
 
@@ -237,12 +259,11 @@ def cmd_fit(args) -> int:
     tunables = _parse_settings(args.set, checked)
     train, held, held_label = training.bind_training(checked, spec_path.parent,
                                                      Path(args.data) if args.data else None)
-    show = _progress_printer(not args.json and sys.stderr.isatty())
-    result = training.run_backend(checked, train, args.backend, tunables, tol=args.tol, solver=args.solver,
-                                  allow_nonconvex=args.local_ok, progress=show, param_tol=args.param_tol,
-                                  max_passes=args.max_passes)
-    if show:
-        sys.stderr.write("\r" + " " * 70 + "\r")
+    with _progress_bar(_progress_wanted(args) and args.backend == "numpy", args.max_passes, "training",
+                       "pass") as bar:
+        result = training.run_backend(checked, train, args.backend, tunables, tol=args.tol, solver=args.solver,
+                                      allow_nonconvex=args.local_ok, progress=_fit_progress(bar),
+                                      param_tol=args.param_tol, max_passes=args.max_passes)
     training.require_finished(checked, result, args.max_passes)
     out = Path(args.output) if args.output else Path(spec_path.stem + ".model.json")
     doc = training.evaluated_document(checked, spec_path, train, held, held_label, result, tunables)
@@ -264,8 +285,8 @@ def cmd_fit(args) -> int:
              f"backend   {result.backend}: {result.method}  ->  {result.status}",
              f"time      {result.seconds:.3f} s" + (f", {result.passes} passes over the data" if result.passes else "")
              + f", {result.iterations} iterations",
-             f"stopped   on the {cert.kind}" + (f": absolute {cert.absolute:.3g}, relative {cert.relative:.3g}"
-                                        if cert.absolute is not None else "") + (f" ({cert.note})" if cert.note else ""),
+             f"stopped   on the {cert.kind}" + (f": absolute {_gap_figure(cert.absolute)}, relative "
+                                        f"{_gap_figure(cert.relative)}" if cert.absolute is not None else "") + (f" ({cert.note})" if cert.note else ""),
              _distance_line(cert),
              "", _rule("objective"), f"  {result.objective:.10g}  total"]
     for t, v in zip(checked.terms, result.term_values):
@@ -279,6 +300,12 @@ def cmd_fit(args) -> int:
     lines += ["", f"model     {json_path} (+ {json_path.with_suffix('.npz').name})"]
     print("\n".join(lines))
     return EXIT_OK
+
+
+def _gap_figure(value: float) -> str:
+    """A duality gap as a claim: P - D cannot be negative, so a negative figure is the rounding of
+    the two sums and is printed as 0 with what was computed."""
+    return f"{value:.3g}" if value >= 0 else f"0 (within rounding: P - D came out {value:.2g})"
 
 
 def _distance_line(cert) -> str:
@@ -415,66 +442,168 @@ def _parse_span(text: str | None, t) -> tuple[float, float]:
     return low, high
 
 
+def _sweep_requests(args, checked) -> list:
+    """The tunables' grid texts, with --span/--steps/--linear applied to the one-tunable form."""
+    from objc import selection
+    try:
+        requests = [selection.parse_axis(text) for text in args.tunables]
+    except ValueError as err:
+        raise UsageError(f"tunable {err}") from None
+    if args.span is not None:
+        if len(requests) > 1:
+            raise UsageError("--span applies to a one-tunable sweep; give each tunable its own span, e.g. "
+                             "lam:0.001..10 a:0..1:5:lin")
+        if requests[0].low is not None or requests[0].values is not None:
+            raise UsageError(f"'{args.tunables[0]}' has its own span; drop --span {args.span}")
+        known = {t.name: t for t in checked.spec.tunables}
+        if requests[0].name in known:
+            low, high = _parse_span(args.span, known[requests[0].name])
+            requests[0] = replace(requests[0], low=low, high=high)
+    return requests
+
+
+def _sweep_options(args) -> None:
+    """Usage mistakes that need no data, refused before any table is read."""
+    if args.steps is not None and args.steps < 1:
+        raise UsageError("--steps must be at least 1")
+    if args.folds is not None and args.folds < 2:
+        raise UsageError(f"--folds {args.folds}: cross-validation needs at least 2 folds")
+    if args.seed is not None and args.folds is None:
+        raise UsageError("--seed shuffles the folds; give --folds K too")
+    if args.choose == "one-se" and args.folds is None:
+        raise UsageError("--choose one-se needs the standard error over folds: give --folds K (K >= 2)")
+    if args.plot_weights and len(args.tunables) > 1:
+        raise UsageError("--plot-weights draws a one-tunable sweep; sweep one tunable")
+    if args.plot_weights:
+        from objc import plots
+        if not hasattr(plots, "weight_path"):
+            raise UsageError("--plot-weights: this objc has no weight-path plot yet")
+
+
 def cmd_sweep(args) -> int:
     from objc.frontend import check_file
-    from objc import training
+    from objc import selection, training
     spec_path = Path(args.spec)
+    _sweep_options(args)
     checked = check_file(spec_path)
     training.require_trainable(checked)
-    known = {t.name: t for t in checked.spec.tunables}
-    if args.tunable not in known:
-        raise UsageError(f"the spec has no tunable '{args.tunable}' (tunables: {', '.join(known) or 'none'})")
-    t = known[args.tunable]
-    low, high = _parse_span(args.span, t)
-    if not (t.low <= low <= high <= t.high):
-        raise SpecError((Diagnostic("E402", f"the span {low:g} .. {high:g} leaves {t.name}'s declared range "
-                                    f"{t.low:g} .. {t.high:g}", t.span, hint="sweep inside the declared range, or "
-                                    "widen it in the spec", source_name=checked.source.name),), checked.source)
-    if args.steps < 1:
-        raise UsageError("--steps must be at least 1")
+    requests = _sweep_requests(args, checked)
     base = _parse_settings(args.set, checked)
-    values = training.sweep_grid(low, high, args.steps, args.linear)
-    def progress(k, total, point):
-        sys.stderr.write(f"\r  sweeping {t.name}: {k}/{total}  ({t.name} = {point['value']:.4g})   ")
-        sys.stderr.flush()
-    show = None if args.json or not sys.stderr.isatty() else progress
-    result = training.sweep(checked, spec_path.parent, t.name, values, backend=args.backend,
-                            data_path=Path(args.data) if args.data else None, tunables=base, tol=args.tol,
-                            solver=args.solver, progress=show, param_tol=args.param_tol)
-    if show:
-        sys.stderr.write("\r" + " " * 60 + "\r")
-    written = []
+    data_path = Path(args.data) if args.data else None
+    train, held, held_label = training.bind_training(checked, spec_path.parent, data_path)
+    try:
+        grid = selection.make_grid(checked, requests, data=train, base=base,
+                                   default_steps=args.steps or selection.DEFAULT_STEPS, default_linear=args.linear)
+    except ValueError as err:
+        raise UsageError(str(err)) from None
+    seed = selection.DEFAULT_SEED if args.seed is None else args.seed
+    try:
+        plan = selection.validation_plan(checked, train, held, held_label, folds=args.folds, seed=seed)
+    except ValueError as err:
+        raise UsageError(f"--folds {args.folds}: {err}") from None
+    options = selection.FitOptions(args.backend, args.tol, args.param_tol, args.solver)
+    total = grid.size * len(plan.parts)
+    with _progress_bar(_progress_wanted(args), total, "sweeping", "fit") as bar:
+        def progress(done: int, total: int, info: dict) -> None:
+            cert = info["certificate"]
+            bar.set_postfix_str(f"fold {info['part']}/{info['parts']}, setting {info['point']}/{info['points']}, "
+                                f"objective {info['objective']:.5g}"
+                                + ("" if cert is None else f", certificate {cert:.1e}"), refresh=False)
+            bar.update(done - bar.n)
+        outcome = selection.evaluate_grid(checked, plan, grid, base, options, progress if bar is not None else None)
+    choice = selection.choose_point(outcome, args.choose)
+    doc = selection.sweep_document(outcome, choice)
+    written: list[str] = []
+    refit = None
+    if args.save_best or args.folds is not None:
+        # the folds' fits each saw part of the rows: the answer is the chosen setting on all of them
+        model_doc, fit = selection.refit_chosen(checked, spec_path, train, held, held_label, outcome, choice,
+                                                options, args.max_passes)
+        refit = {"setting": model_doc["tunables"], "rows": train.n_rows, "objective": fit.objective,
+                 "status": fit.status, "certificate": model_doc["fit"]["certificate"],
+                 "training_metrics": model_doc["training_metrics"], "holdout_metrics": model_doc["holdout_metrics"]}
+        if args.save_best:
+            from objc.model_io import save_model
+            refit["model"] = str(save_model(Path(args.save_best), model_doc, fit.params))
+            written.append(refit["model"])
+    doc["refit"] = refit
+    from objc import plots
     if args.plot:
-        from objc.plots import sweep_curve
-        written.append(str(sweep_curve(result, Path(args.plot))))
-    if args.save_best:
-        from objc.model_io import save_model
-        best = result["best"]["value"]
-        setting = dict(base, **{t.name: best})
-        train, held, held_label = training.bind_training(checked, spec_path.parent, Path(args.data) if args.data else None)
-        fit = training.run_backend(checked, train, args.backend, setting, tol=args.tol, solver=args.solver,
-                                   param_tol=args.param_tol, max_passes=args.max_passes)
-        training.require_finished(checked, fit, args.max_passes)
-        doc = training.evaluated_document(checked, spec_path, train, held, held_label, fit, setting)
-        written.append(str(save_model(Path(args.save_best), doc, fit.params)))
+        written.append(str(plots.sweep_curve(doc, Path(args.plot))))
+    if args.plot_weights:
+        values = [p["value"] for p in doc["points"]]
+        weights = [p["mean_weights"] for p in doc["points"]]
+        written.append(str(plots.weight_path(values, weights, list(doc["input_names"]), doc["tunable"],
+                                             doc["chosen"]["value"], Path(args.plot_weights))))
     if args.json:
-        _emit_json(dict(result, command="sweep", ok=True, written=written))
+        _emit_json(dict(doc, command="sweep", ok=True, written=written))
         return EXIT_OK
-    lines = [f"sweep     {t.name} over {len(values)} values, {low:g} .. {high:g}"
-             f" ({'linear' if args.linear or low <= 0 else 'log'} grid), {result['backend']} backend, warm starts",
-             f"ranked    by {training.metric_label(result['metric'])} on {result['ranked_on']}", "",
-             f"  {t.name:>12}  {'objective':>14}  {'training':>10}  {'held out':>10}  {'certificate':>11}  passes"]
-    for k, pnt in enumerate(result["points"]):
-        mark = "  <- chosen" if k == result["best"]["index"] else ""
-        rel = pnt["certificate"]["relative"]
-        held = "-" if pnt["held"] is None else f"{pnt['held']:.4f}"
-        lines.append(f"  {pnt['value']:>12.5g}  {pnt['objective']:>14.8g}  {pnt['train']:>10.4f}  {held:>10}  "
-                     f"{'-' if rel is None else format(rel, '.1e'):>11}  {pnt['passes'] or '-':>6}{mark}")
-    lines += [f"  wrote {w}" for w in written]
-    print("\n".join(lines))
+    print(_sweep_report(doc, written))
     return EXIT_OK
 
 
+def _sweep_report(doc: dict, written: list[str]) -> str:
+    from objc.training import metric_label
+    v = doc["validation"]
+    names = doc["tunables"]
+    sizes = [len(a["values"]) for a in doc["grid"]]
+    lines = [f"sweep     {' x '.join(names)}: {' x '.join(str(n) for n in sizes)} = {len(doc['points'])} settings, "
+             f"{doc['fits']} fits ({doc['backend']} backend; warm starts: {doc['warm_start']})"]
+    for a in doc["grid"]:
+        lo, hi = a["values"][0], a["values"][-1]
+        lines.append(f"  {a['name']:<10} {len(a['values'])} values {lo:.4g} .. {hi:.4g}, {a['spacing']} ({a['origin']})")
+    if doc["held_fixed"]:
+        lines.append("  held at   " + ", ".join(f"{n} = {x:g}" for n, x in doc["held_fixed"].items()))
+    lines.append(f"scored    on {v['label']}" + (f"; held-out rows per fold {', '.join(str(n) for n in v['part_rows'])}"
+                                                 if v["kind"] == "folds" else ""))
+    spread = " (mean +- standard error over the folds)" if v["kind"] == "folds" else ""
+    others = [metric_label(m) for m in doc["metrics"][1:]]
+    lines.append(f"ranked    by {doc['metric_label']}{spread}" + (f"; also {', '.join(others)}" if others else ""))
+    rule = doc["rule"]
+    lines.append(f"rule      {rule['name']}: {rule['text']}")
+    if rule["simplest"]:
+        lines.append(f"          simplest = {rule['simplest']}; within the lowest mean + its standard error "
+                     f"= {rule['threshold']:.4g}")
+    lines.append("")
+    cols = [f"{n:>10}" for n in names]
+    heads = [metric_label(m) for m in doc["metrics"]]
+    widths = [max(len(h), 20 if v["kind"] == "folds" else 10) for h in heads]
+    header = "  " + "  ".join(cols) + "  " + "  ".join(f"{h:>{w}}" for h, w in zip(heads, widths))
+    if v["kind"] != "folds":
+        header += f"  {'training':>10}"
+    header += f"  {'nonzero':>7}  {'certificate':>11}"
+    lines.append(header)
+    for k, p in enumerate(doc["points"]):
+        cells = [f"{p['setting'][n]:>10.4g}" for n in names]
+        figs = []
+        for m, width in zip(doc["metrics"], widths):
+            s = p["metrics"][m]
+            figs.append(f"{s['mean']:.4g} +- {s['se']:.2g}".rjust(width) if s["se"] is not None
+                        else f"{s['mean']:>{width}.4g}")
+        row = "  " + "  ".join(cells) + "  " + "  ".join(figs)
+        if v["kind"] != "folds":
+            row += f"  {p['train']:>10.4g}"
+        rel = p["certificate"]["relative"]
+        row += f"  {p['nonzero']:>7.3g}  {'-' if rel is None else format(max(rel, 0.0), '.1e'):>11}"
+        if k == doc["chosen"]["index"]:
+            row += "  <- chosen"
+        elif k == doc["best"]["index"]:
+            row += "  <- lowest mean"
+        lines.append(row)
+    refit = doc.get("refit")
+    if refit is not None:
+        cert = refit["certificate"]
+        rel = "" if cert["relative"] is None else f", relative {_gap_figure(cert['relative'])}"
+        dist = ("" if cert["distance"] is None else f"; ||params - optimum|| <= {cert['distance']:.3g}, certified")
+        chosen = ", ".join(f"{n} = {refit['setting'][n]:.6g}" for n in names)
+        lines += ["", f"refit     {chosen} on all "
+                      f"{refit['rows']} training rows: {refit['status']}, {cert['kind']}{rel}{dist}"]
+        if refit["holdout_metrics"] is not None:
+            from objc.training import metric_value
+            lines.append(f"          on the spec's held-out rows: {doc['metric_label']} "
+                         f"{metric_value(refit['holdout_metrics'], doc['metric']):.4g}")
+    lines += [f"wrote     {w}" for w in written]
+    return "\n".join(lines)
 
 
 def cmd_plot(args) -> int:
@@ -573,12 +702,21 @@ def _parser() -> argparse.ArgumentParser:
     pr.add_argument("table")
     pr.add_argument("-o", "--output", required=True, help="CSV file to write")
     common(pr)
-    sw = sub.add_parser("sweep", help="fit over a grid of one tunable with warm starts; rank by held-out rows")
+    sw = sub.add_parser("sweep", help="fit over a grid of one or more tunables; rank by folds or held-out rows")
     sw.add_argument("spec")
-    sw.add_argument("tunable")
-    sw.add_argument("--span", help="LOW..HIGH (default: the tunable's declared range)")
-    sw.add_argument("--steps", type=int, default=9, help="how many values (default 9)")
+    sw.add_argument("tunables", nargs="+", metavar="TUNABLE",
+                    help="a tunable and optionally its grid: NAME (its declared range; an L1 weight from where "
+                         "every weight is zero down), NAME:LOW..HIGH, NAME:LOW..HIGH:STEPS, "
+                         "NAME:LOW..HIGH:STEPS:lin|log, NAME::STEPS, or NAME=V1,V2,...")
+    sw.add_argument("--span", help="one tunable: LOW..HIGH (default: the tunable's declared range)")
+    sw.add_argument("--steps", type=int, help="values per tunable without its own STEPS (default 9)")
     sw.add_argument("--linear", action="store_true", help="evenly spaced values instead of a log grid")
+    sw.add_argument("--folds", type=int, metavar="K", help="K-fold cross-validation of the training rows "
+                    "(stratified by class for classification); default: the spec's held-out rows")
+    sw.add_argument("--seed", type=int, metavar="S", help="the folds' shuffle (default 0)")
+    sw.add_argument("--choose", choices=["best", "one-se"], default="best",
+                    help="best: the lowest mean (default); one-se: the simplest setting within one standard "
+                         "error of it (needs --folds)")
     sw.add_argument("--data", help="use this table instead of the one the spec names")
     sw.add_argument("--backend", choices=["numpy", "cvxpy"], default="numpy")
     sw.add_argument("--solver", help="cvxpy backend: the solver to use")
@@ -589,8 +727,10 @@ def _parser() -> argparse.ArgumentParser:
     sw.add_argument("--max-passes", type=_positive_int, metavar="N",
                     help="numpy backend: pass budget of the --save-best refit; running out writes nothing")
     sw.add_argument("--set", action="append", metavar="NAME=VALUE", help="hold another tunable at a value")
-    sw.add_argument("--plot", metavar="PNG", help="also draw the sweep to this PNG file")
-    sw.add_argument("--save-best", metavar="MODEL", help="refit at the chosen value and save the model")
+    sw.add_argument("--plot", metavar="PNG", help="also draw the validation curve to this PNG file")
+    sw.add_argument("--plot-weights", metavar="PNG", help="one tunable: also draw each weight against it")
+    sw.add_argument("--save-best", metavar="MODEL", help="refit the chosen setting on all training rows and "
+                    "save the model (with how it was chosen)")
     common(sw)
     pl = sub.add_parser("plot", help="draw a PNG: a spec's losses, a model's convergence, or a sweep")
     pl.add_argument("kind", choices=["losses", "convergence", "sweep"])

@@ -72,21 +72,52 @@ def loss_curves(checked: CheckedObjective, out: Path, span: float = 3.0) -> Path
 
 
 def sweep_curve(sweep: dict, out: Path) -> Path:
-    """Training and held-out figures against the swept tunable (log axis when the grid is positive)."""
+    """A sweep's validation curve against the first tunable: with folds, the mean of the ranking
+    metric with a band of +- one standard error, one curve per value of the other tunables; on
+    held-out rows, the training and held-out figures. The chosen point is marked. Log axis when the
+    grid is positive and wide."""
     rows = sweep["points"]
-    name = sweep["tunable"]
-    xs = np.array([r["value"] for r in rows], dtype=float)
-    metric = sweep["metric"]
+    names = sweep.get("tunables") or [sweep["tunable"]]
+    name = names[0]
     from objc.training import metric_label
-    label = metric_label(metric)
-    fig, ax, plt = _figure(f"sweep of {name}: {label} on {sweep.get('ranked_on', 'the rows')}")
-    ax.plot(xs, [r["train"] for r in rows], color=_PALETTE[2], marker="o", linewidth=1.6, label="training rows")
-    if any(r.get("held") is not None for r in rows):
-        ax.plot(xs, [r["held"] for r in rows], color=_PALETTE[0], marker="s", linewidth=2.0, label="held-out rows")
-    best = sweep.get("best")
-    if best is not None:
-        ax.axvline(best["value"], color=_INK, linewidth=1.0, linestyle=(0, (2, 2)))
-        ax.annotate(f"chosen {name} = {best['value']:.3g}", (best["value"], ax.get_ylim()[1]), fontsize=8,
+    label = metric_label(sweep["metric"])
+    folds = (sweep.get("validation") or {}).get("kind") == "folds"
+    fig, ax, plt = _figure(f"sweep of {', '.join(names)}: {label} on {sweep.get('ranked_on', 'the rows')}")
+
+    def at(r: dict, n: str) -> float:
+        return float(r["setting"][n]) if "setting" in r else float(r["value"])
+    xs = np.array([at(r, name) for r in rows], dtype=float)
+    groups: dict[tuple, list[int]] = {}
+    for i, r in enumerate(rows):
+        groups.setdefault(tuple(at(r, n) for n in names[1:]), []).append(i)
+    for g, (key, idx) in enumerate(groups.items()):
+        idx = sorted(idx, key=lambda i: xs[i])
+        colour = _PALETTE[g % len(_PALETTE)]
+        tag = ", ".join(f"{n} = {v:.3g}" for n, v in zip(names[1:], key))
+        if folds:
+            mean = np.array([rows[i]["mean"] for i in idx], dtype=float)
+            se = np.array([np.nan if rows[i].get("se") is None else rows[i]["se"] for i in idx], dtype=float)
+            ax.plot(xs[idx], mean, color=colour, marker="o", linewidth=1.8,
+                    label=f"mean over the folds{': ' + tag if tag else ''}")
+            ax.fill_between(xs[idx], mean - se, mean + se, color=colour, alpha=0.18 if len(groups) == 1 else 0.07,
+                            linewidth=0,
+                            label="+- one standard error" if g == 0 else None)
+        else:
+            ax.plot(xs[idx], [rows[i]["train"] for i in idx], color=_PALETTE[2], marker="o", linewidth=1.4,
+                    linestyle=(0, (3, 2)) if tag else "-", label=f"training rows{': ' + tag if tag else ''}")
+            if any(rows[i].get("held") is not None for i in idx):
+                ax.plot(xs[idx], [rows[i]["held"] for i in idx], color=colour if tag else _PALETTE[0], marker="s",
+                        linewidth=2.0, label=f"held-out rows{': ' + tag if tag else ''}")
+    chosen = sweep.get("chosen") or sweep.get("best")
+    if chosen is not None:
+        cx = at(rows[chosen["index"]], name)
+        cy = rows[chosen["index"]]["mean"] if folds else (rows[chosen["index"]].get("held")
+                                                           if rows[chosen["index"]].get("held") is not None
+                                                           else rows[chosen["index"]]["train"])
+        ax.axvline(cx, color=_INK, linewidth=1.0, linestyle=(0, (2, 2)))
+        ax.plot([cx], [cy], marker="*", markersize=13, color=_INK, linestyle="none",
+                label=f"chosen ({(sweep.get('rule') or {}).get('name', 'best')})")
+        ax.annotate(f"chosen {name} = {cx:.3g}", (cx, ax.get_ylim()[1]), fontsize=8,
                     ha="left", va="top", xytext=(4, -4), textcoords="offset points")
     if np.all(xs > 0) and xs.max() / xs.min() > 20:
         ax.set_xscale("log")

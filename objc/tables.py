@@ -895,10 +895,14 @@ def _matches(raw: np.ndarray, value: str | float) -> np.ndarray:
                      and float(c) == float(value) for c in raw], dtype=bool)
 
 
-def _fit_stats(X: np.ndarray, names: tuple[str, ...], spans: Sequence[Span], where: _Where) -> Standardization:
+def _fit_stats(X: np.ndarray, names: tuple[str, ...], spans: Sequence[Span], where: _Where, rows_label: str = "",
+               hint: str = "leave it out of the inputs") -> Standardization:
+    """Mean and population standard deviation of each column: the one rule for what `standardize`
+    fits and for when a column is too constant to scale (also on a fold's or a holdout's rows)."""
     with np.errstate(over="ignore", invalid="ignore"):
         means = X.mean(axis=0)
         scales = X.std(axis=0)  # population standard deviation (ddof 0), as scikit-learn's StandardScaler
+    on = f" on {rows_label}" if rows_label else ""
     diags = []
     for j, name in enumerate(names):
         top = np.max(np.abs(X[:, j])) if len(X) else 0.0
@@ -908,9 +912,9 @@ def _fit_stats(X: np.ndarray, names: tuple[str, ...], spans: Sequence[Span], whe
                                     f"standardize (up to {_value(top)}; their spread overflows)", spans[j],
                                     "rescale the column (e.g. a feature dividing it by a power of ten)"))
         elif not scales[j] > 1e-12 * top:  # zero spread, or only rounding noise
-            diags.append(where.diag("T150", f"input {_q(name)} of {_q(where.file)} is constant "
+            diags.append(where.diag("T150", f"input {_q(name)} of {_q(where.file)} is constant{on} "
                                     f"(every value is {_value(X[0, j])}); `standardize` would divide by "
-                                    "zero", spans[j], "leave it out of the inputs"))
+                                    "zero", spans[j], hint))
     _raise_all(diags)
     return Standardization(names, tuple(float(m) for m in means), tuple(float(s) for s in scales))
 
@@ -970,15 +974,26 @@ def split_holdout(data: BoundData, fraction: float, seed: int, *, span: Span = N
                           "use a larger table or another share")
     order = np.random.default_rng(seed).permutation(n)
     held_idx, train_idx = np.sort(order[:k]), np.sort(order[k:])
-    train, held = take_rows(data, train_idx), take_rows(data, held_idx)
-    if data.task == "margin" and data.target is not None and len(np.unique(train.y)) < 2:
+    if data.task == "margin" and data.target is not None and len(np.unique(data.y[train_idx])) < 2:
         raise where.error("T171", f"the training part of the holdout split of {_q(where.file)} holds one class only",
                           span, "try another seed or a smaller holdout share")
+    return split_rows(data, train_idx, held_idx, span=span, source_name=source_name)
+
+
+def split_rows(data: BoundData, train_idx: np.ndarray, held_idx: np.ndarray, *, span: Span = NO_SPAN,
+               source_name: str = "", rows_label: str = "", hint: str = "leave it out of the inputs"
+               ) -> tuple[BoundData, BoundData]:
+    """(training part, held-out part) of the given row indices. When the standardization was fitted
+    on `data`, it is fitted again on the training part alone (as a pipeline with a scaler would), so
+    held-out rows never shape it; a column constant on the training part is T150 at `span`, its
+    message naming `rows_label` (e.g. "the training rows of fold 2 of 5")."""
+    where = _Where(data.file_label or str(data.source), source_name)
+    train, held = take_rows(data, train_idx), take_rows(data, held_idx)
     if data.standardization is not None and data.standardization_fitted:
         std = data.standardization
         mean, scale = np.asarray(std.means), np.asarray(std.scales)
         raw_train, raw_held = train.X * scale + mean, held.X * scale + mean
-        refit = _fit_stats(raw_train, data.input_names, [span] * data.n_inputs, where)
+        refit = _fit_stats(raw_train, data.input_names, [span] * data.n_inputs, where, rows_label, hint)
         m2, s2 = np.asarray(refit.means), np.asarray(refit.scales)
         train = replace(train, X=_frozen(np.ascontiguousarray((raw_train - m2) / s2)), standardization=refit)
         held = replace(held, X=_frozen(np.ascontiguousarray((raw_held - m2) / s2)), standardization=refit,

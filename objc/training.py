@@ -480,11 +480,13 @@ def validation_metric(checked: CheckedObjective, task: str, tunables: dict[str, 
 
 def metric_label(metric: str) -> str:
     """A sweep metric's name as a report prints it."""
-    return {"zero_one_error": "0-1 error", "zero_one_error_weighted": "weighted 0-1 error (row x class weights)",
-            "rmse": "RMSE"}.get(metric, metric.replace("mean_losses:", "mean "))
+    return {"zero_one_error": "0-1 error", "zero_one_error_weighted": "weighted 0-1 error",
+            "rmse": "RMSE", "mae": "MAE", "mean_losses:logistic": "log loss"}.get(
+                metric, metric.replace("mean_losses:", "mean ") + " loss")
 
 
-def _metric_value(m: dict, metric: str) -> float:
+def metric_value(m: dict, metric: str) -> float:
+    """One figure of a `metrics` dict by its sweep key (`mean_losses:NAME` for a loss's mean)."""
     if metric.startswith("mean_losses:"):
         return float(m["mean_losses"][metric.split(":", 1)[1]])
     return float(m[metric])
@@ -495,40 +497,9 @@ def sweep(checked: CheckedObjective, spec_dir: Path, tunable: str, values: list[
           tol: float = 1e-6, solver: str | None = None, progress: Callable | None = None,
           param_tol: float | None = 1e-6) -> dict:
     """Fit once per value of one tunable, warm-starting each fit from the previous answer, and rank
-    the values by the held-out figure (or the training figure when the spec holds nothing out)."""
-    known = {t.name: t for t in checked.spec.tunables}
-    base = {n: t.default for n, t in known.items()}
-    base.update(tunables or {})
-    train, held, held_label = bind_training(checked, spec_dir, data_path)
-    form = form_for(checked, train.input_names)
-    # one figure ranks every point: a trained loss's settings at the sweep's base values (the
-    # defaults and --set), even when the sweep varies that very setting, so the points compare
-    metric = validation_metric(checked, train.task, base)
-    points = []
-    theta = None
-    built = None
-    if backend == "cvxpy":
-        from objc.backends import cvxpy_problem
-        built = cvxpy_problem.build_problem(checked, train.X, train.y, train.weights, train.input_names, base)
-    for k, v in enumerate(values):
-        setting = dict(base, **{tunable: float(v)})
-        if built is not None:
-            from objc.backends import cvxpy_problem
-            result = cvxpy_problem.solve_build(built, setting, solver=solver, warm_start=k > 0)
-        else:
-            result = run_backend(checked, train, backend, setting, tol=tol, theta0=theta, param_tol=param_tol)
-            theta = theta_from_params(form, result.params)
-        tm, hm = fit_metrics(checked, result.params, train, held, base)
-        points.append({"value": float(v), "objective": result.objective, "status": result.status,
-                       "train": _metric_value(tm, metric), "held": None if hm is None else _metric_value(hm, metric),
-                       "certificate": {"kind": result.certificate.kind, "relative": result.certificate.relative,
-                                       "distance": result.certificate.distance},
-                       "passes": result.passes, "seconds": result.seconds, "params": result.params})
-        if progress is not None:
-            progress(k + 1, len(values), points[-1])
-    key = "held" if held is not None else "train"
-    best_i = min(range(len(points)), key=lambda i: (points[i][key], i))
-    return {"tunable": tunable, "metric": metric, "ranked_on": held_label or "the training rows (nothing is held out)",
-            "backend": backend, "points": points, "best": {"value": points[best_i]["value"], "index": best_i,
-                                                           key: points[best_i][key]},
-            "input_names": list(train.input_names)}
+    the values by the held-out figure (or the training figure when the spec holds nothing out).
+    The one home of grids, folds and choice rules is objc.selection; this keeps the one-tunable call."""
+    from objc import selection  # selection builds on this module, so it is imported when used
+    return selection.one_tunable_sweep(checked, spec_dir, tunable, values, backend=backend, data_path=data_path,
+                                       tunables=tunables, tol=tol, solver=solver, progress=progress,
+                                       param_tol=param_tol)

@@ -250,6 +250,125 @@ def test_sweep_span_outside_declared_range(tmp_path, capsys):
     assert code == 2 and "declared range" not in err and "smaller value first" in err
 
 
+def _sweep_folder(tmp_path: Path, rows: int = 90, spec: str = SWEEP_SPEC) -> Path:
+    _write_table(tmp_path / "t.csv", _good_rows(rows, seed=4))
+    path = tmp_path / "sw.objc"
+    path.write_text(spec)
+    return path
+
+
+def test_sweep_cross_validates_with_a_seed_a_rule_and_a_saved_choice(tmp_path, capsys):
+    from objc.model_io import load_model
+    spec = _sweep_folder(tmp_path)
+    argv = ["sweep", spec, "lam:0.001..1:4", "--folds", "3", "--seed", "5", "--choose", "one-se", "--json"]
+    code, out, err = run(argv + ["--plot", tmp_path / "cv.png", "--save-best", tmp_path / "best.json"], capsys)
+    assert code == 0, err
+    doc = json.loads(out)  # one document
+    assert doc["validation"]["folds"] == 3 and doc["validation"]["seed"] == 5 and doc["validation"]["stratified"]
+    assert doc["fits"] == 12 and doc["rule"]["name"] == "one-se" and "7.10" in doc["rule"]["text"]
+    for p in doc["points"]:
+        parts = p["metrics"][doc["metric"]]["parts"]
+        # the spread over the folds: sample standard deviation, and it over sqrt(K) (ESL section 7.10)
+        assert len(parts) == 3 and p["mean"] == pytest.approx(np.mean(parts))
+        assert p["se"] == pytest.approx(np.std(parts, ddof=1) / np.sqrt(3))
+        assert set(p["metrics"]) == {"zero_one_error", "mean_losses:logistic"}
+    means = [p["mean"] for p in doc["points"]]
+    best = int(np.argmin(means))
+    assert doc["best"]["index"] == best
+    assert doc["chosen"]["index"] in doc["rule"]["within"] and means[doc["chosen"]["index"]] <= means[best] + \
+        doc["points"][best]["se"] + 1e-12
+    assert (tmp_path / "cv.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    model = load_model(tmp_path / "best.json")  # loads: its checksum covers the selection record
+    record = model.document["selection"]
+    assert record["folds"] == 3 and record["seed"] == 5 and record["rule"] == "one-se"
+    assert model.document["tunables"]["lam"] == doc["chosen"]["value"] == doc["refit"]["setting"]["lam"]
+    assert doc["refit"]["rows"] == 68  # the 90 rows less the spec's 25% holdout
+    # the same seed gives the same folds and choice; another seed other folds
+    again = json.loads(run(argv, capsys)[1])
+    assert again["chosen"] == doc["chosen"] and [p["metrics"] for p in again["points"]] == \
+        [p["metrics"] for p in doc["points"]]
+    other = json.loads(run(argv[:-5] + ["--seed", "6", "--json"], capsys)[1])
+    assert [p["metrics"] for p in other["points"]] != [p["metrics"] for p in doc["points"]]
+    # the document redraws
+    (tmp_path / "sweep.json").write_text(out)
+    assert run(["plot", "sweep", tmp_path / "sweep.json", "-o", tmp_path / "again.png"], capsys)[0] == 0
+    assert (tmp_path / "again.png").read_bytes()[:4] == b"\x89PNG"
+
+
+TWO_SPEC = SWEEP_SPEC.replace("tune lam", "tune C = 1 within 0.1 .. 10\ntune lam").replace(
+    "goal mean logistic", "goal C * mean logistic")
+
+
+def test_sweep_over_two_tunables_in_the_grid_syntax(tmp_path, capsys):
+    spec = _sweep_folder(tmp_path, spec=TWO_SPEC)
+    code, out, err = run(["sweep", spec, "lam:0.01..1:2", "C=0.5,2", "--folds", "2", "--plot", tmp_path / "two.png"],
+                         capsys)
+    assert code == 0, err
+    assert "lam x C: 2 x 2 = 4 settings, 8 fits" in out and "<- chosen" in out and "2 folds of the 68" in out
+    assert "refit" in out and (tmp_path / "two.png").read_bytes()[:4] == b"\x89PNG"
+    code, out, _ = run(["sweep", spec, "lam:0.01..1:2", "C=0.5,2", "--json"], capsys)
+    doc = json.loads(out)
+    assert [p["setting"] for p in doc["points"]] == [{"lam": 0.01, "C": 0.5}, {"lam": 0.01, "C": 2.0},
+                                                     {"lam": 1.0, "C": 0.5}, {"lam": 1.0, "C": 2.0}]
+    assert doc["validation"]["kind"] == "holdout" and doc["refit"] is None
+
+
+@pytest.mark.parametrize("words, code, said", [
+    (["lam", "--folds", "1"], 2, "at least 2 folds"),
+    (["lam", "--folds", "500"], 2, "at least 500 training rows"),
+    (["lam:0.1"], 2, "LOW..HIGH"),
+    (["lam:0.1..1:x"], 2, "not a whole number"),
+    (["lam:0.0001..1:3"], 1, "sw.objc:5:1: error [E402]"),  # a spec-range error, located at `tune`, as fit --set
+    (["lam=0.5,20"], 1, "[E402] the value 20 leaves lam's declared range"),
+    (["mu"], 2, "no tunable 'mu'"),
+    (["lam", "lam:0.1..1"], 2, "given twice"),
+    (["lam", "--choose", "one-se"], 2, "--folds"),
+    (["lam", "--seed", "3"], 2, "--folds"),
+    (["lam:0.01..1", "--span", "0.1..1"], 2, "own span"),
+])
+def test_sweep_mistakes_are_located_and_write_nothing(tmp_path, capsys, words, code, said):
+    spec = _sweep_folder(tmp_path, rows=60)
+    got, _, err = run(["sweep", spec] + words + ["--save-best", tmp_path / "b.json"], capsys)
+    assert got == code and said in err and "Traceback" not in err, err
+    assert not (tmp_path / "b.json").exists()
+
+
+def test_progress_only_on_a_terminal_and_never_with_json(tmp_path, capsys, monkeypatch):
+    import objc.cli as cli
+    spec = _sweep_folder(tmp_path, rows=60)
+    # stderr is not a terminal here (captured): no bar
+    code, _, err = run(["sweep", spec, "lam:0.01..1:2", "--folds", "2"], capsys)
+    assert code == 0 and err == ""
+    monkeypatch.setattr(cli, "PROGRESS_DELAY", 0.0)
+    monkeypatch.setattr(cli, "PROGRESS_INTERVAL", 0.0)  # every update drawn, so the test sees them
+    monkeypatch.setattr(sys.stderr, "isatty", lambda: True)
+    code, _, err = run(["sweep", spec, "lam:0.01..1:2", "--folds", "2"], capsys)
+    assert code == 0 and "sweeping" in err and "fold 2/2" in err and "setting" in err and "certificate" in err
+    monkeypatch.setattr(sys.stderr, "isatty", lambda: True)
+    code, _, err = run(["fit", spec, "-o", tmp_path / "m.json"], capsys)
+    assert code == 0 and "training" in err and "objective" in err
+    monkeypatch.setattr(sys.stderr, "isatty", lambda: True)
+    code, out, err = run(["sweep", spec, "lam:0.01..1:2", "--folds", "2", "--json"], capsys)
+    assert code == 0 and err == "" and json.loads(out)["ok"]
+
+
+def test_sweep_plots_the_weight_path_of_one_tunable(tmp_path, capsys):
+    from objc import plots
+    if not hasattr(plots, "weight_path"):
+        pytest.skip("plots.weight_path (the regularization-path plot) is not in this tree")
+    spec = _sweep_folder(tmp_path, rows=60)
+    code, out, err = run(["sweep", spec, "lam:0.01..1:3", "--folds", "2", "--plot-weights", tmp_path / "w.png",
+                          "--json"], capsys)
+    assert code == 0, err
+    doc = json.loads(out)
+    assert (tmp_path / "w.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and str(tmp_path / "w.png") in doc["written"]
+    # the weights drawn are the fold-averaged ones, one per input
+    assert all(len(p["mean_weights"]) == 3 for p in doc["points"])
+    code, _, err = run(["sweep", _sweep_folder(tmp_path, 60, TWO_SPEC), "lam", "C", "--plot-weights",
+                        tmp_path / "x.png"], capsys)
+    assert code == 2 and "one-tunable" in err and not (tmp_path / "x.png").exists()
+
+
 def test_plot_losses_writes_a_png(tmp_path, capsys):
     spec = _spec(tmp_path, "loss blend(m) = 0.5 * max(0, 1 - m)^2 + 0.5 * log(1 + exp(-m))\n"
                            "goal mean blend(y * s) + 0.8 * mean hinge(y * s) + 0.01 * l2sq(w)\n")
