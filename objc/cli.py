@@ -594,7 +594,12 @@ def _sweep_report(doc: dict, written: list[str]) -> str:
     if refit is not None:
         cert = refit["certificate"]
         rel = "" if cert["relative"] is None else f", relative {_gap_figure(cert['relative'])}"
-        dist = ("" if cert["distance"] is None else f"; ||params - optimum|| <= {cert['distance']:.3g}, certified")
+        if cert["distance"] is not None:
+            dist = f"; ||params - optimum|| <= {cert['distance']:.3g}, certified"
+        elif cert.get("weights_distance") is not None:
+            dist = f"; ||w - w*|| <= {cert['weights_distance']:.3g}, certified for the weights (not the intercept)"
+        else:
+            dist = "; no distance to the optimum can be certified (the JSON's distance_note says why)"
         chosen = ", ".join(f"{n} = {refit['setting'][n]:.6g}" for n in names)
         lines += ["", f"refit     {chosen} on all "
                       f"{refit['rows']} training rows: {refit['status']}, {cert['kind']}{rel}{dist}"]
