@@ -573,6 +573,7 @@ def _sweep_report(doc: dict, written: list[str]) -> str:
         header += f"  {'training':>10}"
     header += f"  {'nonzero':>7}  {'certificate':>11}"
     lines.append(header)
+    short_of_tol = 0
     for k, p in enumerate(doc["points"]):
         cells = [f"{p['setting'][n]:>10.4g}" for n in names]
         figs = []
@@ -585,11 +586,18 @@ def _sweep_report(doc: dict, written: list[str]) -> str:
             row += f"  {p['train']:>10.4g}"
         rel = p["certificate"]["relative"]
         row += f"  {p['nonzero']:>7.3g}  {'-' if rel is None else format(max(rel, 0.0), '.1e'):>11}"
+        unfinished = [f["status"] for f in p.get("fits", []) if f["status"] != "optimal"]
+        if unfinished:
+            row += f"  ({len(unfinished)} of {len(p['fits'])} fits {', '.join(sorted(set(unfinished)))})"
+            short_of_tol += 1
         if k == doc["chosen"]["index"]:
             row += "  <- chosen"
         elif k == doc["best"]["index"]:
             row += "  <- lowest mean"
         lines.append(row)
+    if short_of_tol:
+        lines.append(f"note      at {short_of_tol} setting(s) a fit stopped before its certificate reached --tol (the "
+                     "certificate column is the worst over the fits); their figures are from where it stopped")
     refit = doc.get("refit")
     if refit is not None:
         cert = refit["certificate"]
