@@ -31,13 +31,14 @@ class L1Weight:
     fixed: np.ndarray  # the L1 weight there that does not move with the tunable
 
 
-def _numpy_problem(checked: CheckedObjective, data: tables.BoundData, tunables: dict[str, float]
-                   ) -> tuple[dict[str, Any], Any] | None:
+def _numpy_problem(checked: CheckedObjective, data: tables.BoundData, tunables: dict[str, float],
+                   prepared: dict[str, Any] | None = None) -> tuple[dict[str, Any], Any] | None:
     """(the generated module's namespace, the problem bound to these rows), or None where the NumPy
-    backend cannot bind this spec."""
+    backend cannot bind this spec. `prepared`: a path's cache (see `fit_path`)."""
     from objc.backends import numpy_module
     try:
-        return numpy_module.bound_problem(checked, data.X, data.y, data.weights, data.input_names, tunables)
+        return numpy_module.bound_problem(checked, data.X, data.y, data.weights, data.input_names, tunables,
+                                          prepared)
     except (numpy_module.NotSupported, ValueError):
         return None
 
@@ -46,12 +47,12 @@ def _coefficient(table: dict, tun: dict[str, float]) -> float:
     return float(table["coefficient"](tun))
 
 
-def l1_weight(checked: CheckedObjective, data: tables.BoundData, tunables: dict[str, float], tunable: str
-              ) -> tuple[L1Weight, Any, dict[str, Any]] | None:
+def l1_weight(checked: CheckedObjective, data: tables.BoundData, tunables: dict[str, float], tunable: str,
+              prepared: dict[str, Any] | None = None) -> tuple[L1Weight, Any, dict[str, Any]] | None:
     """How `tunable` weighs the goal's L1 terms, with the bound problem and namespace, or None when it
     weighs no L1 term, enters some other term too (the loss, a penalty on coordinates it does not
-    zero), or enters nonlinearly."""
-    bound = _numpy_problem(checked, data, tunables)
+    zero), or enters nonlinearly. `prepared`: a path's cache (see `fit_path`)."""
+    bound = _numpy_problem(checked, data, tunables, prepared)
     if bound is None:
         return None
     ns, pb = bound
@@ -161,9 +162,11 @@ def _fit_free(pb: Any, ns: dict[str, Any], free: np.ndarray) -> np.ndarray | Non
 def fit_path(checked: CheckedObjective, data: tables.BoundData, tunables: dict[str, float], tunable: str,
              values: list[float], *, backend: Backend = "numpy", tol: float = 1e-6, param_tol: float | None = 1e-6,
              screen: bool = True, progress: Callable[[int, int, FitResult], None] | None = None,
-             solver: str | None = None) -> list[FitResult]:
+             solver: str | None = None, cache: dict[str, Any] | None = None) -> list[FitResult]:
     """Fit `values` of `tunable` in the given order (the other tunables at `tunables`), each fit
     warm-started from the previous answer; `progress(k, total, result)` after each fit (k from 1).
+    `cache`: a dict the caller keeps across several paths on the same `data` (a fold's paths over a
+    second tunable), so what no tunable changes is formed once for all of them; a new one by default.
 
     Every result is certified on the full problem. With `screen`, inputs the Gap Safe sphere test
     proves inactive are left out of a fit where the rule applies (see `screening_rule`); each result's
@@ -187,19 +190,31 @@ def fit_path(checked: CheckedObjective, data: tables.BoundData, tunables: dict[s
             if progress is not None:
                 progress(k + 1, total, result)
         return results
+    from objc.backends import numpy_module
     form = form_for(checked, data.input_names)
-    plan = screening_rule(checked, data, base, tunable) if screen else "no screening asked"
-    # the cache of one path: summaries of these rows that no tunable changes (the column centre, a
-    # squared loss's Gram matrix, the screening test's column norms); it dies with this call
-    prepared: dict[str, Any] = {"X": data.X}
+    # the cache of the path (or of the caller's paths on these rows): what no tunable changes (the
+    # checked table, the column centre, a squared loss's Gram matrix with its sums and extreme
+    # eigenvalues, the screening test's column norms); every entry is keyed by the rows it came from
+    prepared: dict[str, Any] = {} if cache is None else cache
+    if prepared.get("X") is not data.X:
+        prepared.clear()  # another table: nothing kept applies
+        prepared["X"] = data.X
+    plan = screening_rule(checked, data, base, tunable, prepared) if screen else "no screening asked"
     theta: np.ndarray | None = None
-    for k, v in enumerate(values):
-        setting = dict(base, **{tunable: float(v)})
-        result = _fit_point(checked, data, form, setting, theta, plan, prepared, tol=tol, param_tol=param_tol)
-        theta = theta_from_params(form, result.params)
-        results.append(result)
-        if progress is not None:
-            progress(k + 1, total, result)
+    # one thread cap for the whole path: entering it scans the loaded libraries, which cost more than a
+    # warm-started Gram fit; each fit is told the cap is held
+    with numpy_module._compiled(checked)["_ThreadLimits"]():
+        prepared["threads capped"] = True
+        try:
+            for k, v in enumerate(values):
+                setting = dict(base, **{tunable: float(v)})
+                result = _fit_point(checked, data, form, setting, theta, plan, prepared, tol=tol, param_tol=param_tol)
+                theta = theta_from_params(form, result.params)
+                results.append(result)
+                if progress is not None:
+                    progress(k + 1, total, result)
+        finally:
+            prepared.pop("threads capped", None)  # the cap ends with this block; a later fit caps itself
     return results
 
 
@@ -212,23 +227,24 @@ class ScreeningRule:
     curvature: tuple[float, ...]  # one per row term, in the goal's order
 
 
-def screening_rule(checked: CheckedObjective, data: tables.BoundData, tunables: dict[str, float], tunable: str
-                   ) -> ScreeningRule | str:
+def screening_rule(checked: CheckedObjective, data: tables.BoundData, tunables: dict[str, float], tunable: str,
+                   prepared: dict[str, Any] | None = None) -> ScreeningRule | str:
     """The Gap Safe rule's inputs for a path of `tunable`, or why it does not apply (a phrase).
 
     Checked here: the score is exactly w . x (+ b); the duality gap is available (every row term a
     catalog loss with a conjugate, a separable penalty); every row term is smooth with a Lipschitz
     derivative in the catalog (the dual's strong concavity rests on it); the screened weights carry an
-    L1 weight and no bound, norm ball or group norm ties them; the tunable weighs that L1 term."""
+    L1 weight and no bound, norm ball or group norm ties them; the tunable weighs that L1 term.
+    `prepared`: a path's cache (see `fit_path`)."""
     from objc.catalog import CATALOG
     from objc import typed_tree as tt
-    found = l1_weight(checked, data, tunables, tunable)
+    found = l1_weight(checked, data, tunables, tunable, prepared)
     if found is None:
         return f"no screening: {tunable} does not weigh an L1 term alone and linearly"
     weight, pb, ns = found
     if not pb.standard:
         return "no screening: the score is not w . x (+ b)"
-    ns["setup_problem"](pb, "fista", None)
+    ns["setup_problem"](pb, "fista", prepared)
     if ns["gram_possible"](pb):
         # measured on the bench (20000 x 100, 50 points): screening made the Gram path four times slower,
         # since its iterations never touch the table and the test costs two passes plus a copy per point
@@ -275,17 +291,14 @@ def _fit_point(checked: CheckedObjective, data: tables.BoundData, form, setting:
                param_tol: float | None) -> FitResult:
     """One point of a NumPy path: screen, fit the inputs left (warm-started), certify on the full problem."""
     from objc.backends import numpy_module
-    from objc.training import numpy_refusal
+    from objc.training import run_backend
     ns = numpy_module._compiled(checked)
     start = np.zeros(form.size) if theta is None else theta
 
     def solve(d: tables.BoundData, theta0, columns, certify_only=False) -> FitResult:
         prepared["columns"] = columns
-        try:
-            return numpy_module.fit(checked, d.X, d.y, d.weights, d.input_names, setting, tol=tol, theta0=theta0,
-                                    param_tol=param_tol, prepared=prepared, certify_only=certify_only)
-        except numpy_module.NotSupported as err:
-            raise numpy_refusal(checked, err) from None
+        return run_backend(checked, d, "numpy", setting, tol=tol, theta0=theta0, param_tol=param_tol,
+                           prepared=prepared, certify_only=certify_only)
 
     if isinstance(plan, str):
         result = solve(data, theta, None)

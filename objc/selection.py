@@ -363,13 +363,14 @@ def _fit_part(checked: CheckedObjective, part: Part, grid: Grid, base: dict[str,
     results: list[FitResult | None] = [None] * grid.size
     lib = _paths_module()
     if lib is not None and hasattr(lib, "fit_path"):
+        cache: dict = {}  # one per part: its Gram matrix or column centre serves every path of the part
         for path in paths:
             def relay(j: int, total: int, res: FitResult, path: tuple[int, ...] = path) -> None:
                 results[path[j - 1]] = res
                 on_fit(path[j - 1], res)
             fitted = lib.fit_path(checked, part.train, dict(base, **settings[path[0]]), name,
                                   [settings[k][name] for k in path], backend=options.backend, tol=options.tol,
-                                  param_tol=options.param_tol, progress=relay, solver=options.solver)
+                                  param_tol=options.param_tol, progress=relay, solver=options.solver, cache=cache)
             for k, res in zip(path, fitted):
                 results[k] = res
         return results, "paths.fit_path"  # type: ignore[return-value]
@@ -465,6 +466,28 @@ class Outcome:
         return mean, sd, sd / math.sqrt(v.shape[1])
 
 
+# scores of at most this many table cells are held at once while a part's fits are scored (our own
+# figure: 32 MB of float64, small beside the table a path is fitted on)
+_SCORE_CELLS = 4 << 20
+
+
+def _part_figures(checked: CheckedObjective, part: Part, fitted: list[FitResult], keys: tuple[str, ...],
+                  base: dict[str, float]) -> tuple[list[dict[str, float]], list[float]]:
+    """(each fit's metrics `keys` on the part's held rows, each fit's ranking metric on its training
+    rows). The scores of the fits come a block of fits at a time from one matrix product with each
+    table (`training.scores_of_fits`), not one pass per fit; only the losses the keys name are formed."""
+    form = training.form_for(checked, part.train.input_names)
+    held_out: list[dict[str, float]] = []
+    on_train: list[dict[str, float]] = []
+    for rows, wanted, sink in ((part.held, keys, held_out), (part.train, keys[:1], on_train)):
+        block = max(1, _SCORE_CELLS // max(1, rows.n_rows))
+        for start in range(0, len(fitted), block):
+            S = training.scores_of_fits(form, [r.params for r in fitted[start:start + block]], rows.X, rows.y)
+            for m in training.metrics_of_fits(rows.task, rows.y, S, rows.weights, checked, base, losses_for=wanted):
+                sink.append({key: training.metric_value(m, key) for key in wanted})
+    return held_out, [figures[keys[0]] for figures in on_train]
+
+
 def evaluate_grid(checked: CheckedObjective, validation: Validation, grid: Grid, base: dict[str, float] | None = None,
                   options: FitOptions = FitOptions(), progress: Progress | None = None) -> Outcome:
     """Fit every grid point on every part's training rows and score it on that part's held rows."""
@@ -485,16 +508,12 @@ def evaluate_grid(checked: CheckedObjective, validation: Validation, grid: Grid,
                                        "certificate": res.certificate.relative})
         fitted, warm = _fit_part(checked, part, grid, base, options, on_fit)
         per_part.append(fitted)
+    figures = [_part_figures(checked, part, fitted, keys, base) for part, fitted in zip(validation.parts, per_part)]
     points = []
     for k, setting in enumerate(settings):
-        values: dict[str, list[float]] = {key: [] for key in keys}
-        train_values, weights = [], []
-        for part, fitted in zip(validation.parts, per_part):
-            tm, hm = training.fit_metrics(checked, fitted[k].params, part.train, part.held, base)
-            for key in keys:
-                values[key].append(training.metric_value(hm, key))
-            train_values.append(training.metric_value(tm, keys[0]))
-            weights.append(_weight_vector(fitted[k].params))
+        values = {key: [held[k][key] for held, _train in figures] for key in keys}
+        train_values = [train[k] for _held, train in figures]
+        weights = [_weight_vector(fitted[k].params) for fitted in per_part]
         runs = [fitted[k] for fitted in per_part]
         points.append(PointScore(
             setting=setting, values={key: tuple(v) for key, v in values.items()}, train_values=tuple(train_values),

@@ -950,8 +950,15 @@ def take_rows(data: BoundData, index: np.ndarray | Sequence[int]) -> BoundData:
     if idx.dtype == bool:
         idx = np.flatnonzero(idx)
     idx = idx.astype(np.int64)
-    return replace(data, X=_frozen(np.ascontiguousarray(data.X[idx])), y=_frozen(data.y[idx]),
-                   weights=_frozen(data.weights[idx]), rows=_frozen(data.rows[idx]))
+    # fancy indexing already makes a fresh array that nothing else holds: freeze it without a copy
+    # (a second copy cost about half of a 5-fold split at 1e5 x 100)
+    return replace(data, X=_read_only(np.ascontiguousarray(data.X[idx])), y=_read_only(data.y[idx]),
+                   weights=_read_only(data.weights[idx]), rows=_read_only(data.rows[idx]))
+
+
+def _read_only(fresh: np.ndarray) -> np.ndarray:
+    fresh.setflags(write=False)
+    return fresh
 
 
 def split_holdout(data: BoundData, fraction: float, seed: int, *, span: Span = NO_SPAN,

@@ -112,10 +112,13 @@ def run_backend(checked: CheckedObjective, data: tables.BoundData, backend: Back
                 tunables: dict[str, float] | None = None, *, tol: float = 1e-6, solver: str | None = None,
                 allow_nonconvex: bool = False, progress: Callable | None = None,
                 theta0: np.ndarray | None = None, param_tol: float | None = 1e-6,
-                max_passes: int | None = None) -> FitResult:
+                max_passes: int | None = None, prepared: dict | None = None,
+                certify_only: bool = False) -> FitResult:
     """Train on bound data. The NumPy backend stops at a relative certificate of `tol` and, unless
     `param_tol` is None, once the parameters are within `param_tol` of the optimum (a certified bound
-    where the objective is strongly convex in all of them); the cvxpy backend reports its solver's status."""
+    where the objective is strongly convex in all of them); the cvxpy backend reports its solver's status.
+    `prepared` and `certify_only` go to the NumPy solver (a cache kept across the fits of a path; only
+    the certificate of theta0), see `numpy_module.fit`; the cvxpy backend takes neither."""
     start = time.perf_counter()
     if param_tol is not None and not (np.isfinite(param_tol) and param_tol > 0):
         raise ValueError(f"param_tol must be a positive number, or None to switch the parameter stop off; "
@@ -123,6 +126,8 @@ def run_backend(checked: CheckedObjective, data: tables.BoundData, backend: Back
     if backend not in ("numpy", "cvxpy"):
         raise ValueError(f"backend must be 'numpy' or 'cvxpy', not {backend!r}")
     if backend == "cvxpy":
+        if certify_only:
+            raise ValueError("certify_only is the NumPy backend's (the cvxpy backend always solves)")
         from objc.backends import cvxpy_problem
         result = cvxpy_problem.fit(checked, data.X, data.y, data.weights, data.input_names, tunables,
                                    solver=solver)
@@ -142,7 +147,8 @@ def run_backend(checked: CheckedObjective, data: tables.BoundData, backend: Back
         try:
             result = numpy_module.fit(checked, data.X, data.y, data.weights, data.input_names, tunables, tol=tol,
                                       allow_nonconvex=allow_nonconvex, progress=record, theta0=theta0,
-                                      param_tol=param_tol, max_passes=max_passes)
+                                      param_tol=param_tol, max_passes=max_passes, prepared=prepared,
+                                      certify_only=certify_only)
         except numpy_module.NotSupported as err:
             raise numpy_refusal(checked, err) from None
         step = max(1, len(history) // 200)  # a few hundred points draw the curve; keep the model file small
@@ -183,6 +189,20 @@ def scores(form: ScoreForm, params: dict, X: np.ndarray, y: np.ndarray | None = 
     return A @ theta + off
 
 
+def scores_of_fits(form: ScoreForm, params: list[dict], X: np.ndarray, y: np.ndarray | None = None) -> np.ndarray:
+    """The scores of several fits on the same rows, one column per fit: one matrix product with the
+    table (each fit's `scores` would read the table once)."""
+    thetas = np.column_stack([theta_from_params(form, p) for p in params]) if params else np.zeros((form.size, 0))
+    if form.standard:
+        start = form.slot(form.weights_name).start
+        W = thetas[start:start + len(form.input_names)]
+        b = (np.array([float(p[form.intercept_name]) for p in params]) if form.intercept_name
+             else np.zeros(len(params)))
+        return np.asarray(X @ W, dtype=np.float64) + b
+    A, off = design(form, X, np.zeros(X.shape[0]) if y is None else y)
+    return A @ thetas + off[:, None]
+
+
 def _trained_residual_losses(checked: CheckedObjective, tunables: dict[str, float] | None
                              ) -> dict[str, dict[str, float]]:
     """The residual losses the goal trains, with their settings at these tunable values (a setting a
@@ -203,44 +223,73 @@ def _loss_key(name: str, opts: dict[str, float]) -> str:
 
 
 def metrics(task: tables.Task, y: np.ndarray, s: np.ndarray, weights: np.ndarray,
-            checked: CheckedObjective, tunables: dict[str, float] | None = None) -> dict:
+            checked: CheckedObjective, tunables: dict[str, float] | None = None,
+            losses_for: tuple[str, ...] | None = None) -> dict:
     """Evaluation figures: for classification the 0-1 error, confusion counts and the mean of every
     margin loss in the catalog; for regression MAE, RMSE, coverage and every residual loss (the
-    trained ones at the settings `tunables` give them)."""
-    out: dict = {"rows": int(len(y))}
+    trained ones at the settings `tunables` give them). With `losses_for` (sweep keys, see
+    `metric_value`) only the figures those keys name are formed (a sweep scores many fits), and the
+    0-1 error and accuracy for classification."""
+    return metrics_of_fits(task, y, np.asarray(s, dtype=float)[:, None], weights, checked, tunables, losses_for)[0]
+
+
+def metrics_of_fits(task: tables.Task, y: np.ndarray, S: np.ndarray, weights: np.ndarray,
+                    checked: CheckedObjective, tunables: dict[str, float] | None = None,
+                    losses_for: tuple[str, ...] | None = None) -> list[dict]:
+    """`metrics` of every column of scores S (rows x fits), one dict per column, formed a whole block
+    of fits at a time (a sweep scores hundreds of fits on the same rows)."""
+    wanted = None if losses_for is None else {k.split(":", 1)[1] for k in losses_for if k.startswith("mean_losses:")}
+    k = S.shape[1]
+    cols: dict = {}
+
+    def need(key: str) -> bool:
+        return losses_for is None or key in losses_for
     c = np.asarray(weights, dtype=float)
     wsum = float(np.sum(c))
+    yc = np.asarray(y, dtype=float)[:, None]
 
     def wmean(v):
-        return float(np.dot(c, v) / wsum) if wsum > 0 else float("nan")
+        return c @ v / wsum if wsum > 0 else np.full(k, np.nan)
     if task == "margin":
-        m = y * s
+        m = yc * S
         err = CATALOG["zero_one"].value(m)
-        pred = np.where(s > 0, 1.0, -1.0)
-        out["zero_one_error"] = float(np.mean(err))
-        out["zero_one_error_weighted"] = wmean(err)
-        out["accuracy"] = 1.0 - out["zero_one_error"]
-        out["confusion"] = {
-            "true_pos": int(np.sum((y > 0) & (pred > 0))), "false_pos": int(np.sum((y < 0) & (pred > 0))),
-            "true_neg": int(np.sum((y < 0) & (pred < 0))), "false_neg": int(np.sum((y > 0) & (pred < 0)))}
+        pred = np.where(S > 0, 1.0, -1.0)
+        cols["zero_one_error"] = np.mean(err, axis=0)
+        if need("zero_one_error_weighted"):
+            cols["zero_one_error_weighted"] = wmean(err)
+        cols["accuracy"] = 1.0 - cols["zero_one_error"]
+        confusion = None if losses_for is not None else {
+            "true_pos": np.sum((yc > 0) & (pred > 0), axis=0), "false_pos": np.sum((yc < 0) & (pred > 0), axis=0),
+            "true_neg": np.sum((yc < 0) & (pred < 0), axis=0), "false_neg": np.sum((yc > 0) & (pred < 0), axis=0)}
         losses = {}
         for name, entry in CATALOG.items():
-            if entry.role == "margin":
+            if entry.role == "margin" and (wanted is None or name in wanted):
                 with np.errstate(over="ignore"):
                     losses[name] = wmean(entry.value(m))
-        out["mean_losses"] = losses
     else:
-        r = y - s
-        out["mae"] = float(np.mean(np.abs(r)))
-        out["rmse"] = float(np.sqrt(np.mean(r * r)))
-        out["coverage"] = float(np.mean(y <= s))  # share of rows at or below the prediction
+        r = yc - S
+        if need("mae"):
+            cols["mae"] = np.mean(np.abs(r), axis=0)
+        if need("rmse"):
+            cols["rmse"] = np.sqrt(np.mean(r * r, axis=0))
+        if need("coverage"):
+            cols["coverage"] = np.mean(yc <= S, axis=0)  # share of rows at or below the prediction
+        confusion = None
         used = _trained_residual_losses(checked, tunables)
         losses = {}
         for name, entry in CATALOG.items():
             if entry.role == "residual":
                 opts = used.get(name, {})
-                losses[_loss_key(name, opts)] = wmean(entry.value(r, **opts))
-        out["mean_losses"] = losses
+                if wanted is None or _loss_key(name, opts) in wanted:
+                    losses[_loss_key(name, opts)] = wmean(entry.value(r, **opts))
+    out = []
+    for j in range(k):
+        one: dict = {"rows": int(len(y))}
+        one.update({key: float(v[j]) for key, v in cols.items()})
+        if confusion is not None:
+            one["confusion"] = {key: int(v[j]) for key, v in confusion.items()}
+        one["mean_losses"] = {key: float(v[j]) for key, v in losses.items()}
+        out.append(one)
     return out
 
 

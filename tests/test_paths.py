@@ -230,3 +230,82 @@ def test_weight_path_plot_is_a_png(folder, tmp_path):
     with pytest.raises(ValueError):
         plots.weight_path(values, [r.params["w"][:3] for r in results], data.input_names, "lam", None,
                           tmp_path / "bad.png")
+
+
+# ---------------------------------------------------------------- the Gram path's cache
+
+def test_gram_path_equals_cold_fits_and_scikit_learns_lasso_path(folder):
+    from sklearn.linear_model import lasso_path
+    checked, data = _bound(folder, _diabetes_spec(LASSO))
+    values = _grid(paths.path_start(checked, data, {}, "lam"), 12)
+    path = paths.fit_path(checked, data, {}, "lam", values)
+    # scikit-learn's lasso_path minimizes (1 / 2n) ||y - X w||^2 + alpha ||w||_1 on data it expects
+    # centred (its documentation); objc's `mean squared(r)` is the mean of r^2 / 2 and its free
+    # intercept is what the centring removes, so lam = alpha. tol 1e-14 leaves it far below 1e-6.
+    Xc, yc = data.X - data.X.mean(axis=0), data.y - data.y.mean()
+    _alphas, coefs, _gaps = lasso_path(Xc, yc, alphas=values, tol=1e-14, max_iter=100_000)
+    cold = None
+    for k, (v, r) in enumerate(zip(values, path)):
+        cold = training.run_backend(checked, data, "numpy", {"lam": v})
+        assert r.status == cold.status == "optimal" and "Gram matrix" in r.method
+        # the certificate is still checked at every point: the relative duality gap within 1e-6
+        assert r.certificate.kind == "duality gap" and r.certificate.relative <= 1e-6
+        assert r.extra["history"], "the path's fits keep their convergence history (run_backend)"
+        # both certified within a relative gap of 1e-6 of the optimum: within 2e-6 of each other
+        assert abs(r.objective - cold.objective) <= 2e-6 * abs(cold.objective)
+        # objc's default parameter tolerance is 1e-6 (the L1 goal has no proved bound: an estimate), so
+        # 1e-5 leaves room for it
+        np.testing.assert_allclose(r.params["w"], cold.params["w"], atol=1e-5)
+        np.testing.assert_allclose(r.params["w"], coefs[:, k], atol=1e-5)
+        # the objective and term values come from the Gram sums (no pass over the table): the goal's
+        # definition evaluated row by row gives the same numbers
+        resid = data.y - data.X @ r.params["w"] - r.params["b"]
+        rows, l1 = 0.5 * float(np.mean(resid ** 2)), v * float(np.sum(np.abs(r.params["w"])))
+        assert r.objective == pytest.approx(rows + l1, rel=1e-10)
+        assert r.term_values == pytest.approx((rows, l1), rel=1e-10, abs=1e-12)
+    # the path's cache forms the Gram matrix once: all twelve points together read the table no more
+    # often than one cold fit does
+    assert sum(r.passes for r in path) <= cold.passes
+
+
+def test_a_path_cache_checks_new_rows_and_never_serves_another_targets_gram(folder):
+    from sklearn.linear_model import Lasso
+    from objc.backends import numpy_module
+    checked, data = _bound(folder, _diabetes_spec(LASSO))
+    prepared = {"X": data.X}
+    numpy_module.fit(checked, data.X, data.y, data.weights, data.input_names, {"lam": 1.0}, prepared=prepared)
+    shifted = 2.0 * data.y + 3.0  # another target on the same table, the same cache
+    again = numpy_module.fit(checked, data.X, shifted, data.weights, data.input_names, {"lam": 1.0},
+                             prepared=prepared)
+    # scikit-learn's Lasso minimizes (1 / 2n) ||y - X w - b||^2 + alpha ||w||_1 (its documentation):
+    # objc's goal at lam = alpha
+    peer = Lasso(alpha=1.0, tol=1e-14, max_iter=100_000).fit(data.X, shifted)
+    assert again.status == "optimal"
+    np.testing.assert_allclose(again.params["w"], peer.coef_, atol=1e-5)
+    assert again.params["b"] == pytest.approx(float(peer.intercept_), abs=1e-5)
+    bad = np.array(data.y, copy=True)
+    bad[3] = np.nan
+    with pytest.raises(ValueError, match="NaN"):  # a cached table does not skip the check of new rows
+        numpy_module.fit(checked, data.X, bad, data.weights, data.input_names, {"lam": 1.0}, prepared=prepared)
+
+
+def test_paths_sharing_a_cache_equal_cold_fits_and_form_the_gram_matrix_once(folder):
+    # two paths over lam on the same rows, at two ridge weights: the second finds the Gram matrix in the
+    # cache, but its least eigenvalue (the distance bound's modulus) moves with the ridge weight
+    checked, data = _bound(folder, _diabetes_spec("mean squared(y - s) + lam * l1(w) + mu * l2sq(w)",
+                                                  tune="tune lam = 1 within 0 .. 100000\ntune mu = 0.1 within 0 .. 10"))
+    values = _grid(paths.path_start(checked, data, {"mu": 0.1}, "lam"), 5)
+    cache: dict = {}
+    first = paths.fit_path(checked, data, {"mu": 0.1}, "lam", values, cache=cache)
+    second = paths.fit_path(checked, data, {"mu": 1.0}, "lam", values, cache=cache)
+    assert sum(r.passes for r in second) == 0  # nothing read from the table again
+    assert "threads capped" not in cache  # the path's thread cap ended with it
+    for mu, path in ((0.1, first), (1.0, second)):
+        for v, r in zip(values, path):
+            cold = training.run_backend(checked, data, "numpy", {"lam": v, "mu": mu})
+            assert r.status == cold.status == "optimal"
+            # the same certified modulus (the least eigenvalue of the exact Hessian) as a fit that formed
+            # everything itself, so the same proved distance bound
+            assert r.certificate.curvature == pytest.approx(cold.certificate.curvature, rel=1e-12)
+            assert r.certificate.distance is not None and r.certificate.distance <= 1e-6
+            np.testing.assert_allclose(r.params["w"], cold.params["w"], atol=2e-6)

@@ -908,8 +908,9 @@ def load_module(source: str, name: str = "objc_generated") -> dict[str, Any]:
 
 
 @functools.lru_cache(maxsize=1)
-def _module_cache() -> dict[str, dict]:
-    """The one cache of this module (emitted sources and compiled namespaces), held by lru_cache."""
+def _module_cache() -> dict[str, Any]:
+    """The one cache of this module (emitted sources, compiled namespaces, the runtime sources' digest),
+    held by lru_cache."""
     return {"source": {}, "namespace": {}}
 
 
@@ -924,19 +925,32 @@ def _compiled(checked: CheckedObjective) -> dict[str, Any]:
     the source is kept by those and the namespace by the source's sha256. A generated namespace
     holds no state between calls, so sharing it is safe."""
     cache = _module_cache()
-    files = [_HERE / f for f in _RUNTIME_FILES] + [Path(catalog.__file__)]
-    runtime = hashlib.sha256(b"".join(f.read_bytes() for f in files)).hexdigest()
+    runtime = _runtime_digest(cache)
     key = (checked.spec.source_name, checked.spec.text, checked.verdict, checked.expanded, checked.task, runtime)
-    source = cache["source"].get(key)
-    if source is None:
+    emitted = cache["source"].get(key)
+    if emitted is None:
         source = emit_module(checked)
-        _remember(cache["source"], key, source)
-    digest = hashlib.sha256(source.encode("utf-8")).hexdigest()
+        emitted = (source, hashlib.sha256(source.encode("utf-8")).hexdigest())
+        _remember(cache["source"], key, emitted)
+    source, digest = emitted
     namespace = cache["namespace"].get(digest)
     if namespace is None:
         namespace = load_module(source, "objc_fit")
         _remember(cache["namespace"], digest, namespace)
     return namespace
+
+
+def _runtime_digest(cache: dict) -> str:
+    """The sha256 of the sources copied into every module, read again only when a file's size or
+    modification time changes (reading and hashing them took about a millisecond per fit, paid at
+    every point of a path)."""
+    files = [_HERE / f for f in _RUNTIME_FILES] + [Path(catalog.__file__)]
+    stamp = tuple((str(f), st.st_mtime_ns, st.st_size) for f in files for st in (f.stat(),))
+    kept = cache.get("runtime")
+    if kept is None or kept[0] != stamp:
+        kept = (stamp, hashlib.sha256(b"".join(f.read_bytes() for f in files)).hexdigest())
+        cache["runtime"] = kept
+    return kept[1]
 
 
 def _remember(store: dict, key: Any, value: Any) -> None:
@@ -976,9 +990,10 @@ def fit(checked: CheckedObjective, X: Any, y: Any, weights: Any, input_names: tu
 
 
 def bound_problem(checked: CheckedObjective, X: Any, y: Any, weights: Any, input_names: tuple[str, ...] | list[str],
-                  tunables: dict[str, float] | None = None) -> tuple[dict[str, Any], Any]:
+                  tunables: dict[str, float] | None = None, prepared: dict | None = None) -> tuple[dict[str, Any], Any]:
     """(the generated module's namespace, its problem bound to these rows): the spec's terms with their
     row weights, penalties and bounds, for code that reads the objective's pieces without solving
-    (a path's start, a screening test). Raises NotSupported or ValueError like `fit`."""
+    (a path's start, a screening test). `prepared` as in `fit` (the rows are checked once per path).
+    Raises NotSupported or ValueError like `fit`."""
     ns = _compiled(checked)
-    return ns, ns["build_problem"](ns["SPEC"], X, y, weights, tuple(input_names), tunables)
+    return ns, ns["build_problem"](ns["SPEC"], X, y, weights, tuple(input_names), tunables, prepared)

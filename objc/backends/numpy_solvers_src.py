@@ -268,14 +268,51 @@ def _default_input_names(spec, p):
     return tuple(f"x{j}" for j in range(p))
 
 
-def build_problem(spec, X, y, weights, input_names, tunables=None):
-    """Bind the spec's terms to the data: row weights, index sets, bounds; checks every input."""
-    pb = _Problem()
-    pb.spec = spec
-    pb.X = as_data_matrix(X)
-    n, p = pb.X.shape
+def _checked_rows(spec, X, y, weights):
+    """(X, y, c) as float64 arrays, every check of the data done: the sizes agree, nothing is NaN or
+    infinite where it is read, row weights are nonnegative and not all zero."""
+    X = as_data_matrix(X)
+    n, p = X.shape
     if n == 0 or p == 0:
         raise SolverInputError(f"no data to fit: {n} rows and {p} inputs")
+    y = np.asarray(y, dtype=np.float64).ravel() if y is not None else np.full(n, np.nan)
+    if y.shape[0] != n:
+        raise SolverInputError(f"the target has {y.shape[0]} values for {n} rows")
+    if spec["needs_target"] and not np.all(np.isfinite(y)):
+        raise SolverInputError("the target holds NaN or infinity")
+    c = np.ones(n) if weights is None else np.asarray(weights, dtype=np.float64).ravel()
+    if c.shape[0] != n:
+        raise SolverInputError(f"{c.shape[0]} row weights for {n} rows")
+    if not (np.all(np.isfinite(c)) and np.all(c >= 0.0)):
+        raise SolverInputError("row weights must be finite and nonnegative")
+    if not np.sum(c) > 0.0:
+        raise SolverInputError("every row weight is zero")
+    return X, y, c
+
+
+def _rows_once(spec, X, y, weights, prepared):
+    """`_checked_rows`, done once per table of a path: with `prepared` (a caller's cache across the fits
+    of a path) the checked arrays of its table ("X") are kept and handed back while the same X, y and
+    weights objects come in (the cache holds them, so no other object can take their ids). Returns
+    (X, y, c, token), token naming the checked y and c for other cache keys (None when not kept)."""
+    if prepared is None or X is not prepared.get("X"):
+        return _checked_rows(spec, X, y, weights) + (None,)
+    kept = prepared.get("checked rows")
+    if kept is not None and kept[0] is X and kept[1] is y and kept[2] is weights and kept[3] is spec:
+        return kept[4:]
+    Xc, yc, cc = _checked_rows(spec, X, y, weights)
+    token = ("rows", id(yc), id(cc))
+    prepared["checked rows"] = (X, y, weights, spec, Xc, yc, cc, token)
+    return Xc, yc, cc, token
+
+
+def build_problem(spec, X, y, weights, input_names, tunables=None, prepared=None):
+    """Bind the spec's terms to the data: row weights, index sets, bounds; checks every input (once per
+    path's table with `prepared`, see `_rows_once`; the tunables are bound every time)."""
+    pb = _Problem()
+    pb.spec = spec
+    pb.X, y, c, pb.rows_token = _rows_once(spec, X, y, weights, prepared)
+    n, p = pb.X.shape
     pb.n, pb.p = n, p
     if input_names is None:
         input_names = _default_input_names(spec, p)
@@ -284,20 +321,7 @@ def build_problem(spec, X, y, weights, input_names, tunables=None):
         raise SolverInputError(f"{len(pb.input_names)} input names for {p} columns of data")
     if len(set(pb.input_names)) != p:
         raise SolverInputError("input names must be distinct")
-    y = np.asarray(y, dtype=np.float64).ravel() if y is not None else np.full(n, np.nan)
-    if y.shape[0] != n:
-        raise SolverInputError(f"the target has {y.shape[0]} values for {n} rows")
-    needs_y = spec["needs_target"]
-    if needs_y and not np.all(np.isfinite(y)):
-        raise SolverInputError("the target holds NaN or infinity")
     pb.y = y
-    c = np.ones(n) if weights is None else np.asarray(weights, dtype=np.float64).ravel()
-    if c.shape[0] != n:
-        raise SolverInputError(f"{c.shape[0]} row weights for {n} rows")
-    if not (np.all(np.isfinite(c)) and np.all(c >= 0.0)):
-        raise SolverInputError("row weights must be finite and nonnegative")
-    if not np.sum(c) > 0.0:
-        raise SolverInputError("every row weight is zero")
     pb.c = c
     pb.tun = resolve_tunables(spec, tunables)
     pb.cols = _Columns(pb.X, pb.input_names)
@@ -313,6 +337,7 @@ def build_problem(spec, X, y, weights, input_names, tunables=None):
             rho = coef * c / total_c if table["aggregate"] == "mean" else (
                 coef * c / n if table["aggregate"] == "perrow" else coef * c)
             pb.row_terms.append(_RowTerm(table, rho, y))
+            pb.row_terms[-1].rho_coefficient, pb.row_terms[-1].aggregate = coef, table["aggregate"]
             # settings given by tunables (huber's d = delta, ...) at this fit's values
             pb.row_terms[-1].options = dict(pb.row_terms[-1].options, **{
                 k: pb.tun[name] for k, name in table.get("tuned_options", {}).items()})
@@ -394,7 +419,17 @@ def _plan_prox(pb):
 # ---------------------------------------------------------------- score and its adjoint
 
 def score(pb, theta):
-    """s = A theta + offset (one pass, none when w = 0)."""
+    """s = A theta + offset (one pass, none when w = 0, none when theta is the point last scored: a method's
+    kept point is usually its last iterate, whose score the caller forms again for the final objective)."""
+    memo = getattr(pb, "score_memo", None)
+    if memo is not None and memo[1] is pb.center and np.array_equal(memo[0], theta):
+        return memo[2]
+    s = _score_product(pb, theta)
+    pb.score_memo = (np.array(theta, dtype=np.float64, copy=True), pb.center, s)
+    return s
+
+
+def _score_product(pb, theta):
     if pb.standard:
         w = theta[pb.w_index]
         if np.any(w):
@@ -783,7 +818,7 @@ def gap_safe_screen(spec, X, y, weights, input_names, tunables, theta, curvature
     weight with |a_j^T u| + sqrt(2 G) ||a_j||_R < alpha_j has |a_j^T u*| < alpha_j, so it is zero at
     the optimum (its optimality condition). Valid only for a separable L1 weight alpha_j > 0 with no
     bound, ball or group on the coordinate (the caller checks; here the gap must be available)."""
-    pb = build_problem(spec, X, y, weights, input_names, tunables)
+    pb = build_problem(spec, X, y, weights, input_names, tunables, prepared)
     setup_problem(pb, "fista", prepared)
     candidates = np.asarray(candidates, dtype=np.intp)
     none = np.zeros(candidates.shape[0], dtype=bool)
@@ -832,14 +867,25 @@ class _Evaluation:
 
 
 def evaluate_smooth(pb, theta, mu=0.0, s=None):
-    """f (row terms, smoothed when mu > 0, plus smooth penalties) and its gradient at theta."""
-    if s is None:
+    """f (row terms, smoothed when mu > 0, plus smooth penalties) and its gradient at theta. The last
+    evaluation from the point's own score is kept on pb and handed back for the same theta and mu (a warm
+    start is evaluated by the caller's overflow check, then by the method's first step)."""
+    memo = getattr(pb, "evaluation_memo", None)
+    if s is None and memo is not None and memo[1] == mu and memo[2] is pb.center and np.array_equal(memo[0], theta):
+        return memo[3]
+    own_score = s is None
+    if own_score:
         s = score(pb, theta)
     rows, _u, derivs = rows_part(pb, s, mu)
     Atu = adjoint(pb, dual_adjoint_inputs(pb, derivs))
     pen, pgrad = smooth_penalties(pb, theta)
     grad = Atu + pgrad
-    return _Evaluation(theta, s, rows + pen + pb.constant, grad, derivs, Atu)
+    if not own_score:
+        return _Evaluation(theta, s, rows + pen + pb.constant, grad, derivs, Atu)
+    kept = np.array(theta, dtype=np.float64, copy=True)  # the caller may reuse its array
+    ev = _Evaluation(kept, s, rows + pen + pb.constant, grad, derivs, Atu)
+    pb.evaluation_memo = (kept, mu, pb.center, ev)
+    return ev
 
 
 def certificate(pb, ev, P, residual):
@@ -1044,6 +1090,62 @@ def _modulus(pb, frame, d):
 # checked (the one-point floor is l'' itself) and L-BFGS hands over to Newton steps with it (`method_lbfgs`).
 # Dense tables only: a sparse table's rows would be densified.
 
+class _OneBlasThread:
+    """NumPy's BLAS at one thread inside the block (restored after): for many small products, whose
+    thread hand-offs dominate. Measured on the 2-core benchmark machine, 12 rank-1300 updates of a 100 x 100
+    matrix took 11-12 ms on one thread and 12-57 ms on two, up to 400 ms while another process held a core
+    (an idle core is needed at every hand-off); one thread was as fast as two when the machine was idle."""
+
+    def __enter__(self):
+        try:  # a thread cap is an optimisation only, never a reason to fail
+            self._cap = None if _threadpoolctl is None else _threadpoolctl.threadpool_limits(limits=1, user_api="blas")
+        except Exception:
+            self._cap = None
+        return self
+
+    def __exit__(self, *exc):
+        if self._cap is not None:
+            self._cap.restore_original_limits()
+        return False
+
+
+def _sample_hessian(pb, rows, d):
+    """(A_S^T D A_S in the solver's coordinates, ||x_i - m||^2 per sampled row) for the rows `rows` (None: all)
+    with curvature d (one value per sampled row): rows a_i = (x_i - m, 1), m the solver's centre. Reads the
+    sampled rows once."""
+    w, m, X = pb.w_index, pb.center, pb.X
+    k = pb.n if rows is None else len(rows)
+    Mww, h, sq = np.zeros((pb.p, pb.p)), np.zeros(pb.p), np.empty(k)
+    # S^T S with S = D^1/2 (X_S - 1 m^T), one block of about 1 MB at a time in one reused buffer: the
+    # product then runs as a symmetric rank-k update on cached rows (measured: about six times faster than
+    # (B * d)^T B over 8 MB blocks at 1e6 x 50 on a busy machine)
+    root = np.sqrt(d)
+    chunk = max(1, (1 << 20) // (8 * pb.p))
+    buf = np.empty((min(chunk, k), pb.p))
+    with _OneBlasThread():
+        for first in range(0, k, chunk):
+            last = min(first + chunk, k)
+            block = buf[:last - first]
+            if rows is None:
+                block[...] = X[first:last]
+            else:
+                np.take(X, rows[first:last], axis=0, out=block)
+            if m is not None:
+                block -= m
+            sq[first:last] = np.einsum("ij,ij->i", block, block)
+            r = root[first:last]
+            block *= r[:, None]
+            Mww += block.T @ block
+            h += block.T @ r
+    pb.row_reads += k
+    H = np.zeros((pb.size, pb.size))
+    H[np.ix_(w, w)] = Mww
+    if pb.b_index is not None:
+        H[w, pb.b_index] = H[pb.b_index, w] = h
+        H[pb.b_index, pb.b_index] = float(np.sum(d))
+    return H, sq
+
+
 def _sampled_curvature(pb, s):
     """The sample's (rows or None for all, d0, reach_i = ||a_i|| (an upper bound), least eigenvalue of
     M + diag(beta) less its rounding allowance), formed once per fit at the first check; None where the
@@ -1063,41 +1165,15 @@ def _sampled_curvature(pb, s):
     d0 = _row_curvature(pb, s if rows is None else s[rows], np.zeros(k), rows)
     if d0 is None or not np.any(d0 > 0.0):
         return None
-    w, m, X = pb.w_index, pb.center, pb.X
-    Mww, h, sq = np.zeros((pb.p, pb.p)), np.zeros(pb.p), np.empty(k)
-    # S^T S with S = D^1/2 (X_S - 1 m^T), one block of about 1 MB at a time in one reused buffer: the
-    # product then runs as a symmetric rank-k update on cached rows (measured: about six times faster than
-    # (B * d)^T B over 8 MB blocks at 1e6 x 50 on a busy machine)
-    root = np.sqrt(d0)
-    chunk = max(1, (1 << 20) // (8 * pb.p))
-    buf = np.empty((min(chunk, k), pb.p))
-    for first in range(0, k, chunk):
-        last = min(first + chunk, k)
-        block = buf[:last - first]
-        if rows is None:
-            block[...] = X[first:last]
-        else:
-            np.take(X, rows[first:last], axis=0, out=block)
-        if m is not None:
-            block -= m
-        sq[first:last] = np.einsum("ij,ij->i", block, block)
-        r = root[first:last]
-        block *= r[:, None]
-        Mww += block.T @ block
-        h += block.T @ r
-    pb.row_reads += k
+    H, sq = _sample_hessian(pb, rows, d0)
     intercept = 1.0 if pb.b_index is not None else 0.0
-    H = np.zeros((size, size))
-    H[np.ix_(w, w)] = Mww
-    if pb.b_index is not None:
-        H[w, pb.b_index] = H[pb.b_index, w] = h
-        H[pb.b_index, pb.b_index] = float(np.sum(d0))
     H += np.diag(pb.beta)
     norms2 = sq * (1.0 + 4.0 * unit) + intercept  # ||a_i||^2, rounded up
     gamma = (k + 8) * unit / (1.0 - (k + 8) * unit)  # k products, each entry of S off by at most 3u
     allowance = gamma * float(np.dot(d0, norms2)) * (1.0 + 1e-10) + \
         10.0 * size * unit * float(np.sqrt(np.sum(H * H)))
-    least = float(np.linalg.eigvalsh(H)[0]) - allowance
+    with _OneBlasThread():  # a small eigenproblem: the same hand-offs
+        least = float(np.linalg.eigvalsh(H)[0]) - allowance
     if not least > 0.0:
         return None
     pb.sampled = {"rows": rows, "d0": d0, "reach": np.sqrt(norms2) * (1.0 + 2.0 * unit), "least": least, "k": k,
@@ -1120,6 +1196,12 @@ def _sampled_modulus(pb, sampled, s, r):
 def _table_norm(pb):
     """||X||_F (rounded up), once per fit: one read of the table, no copy."""
     norm = getattr(pb, "table_norm", None)
+    prepared = getattr(pb, "prepared", None)
+    # a path's cache holds its table (prepared["X"]), so that table's id names it while the cache lives
+    shared = prepared is not None and prepared.get("X") is pb.X
+    if norm is None and shared:
+        norm = prepared.get(("table norm", id(pb.X)))
+        pb.table_norm = norm
     if norm is None:
         X = pb.X
         if _is_sparse(X):
@@ -1133,6 +1215,8 @@ def _table_norm(pb):
         unit = 2.0 ** -53 * (X.shape[0] * X.shape[1] + 2)
         norm = math.sqrt(total * (1.0 + unit / (1.0 - unit))) * (1.0 + 2.0 ** -52)
         pb.table_norm = norm
+        if shared:
+            prepared[("table norm", id(pb.X))] = norm
     return norm
 
 
@@ -1214,16 +1298,14 @@ def _gram_modulus(pb):
     """The least eigenvalue of the exact Hessian H + diag(beta) of a squared-loss problem held as a Gram
     matrix, less a rounding allowance (the eigensolver is backward stable: its eigenvalues are exact for
     a matrix within a few size x eps x ||H|| of H; forming H from X rounds by about sqrt(n) eps ||H||)."""
-    G = pb.gram
-    if "modulus" not in G:
-        H = G["H"] + np.diag(pb.beta)
+    def least():
+        H = pb.gram["H"] + np.diag(pb.beta)
         if H.shape[0] > 600:
-            G["modulus"] = 0.0
-        else:
-            least = float(np.linalg.eigvalsh(H)[0])
-            allowance = 10.0 * (H.shape[0] + math.sqrt(pb.n)) * 2.2e-16 * float(np.sqrt(np.sum(H * H)))
-            G["modulus"] = max(least - allowance, 0.0)
-    return G["modulus"]
+            return 0.0
+        value = float(np.linalg.eigvalsh(H)[0])
+        allowance = 10.0 * (H.shape[0] + math.sqrt(pb.n)) * 2.2e-16 * float(np.sqrt(np.sum(H * H)))
+        return max(value - allowance, 0.0)
+    return _gram_cached(pb, "modulus", least)
 
 
 def distance_certificate(pb, theta, P, gap, s=None, derivs=None, Atu=None, grad=None):
@@ -1627,22 +1709,42 @@ class _Run:
         return self.pb.passes >= self.max_passes
 
 
-def _lbfgs_driver(run, theta0, mu, inner_stop, use_scipy):
-    """Minimize the smooth model (smoothed with mu) by L-BFGS; inner_stop(ev, P) ends the run."""
+def _lbfgs_driver(run, theta0, mu, inner_stop, use_scipy, scale=None):
+    """Minimize the smooth model (smoothed with mu) by L-BFGS; inner_stop(ev, P) ends the run.
+
+    With `scale` (sigma from `_first_step_scale`) L-BFGS runs in z = theta / sigma: the same objective and
+    minimizer, and after the first step the same iterates (see there); only the first step's length
+    changes."""
     pb = run.pb
     cache = {}
+    start = theta0 if scale is None else theta0 / scale
 
-    def fun(theta):
+    def point(z):
+        """theta for L-BFGS's z: theta0 itself at the start (its evaluation is at hand), the same array for
+        the same z (the stop then finds the evaluation of the step just taken)."""
+        if scale is None:
+            return z
+        if np.array_equal(z, start):
+            return theta0
+        last = cache.get("z")
+        if last is None or not np.array_equal(last[0], z):
+            last = (np.array(z, copy=True), z * scale)
+            cache["z"] = last
+        return last[1]
+
+    def fun(z):
+        theta = point(z)
         with np.errstate(over="ignore", invalid="ignore"):
             ev = evaluate_smooth(pb, theta, mu)
         cache["ev"] = ev
         if not (np.isfinite(ev.f) and np.all(np.isfinite(ev.grad))):
             # overflow (an exponential loss far out): a value too large to accept, so the line search
             # steps back; the gradient is never used at a rejected point
-            return 1e300, np.zeros_like(theta)
-        return ev.f, ev.grad
+            return 1e300, np.zeros_like(z)
+        return ev.f, (ev.grad if scale is None else ev.grad * scale)
 
-    def stop(theta, f):
+    def stop(z, f):
+        theta = point(z)
         ev = cache.get("ev")
         if ev is None or not np.array_equal(ev.theta, theta):
             ev = evaluate_smooth(pb, theta, mu)
@@ -1651,8 +1753,54 @@ def _lbfgs_driver(run, theta0, mu, inner_stop, use_scipy):
 
     max_iter = max(1, run.max_passes)
     if use_scipy and _scipy_optimize is not None:
-        return lbfgs_scipy(fun, theta0, stop, max_iter)
-    return lbfgs_own(fun, theta0, stop, max_iter)
+        z, iterations, status = lbfgs_scipy(fun, start, stop, max_iter)
+    else:
+        z, iterations, status = lbfgs_own(fun, start, stop, max_iter)
+    return point(z), iterations, status
+
+
+def _first_step_scale(pb, ev):
+    """sigma = min(||g|| / c, 1), c = g^T H g / g^T g the curvature along the gradient g at ev, so that a step of unit
+    length in z = theta / sigma along -g (L-BFGS's first step, SciPy's and ours alike) is the minimizer of
+    the quadratic model along it. Without it that step has length 1 in theta, far too long from a warm
+    start, and its line search costs two or three evaluations. L-BFGS is invariant under a scalar scaling
+    of the variables after its first step (its initial matrix is rescaled by s^T y / y^T y at every step,
+    Nocedal & Wright 2006, Numerical Optimization, eq. 7.20), so nothing else changes. g^T A^T D A g is
+    estimated from every (n / k)-th row (k = 50 size: a fraction of a pass), D the rows' l'' (the catalog's
+    curvature floor over the one-point interval). None where that fact, a dense table or a standard score
+    is missing (the first step is then L-BFGS's own)."""
+    if _is_sparse(pb.X) or not pb.standard or pb.other_smooth:
+        return None
+    if any(t.curv_floor is None for t in pb.row_terms) or not np.all(np.isfinite(ev.s)):
+        return None
+    g = ev.grad
+    gg = float(np.dot(g, g))
+    if not (gg > 0.0 and np.isfinite(gg)):
+        return None
+    n = pb.n
+    k = 50 * pb.size
+    rows = None if 2 * k >= n else (np.arange(k, dtype=np.intp) * n) // k
+    k = n if rows is None else k
+    d = _row_curvature(pb, ev.s if rows is None else ev.s[rows], np.zeros(k), rows)
+    if d is None:
+        return None
+    gw = g[pb.w_index]
+    Xs = pb.X if rows is None else pb.X[rows]
+    along = np.asarray(Xs @ gw, dtype=np.float64).ravel()  # a_i . g, rows a_i = (x_i - m, 1)
+    if pb.center is not None:
+        along -= float(np.dot(pb.center, gw))
+    if pb.b_index is not None:
+        along += g[pb.b_index]
+    if rows is None:
+        pb.passes += 1
+    else:
+        pb.row_reads += k
+    c = ((n / k) * float(np.dot(d, along * along)) + float(np.dot(pb.beta, g * g))) / gg
+    if not (c > 0.0 and np.isfinite(c)):
+        return None
+    # never longer than L-BFGS's own first step: the curvature at one point can be far below what the step
+    # meets (a Huber loss is flat beyond its threshold, where every row of a cold start may lie)
+    return min(math.sqrt(gg) / c, 1.0)
 
 
 def _gap_out_of_reach(pb, ev, P, tol):
@@ -1694,7 +1842,10 @@ def method_lbfgs(run, theta0, use_scipy):
         done["newton"] = True
         return newton_polish(run, lambda e: inner_stop(e, force=True), steps=3, H=sampled["H"], ev=ev)
 
-    theta, _, status = _lbfgs_driver(run, theta0, 0.0, inner_stop, use_scipy)
+    with np.errstate(over="ignore", invalid="ignore"):
+        start = evaluate_smooth(pb, theta0)  # L-BFGS's first evaluation (kept on pb): no extra pass
+    scale = _first_step_scale(pb, start) if np.isfinite(start.f) and np.all(np.isfinite(start.grad)) else None
+    theta, _, status = _lbfgs_driver(run, theta0, 0.0, inner_stop, use_scipy, scale)
     if run.theta is None or done["skipped"]:
         inner_stop(evaluate_smooth(pb, theta), force=True)
     if _polish_wanted(run) and newton_polish(run, lambda ev: inner_stop(ev, force=True)):
@@ -1722,22 +1873,13 @@ def _newton_hessian(pb, s):
     if d is None:
         return None
     w, m, X = pb.w_index, pb.center, pb.X
-    if _is_sparse(X):
-        Hww = np.asarray((X.T @ X.multiply(d[:, None])).todense(), dtype=np.float64)
-        h = np.asarray(X.T @ d, dtype=np.float64).ravel()
-        if m is not None:  # (X - 1 m^T)^T D (X - 1 m^T), expanded
-            Hww = Hww - np.outer(m, h) - np.outer(h, m) + float(np.sum(d)) * np.outer(m, m)
-            h = h - m * float(np.sum(d))
-    else:
-        Hww, h = np.zeros((pb.p, pb.p)), np.zeros(pb.p)
-        chunk = max(1, (8 << 20) // (8 * pb.p))  # one block of at most 8 MB copied at a time
-        for first in range(0, pb.n, chunk):
-            block = X[first:first + chunk]
-            if m is not None:
-                block = block - m
-            dd = d[first:first + chunk]
-            Hww += (block * dd[:, None]).T @ block
-            h += block.T @ dd
+    if not _is_sparse(X):
+        return _sample_hessian(pb, None, d)[0] + np.diag(pb.beta)  # every row: the exact Hessian
+    Hww = np.asarray((X.T @ X.multiply(d[:, None])).todense(), dtype=np.float64)
+    h = np.asarray(X.T @ d, dtype=np.float64).ravel()
+    if m is not None:  # (X - 1 m^T)^T D (X - 1 m^T), expanded
+        Hww = Hww - np.outer(m, h) - np.outer(h, m) + float(np.sum(d)) * np.outer(m, m)
+        h = h - m * float(np.sum(d))
     pb.passes += 1
     H = np.zeros((pb.size, pb.size))
     H[np.ix_(w, w)] = Hww
@@ -1848,42 +1990,82 @@ def gram_possible(pb):
 def build_gram(pb):
     """H = A^T diag(rho) A, q = A^T rho y and the sums the gap needs, A the (centred) design [X, 1].
 
-    With `pb.prepared` (a caller's cache across the fits of a path) the weight blocks are formed once
-    per row weights and target and reused; when it names a larger table ("X") and the columns of it
-    that pb.X holds ("columns", an input screened out of this fit), the blocks of the whole table are
-    formed once and these columns picked out (centring is per column, so the pick is exact)."""
-    rho = np.sum([t.rho for t in pb.row_terms], axis=0)
+    With `pb.prepared` (a caller's cache across the fits of a path) the matrix and its sums are formed
+    once per row weights and target and reused (H, q and h are shared: nothing writes to them); when it
+    names a larger table ("X") and the columns of it that pb.X holds ("columns", an input screened out
+    of this fit), the blocks of the whole table are formed once and these columns picked out (centring
+    is per column, so the pick is exact)."""
+    rho = pb.row_terms[0].rho if len(pb.row_terms) == 1 else np.sum([t.rho for t in pb.row_terms], axis=0)
     y = pb.y
-    P = pb.size
-    H, q, h = np.zeros((P, P)), np.zeros(P), np.zeros(P)
-    w = pb.w_index
     prep = getattr(pb, "prepared", None)
-    blocks = None
-    if prep is not None:
-        source = prep.get("X", pb.X)
-        columns = prep.get("columns")
-        key = ("gram", id(source), _fingerprint(rho), _fingerprint(y), pb.center is not None)
+    if prep is None:
+        pb.gram = dict(_gram_assembled(pb, _gram_weight_blocks(pb, rho, y), rho, y), key=None)
+        return
+    source = prep.get("X", pb.X)
+    columns = prep.get("columns")
+    token = _rows_token(pb)
+    key = ("gram", id(source), _rho_key(pb, rho), _fingerprint(y) if token is None else token, pb.center is not None)
+    picked = key if columns is None or source is pb.X else key + (_fingerprint(np.asarray(columns)),)
+    assembled = prep.get(("gram assembled",) + picked)
+    if assembled is None:
         blocks = prep.get(key)
         if blocks is None:
             whole = pb if source is pb.X else _columns_problem(pb, source)
             blocks = _gram_weight_blocks(whole, rho, y)
             prep[key] = blocks
             pb.passes += whole.passes if whole is not pb else 0
-        if columns is not None and source is not pb.X:
+        if picked is not key:
             cols = np.asarray(columns, dtype=np.intp)
             blocks = (blocks[0][np.ix_(cols, cols)], blocks[1][cols], blocks[2][cols])
-    else:
-        blocks = _gram_weight_blocks(pb, rho, y)
+        assembled = _gram_assembled(pb, blocks, rho, y)
+        prep[("gram assembled",) + picked] = assembled
+    pb.gram = dict(assembled, key=picked)
+
+
+def _gram_assembled(pb, blocks, rho, y):
+    """The Gram matrix of theta's layout from its weight blocks, with the sums of rho the gap reads."""
+    P, w = pb.size, pb.w_index
+    H, q, h = np.zeros((P, P)), np.zeros(P), np.zeros(P)
     Hww, qw, hw = blocks
     H[np.ix_(w, w)] = Hww
     q[w], h[w] = qw, hw
+    rho_sum, rho_y = float(np.sum(rho)), float(np.dot(rho, y))
     if pb.b_index is not None:
         b = pb.b_index
         H[w, b] = H[b, w] = h[w]
-        H[b, b] = h[b] = float(np.sum(rho))
-        q[b] = float(np.dot(rho, y))
-    pb.gram = {"H": H, "q": q, "h": h, "yy": float(np.dot(rho, y * y)), "rho_sum": float(np.sum(rho)),
-               "rho_y": float(np.dot(rho, y))}
+        H[b, b] = h[b] = rho_sum
+        q[b] = rho_y
+    return {"H": H, "q": q, "h": h, "yy": float(np.dot(rho, y * y)), "rho_sum": rho_sum, "rho_y": rho_y}
+
+
+def _rho_key(pb, rho):
+    """What names the summed row weights rho in a cache key: with the rows checked once (a token), rho is
+    fixed by the row terms' coefficients and aggregates (rho = coefficient x c / sum c, / n, or x c), so
+    no digest of its n values is needed; else the digest."""
+    if _rows_token(pb) is None:
+        return _fingerprint(rho)
+    return tuple((float(t.rho_coefficient), t.aggregate) for t in pb.row_terms)
+
+
+def _rows_token(pb):
+    """The token of rows checked once per path (`_rows_once`), or None (a problem bound without it)."""
+    return getattr(pb, "rows_token", None)
+
+
+def _gram_cached(pb, name, compute):
+    """A figure of the Gram matrix H + diag(beta) (its least or largest eigenvalue) that no tunable moves
+    once H and beta are the same: kept in the path's cache under the Gram key and beta's digest."""
+    G, prep = pb.gram, getattr(pb, "prepared", None)
+    if name in G:
+        return G[name]
+    key = None if prep is None or G.get("key") is None else (name, G["key"], _fingerprint(pb.beta))
+    value = None if key is None else prep.get(key)
+    if value is None:
+        value = compute()
+        if key is not None:
+            prep[key] = value
+    G[name] = value
+    return value
 
 
 def _columns_problem(pb, X):
@@ -1985,7 +2167,8 @@ def method_fista_gram(run, theta0):
     build_gram(pb)
     x = prox(pb, np.asarray(theta0, dtype=np.float64), 1.0)
     y, t = x, 1.0
-    L = _largest_eigenvalue(pb.gram["H"]) + float(np.max(pb.beta, initial=0.0)) + 1e-300
+    L = _gram_cached(pb, "largest", lambda: _largest_eigenvalue(pb.gram["H"])) + float(np.max(pb.beta, initial=0.0)) \
+        + 1e-300
     mu = _gram_modulus(pb)
     if mu > 0:
         # restarted FISTA shrinks the error by a constant factor every O(sqrt(L / mu)) iterations (O'Donoghue
@@ -2611,7 +2794,7 @@ def setup_problem(pb, method, prepared=None):
         # with a cache: the centre of the whole table ("X"), of which pb.X holds "columns" (or all)
         source = pb.X if prepared is None else prepared.get("X", pb.X)
         columns = None if prepared is None or source is pb.X else prepared.get("columns")
-        key = ("center", id(source), _fingerprint(pb.c))
+        key = ("center", id(source), _fingerprint(pb.c) if _rows_token(pb) is None else _rows_token(pb))
         center = None if prepared is None else prepared.get(key)
         if center is None:
             center = np.asarray(source.T @ pb.c, dtype=np.float64).ravel() / float(np.sum(pb.c))
@@ -2626,6 +2809,42 @@ def _fingerprint(v):
     """A digest of an array's bytes: what a `prepared` cache compares (row weights, targets)."""
     import hashlib
     return hashlib.sha1(np.ascontiguousarray(v).view(np.uint8)).hexdigest()
+
+
+class _HeldLimits:
+    """No thread cap of its own: the caller holds a `_ThreadLimits` across several fits."""
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        return False
+
+
+def _gram_objective(pb, theta, tol):
+    """(objective, term values) at the internal theta from the Gram sums (no pass), or None where they do
+    not give it exactly enough: no Gram matrix, more than one row term (the Gram matrix holds their sum),
+    a point outside the constraints, or cancellation. The quadratic 0.5 t.Ht - t.q + 0.5 yy is a sum of
+    terms of size M = 0.5 |t.Ht| + |t.q| + 0.5 yy, each formed from sums over n rows: rounded by about
+    10 sqrt(n) u M (the probabilistic bound of `_gradient_rounding`); used only when that is within a
+    hundredth of tol |P|, so the relative certificate the gap gives keeps its meaning."""
+    G = getattr(pb, "gram", None)
+    if G is None or len(pb.row_terms) != 1 or not feasible(pb, theta):
+        return None
+    Ht = G["H"] @ theta
+    tHt, tq = float(np.dot(theta, Ht)), float(np.dot(theta, G["q"]))
+    rows = 0.5 * tHt - tq + 0.5 * G["yy"]
+    values = {pb.row_terms[0].index: rows}
+    for pen in pb.penalties:
+        values[pen.index] = pen.value_and_gradient(theta, pb.tun)[0]
+    for table in pb.spec["terms"]:
+        if table["kind"] == "constant":
+            values[table["index"]] = float(table["coefficient"](pb.tun)) * float(table["constant"](pb.tun))
+    P = float(sum(values.values()))
+    rounding = 10.0 * math.sqrt(pb.n) * 2.0 ** -53 * (0.5 * abs(tHt) + abs(tq) + 0.5 * abs(G["yy"]))
+    if not (np.isfinite(P) and rounding <= 0.01 * tol * abs(P)):
+        return None
+    return P, tuple(values[k] for k in sorted(values))
 
 
 def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e-6, max_passes=None,
@@ -2650,7 +2869,7 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
     if not spec["accepted"] and not allow_nonconvex:
         raise SolverInputError(f"the objective is {spec['verdict']}: a minimum found is not certified global; "
                                "pass allow_nonconvex=True to run a local subgradient method anyway")
-    pb = build_problem(spec, X, y, weights, input_names, tunables)
+    pb = build_problem(spec, X, y, weights, input_names, tunables, prepared)
     method = spec["method"]
     if method != "subgradient" and pb.prox_problems:
         raise SolverInputError("the NumPy backend has no exact prox for this combination: "
@@ -2660,7 +2879,7 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
     if not spec["accepted"]:
         method = "subgradient"
     setup_problem(pb, method, prepared)
-    pb.mu0 = _mu0(pb)
+    pb.mu0 = _mu0(pb) if method.startswith("smoothing") else None  # only smoothing reads it (a pass over y)
     pb.finish = finish_kind(pb) if method.startswith("smoothing") else None
     pb.finished_exactly = False
     if max_passes is None:
@@ -2674,7 +2893,8 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
             theta = np.zeros(pb.size)  # the warm start overflows (an exponential loss): start from 0
     scipy_used = use_scipy and _scipy_optimize is not None
     lbfgs_name = "L-BFGS (SciPy L-BFGS-B)" if scipy_used else "L-BFGS (own two-loop recursion)"
-    with _ThreadLimits():
+    # a caller that holds the cap across a path's fits says so (entering it costs a scan of the loaded libraries)
+    with (_HeldLimits() if prepared is not None and prepared.get("threads capped") else _ThreadLimits()):
         if certify_only:
             status, name = "not certified", "certificate of the given point (no iterations)"
         elif method == "lbfgs":
@@ -2707,8 +2927,9 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
         run.record(theta, P0, *certificate(pb, ev, P0, float(np.sqrt(np.dot(ev.grad, ev.grad)))))
     theta = run.theta
     theta_internal = theta
-    s_final = score(pb, theta)  # one pass for the objective and every term's value
-    P = objective_value(pb, theta, s_final)
+    from_gram = _gram_objective(pb, theta, tol)
+    s_final = None if from_gram is not None else score(pb, theta)  # one pass for the objective and the terms
+    P = objective_value(pb, theta, s_final) if from_gram is None else from_gram[0]
     theta = _to_external(pb, theta)
     rel = relative(run.cert_abs, P)
     method_status = status
@@ -2736,7 +2957,8 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
     for pname, (start, size, vector) in pb.slots.items():
         params[pname] = theta[start:start + size].copy() if vector else float(theta[start])
     return {
-        "theta": theta, "params": params, "objective": P, "term_values": term_values(pb, theta_internal, s_final),
+        "theta": theta, "params": params, "objective": P,
+        "term_values": term_values(pb, theta_internal, s_final) if from_gram is None else from_gram[1],
         "status": status, "method": name,
         "certificate": dict({"kind": run.cert_kind, "absolute": float(run.cert_abs), "relative": float(rel),
                              "tolerance": float(tol), "note": note}, **distance),
