@@ -159,7 +159,7 @@ def has_l1(checked: CheckedObjective) -> bool:
 
 
 def _paths_module():
-    """Engineer B's regularization-path module when it is there; None lets the plain loop run."""
+    """The regularization-path module (objc/paths.py) when it is there; None lets the plain loop run."""
     try:
         from objc import paths
     except ImportError:
@@ -177,7 +177,7 @@ def resolve_axis(checked: CheckedObjective, request: AxisText, *, data: tables.B
                  base: dict[str, float] | None = None, default_steps: int = DEFAULT_STEPS,
                  default_linear: bool = False) -> Axis:
     """The values one tunable takes. Without a span: the declared range, except for a tunable that
-    weighs an L1 term, whose grid starts where every weight of that term is zero (engineer B's
+    weighs an L1 term, whose grid starts where every weight of that term is zero (
     `paths.path_start`, clamped into the range) and ends PATH_RATIO below it (only where the declared
     range lies above zero). An unknown tunable is
     a ValueError; a value outside the declared range is E402 at the `tune` line."""
