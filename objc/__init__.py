@@ -15,9 +15,6 @@ The public surface:
     est = spec_estimator("spec.objc", lam=0.1)          # a scikit-learn estimator; tunables are parameters
 """
 
-from objc.diagnostics import Diagnostic, SpecError
-from objc.frontend import check_file, check_text
-
 __version__ = "0.1.0"
 __all__ = ["check_text", "check_file", "fit_spec", "load_trained", "SpecError", "Diagnostic", "spec_estimator",
            "spec_estimator_class", "SpecEstimator", "SpecClassifier", "SpecRegressor", "EstimatorInputError",
@@ -28,7 +25,14 @@ _ESTIMATOR_NAMES = ("spec_estimator", "spec_estimator_class", "SpecEstimator", "
 
 
 def __getattr__(name: str):
-    # training pulls in pandas and the backends; keep `import objc` (and `objc check`) light
+    # every name is loaded on first use, so `python -m objc` can catch a Ctrl-C that lands while the
+    # parser and the backends are still being imported; training pulls in pandas and the backends
+    if name in ("SpecError", "Diagnostic"):
+        from objc import diagnostics
+        return getattr(diagnostics, name)
+    if name in ("check_text", "check_file"):
+        from objc import frontend
+        return getattr(frontend, name)
     if name in ("fit_spec", "load_trained", "TrainedModel"):
         from objc import training
         return getattr(training, name)

@@ -232,6 +232,9 @@ class SpecEstimator(BaseEstimator):
         tb = checked.spec.table
         name = checked.source.name
         named = tb.explicit_inputs()
+        if tb.maps:  # a map reads columns by name (a onehot column may hold text)
+            raise _error("E464", "the spec maps named columns (" + ", ".join(sorted({c for m in tb.maps
+                         for c in m.columns})) + "): X must be a DataFrame holding the table's columns", name)
         if named is not None:
             plain = [c for c in named if c not in {f.name for f in tb.features}]
             if p != len(plain):

@@ -20,6 +20,22 @@ BUILTIN_INPUTS = "x"
 BUILTIN_TARGET = "y"
 
 
+_MAX_MAP_INPUTS = 100_000  # a map making more inputs than this is a mistake, not a model
+_MAX_MAP_DEGREE = 20
+# what each map clause may set (allowed, required), and how it is written
+_MAP_SETTINGS = {
+    "onehot": ({"unseen"}, ()), "powers": ({"degree"}, ("degree",)), "monomials": ({"degree"}, ("degree",)),
+    "pairs": (set(), ()), "spline": ({"degree", "knots"}, ("degree", "knots")),
+    "fourier": ({"count", "bandwidth", "seed"}, ("count", "bandwidth", "seed")),
+}
+_MAP_EXAMPLES = {
+    "onehot": "onehot city unseen zeros", "powers": "powers temp, rain degree 3",
+    "monomials": "monomials temp, rain degree 2", "pairs": "pairs temp, rain, wind",
+    "spline": "spline temp degree 3 knots 25%, 50%, 75%",
+    "fourier": "fourier kern = temp, rain count 200 bandwidth 1.5 seed 7",
+}
+
+
 def _max_dep(*nodes) -> str:
     return max((n.depends for n in nodes), key=_ORDER.__getitem__)
 
@@ -97,7 +113,7 @@ class _Resolver:
                     self.score_stmt = s
             elif isinstance(s, (st.TargetClause, st.InputsClause, st.FeatureClause, st.RowWeightClause,
                                 st.ClassWeightClause, st.StandardizeClause, st.HoldoutClause, st.ValidateClause,
-                                st.MissingClause, st.GroupClause)):
+                                st.MissingClause, st.GroupClause, st.MapClause)):
                 if "name" not in table_parts:
                     self.error("E207", "this clause describes a table, but no `table` statement comes before it",
                                s.span, hint='start the spec with: table NAME from "file.csv"')
@@ -179,6 +195,115 @@ class _Resolver:
             if claim(s.name, s.span, "group"):
                 self.groups[s.name] = s.columns
                 parts["groups"] = tuple(parts.get("groups", ())) + ((s.name, s.columns),)
+        elif isinstance(s, st.MapClause):
+            m = self._feature_map(s)
+            if m is not None and (m.name is None or claim(m.name, s.span, "feature map")):
+                parts["maps"] = tuple(parts.get("maps", ())) + (m,)
+                if m.name is not None:  # a fourier map's inputs form a group under its name
+                    made = tt.map_fixed_names(m) or ()
+                    self.groups[m.name] = made
+                    parts["groups"] = tuple(parts.get("groups", ())) + ((m.name, made),)
+
+    def _feature_map(self, s: st.MapClause) -> tt.FeatureMap | None:
+        """A map clause with its settings checked (E251: which settings; E252: their values)."""
+        example = _MAP_EXAMPLES[s.kind]
+        allowed, required = _MAP_SETTINGS[s.kind]
+        given: dict[str, st.MapSetting] = {}
+        ok = True
+        for setting in s.settings:
+            if setting.key not in allowed:
+                close = self.suggest(setting.key, allowed)
+                self.error("E251", f"`{s.kind}` has no setting '{setting.key}'"
+                           + (f"; its settings are {', '.join(sorted(allowed))}" if allowed else "; it takes none"),
+                           setting.span, hint=close or f"e.g. {example}")
+                ok = False
+            elif setting.key in given:
+                self.error("E251", f"`{s.kind}` sets '{setting.key}' twice", setting.span, hint="keep one of them")
+                ok = False
+            else:
+                given[setting.key] = setting
+        missing = [k for k in required if k not in given]
+        if missing:
+            self.error("E251", f"`{s.kind}` needs its {' and '.join(missing)}", s.span, hint=f"e.g. {example}")
+            ok = False
+        if len(set(s.columns)) != len(s.columns):
+            self.error("E252", f"`{s.kind}` lists a column twice", s.span, hint=f"e.g. {example}")
+            ok = False
+        if s.kind == "pairs" and len(s.columns) < 2:
+            self.error("E252", "`pairs` multiplies columns two by two, so it needs two columns or more", s.span,
+                       hint=f"e.g. {example}")
+            ok = False
+
+        def number(key: str, whole: bool, low: float, what: str) -> float | None:
+            setting = given.get(key)
+            if setting is None:
+                return None
+            v = setting.values[0] if len(setting.values) == 1 else None
+            if not isinstance(v, float) or not math.isfinite(v) or v < low or (whole and not v.is_integer()):
+                self.error("E252", f"the {key} of `{s.kind}` must be {what}, not "
+                           f"{', '.join(f'{x:g}' if isinstance(x, float) else x for x in setting.values)}", setting.span,
+                           hint=f"e.g. {example}")
+                return None
+            return v
+
+        fields: dict = {}
+        if "degree" in allowed:
+            degree = number("degree", True, 1, "a whole number, 1 or more")
+            ok = ok and ("degree" not in given or degree is not None)
+            fields["degree"] = int(degree) if degree is not None else 1
+            if degree is not None and s.kind == "monomials" and \
+                    len(tt.map_exponents("monomials", len(s.columns), int(degree))) > _MAX_MAP_INPUTS:
+                self.error("E252", f"`monomials` of {len(s.columns)} columns up to degree {int(degree)} makes more "
+                           f"than {_MAX_MAP_INPUTS} inputs", given["degree"].span, hint="use fewer columns or a lower "
+                           "degree, or `pairs`")
+                ok = False
+            elif degree is not None and degree > _MAX_MAP_DEGREE:
+                self.error("E252", f"degree {int(degree)} is more than {_MAX_MAP_DEGREE}: its powers overflow "
+                           "on ordinary data", given["degree"].span, hint=f"e.g. {example}")
+                ok = False
+        if s.kind == "fourier":
+            count = number("count", True, 1, f"a whole number from 1 to {_MAX_MAP_INPUTS}")
+            if count is not None and count > _MAX_MAP_INPUTS:
+                self.error("E252", f"the count of `fourier` must be a whole number from 1 to {_MAX_MAP_INPUTS}, "
+                           f"not {count:g}", given["count"].span, hint=f"e.g. {example}")
+                count = None
+            bandwidth = number("bandwidth", False, 0, "a positive number (the kernel's length scale)")
+            if bandwidth == 0:
+                self.error("E252", "the bandwidth of `fourier` must be a positive number (the kernel's length "
+                           "scale), not 0", given["bandwidth"].span, hint=f"e.g. {example}")
+                bandwidth = None
+            seed = number("seed", True, 0, "a whole number, 0 or more")
+            if seed is not None and seed >= 2 ** 63:
+                self.error("E252", "the seed of `fourier` must be below 2^63", given["seed"].span)
+                seed = None
+            ok = ok and None not in (count, bandwidth, seed)
+            if ok:
+                fields.update(count=int(count), bandwidth=float(bandwidth), seed=int(seed), name=s.name)
+        if s.kind == "spline" and "knots" in given:
+            knots = given["knots"]
+            qs = knots.values
+            if not all(isinstance(q, float) and 0.0 < q < 1.0 for q in qs):
+                self.error("E252", "the knots of `spline` are shares of the training rows strictly between 0 and 1 "
+                           "(0% and 100%)", knots.span, hint=f"e.g. {example}")
+                ok = False
+            elif any(b <= a for a, b in zip(qs, qs[1:])):
+                self.error("E252", "the knots of `spline` must be listed in increasing order, each once", knots.span,
+                           hint=f"e.g. {example}")
+                ok = False
+            else:
+                fields["quantiles"] = tuple(float(q) for q in qs)
+        if s.kind == "onehot" and "unseen" in given:
+            policy = given["unseen"].values
+            if policy not in (("fail",), ("zeros",)):
+                self.error("E252", f"`unseen` says what a category not seen in training does: `unseen fail` (the "
+                           f"default: an error) or `unseen zeros` (every indicator 0), not "
+                           f"{', '.join(str(v) for v in policy)}", given["unseen"].span)
+                ok = False
+            else:
+                fields["unseen"] = policy[0]
+        if not ok:
+            return None
+        return tt.FeatureMap(s.kind, s.columns, s.span, **fields)
 
     def _feature_columns(self, expr: st.Expr) -> tuple[str, ...]:
         """Check a feature expression holds only columns, numbers and catalog atoms; list its columns."""

@@ -20,7 +20,8 @@ from objc.diagnostics import Diagnostic, SpecError
 from objc.source_text import SourceText, Span, normalize_line_ends, split_lines
 
 STATEMENT_KEYWORDS = ("table", "target", "inputs", "feature", "rowweight", "classweight", "standardize",
-                      "holdout", "validate", "missing", "group", "tune", "learn", "score", "loss", "goal", "keep")
+                      "holdout", "validate", "missing", "group", "onehot", "powers", "monomials", "pairs", "spline",
+                      "fourier", "tune", "learn", "score", "loss", "goal", "keep")
 RESERVED_WORDS = STATEMENT_KEYWORDS + ("from", "like", "all", "except", "seed", "on", "within", "over",
                                        "mean", "sum", "perrow")
 
@@ -211,6 +212,42 @@ class _ToTree(Transformer):
 
     def group_clause(self, meta, c):
         return st.GroupClause(str(c[0]), tuple(x[0] for x in c[1:]), _span(meta))
+
+    def map_number(self, meta, c):
+        value, percent = c
+        return float(value) / 100.0 if percent is not None else float(value)
+
+    def map_word(self, meta, c):
+        return str(c[0])
+
+    def map_setting(self, meta, c):
+        return st.MapSetting(str(c[0]), tuple(c[1:]), _span(meta))
+
+    def map_seed(self, meta, c):
+        return st.MapSetting("seed", tuple(c), _span(meta))
+
+    def _map(self, kind: str, meta, c, name: str | None = None) -> st.MapClause:
+        columns = tuple(x[0] for x in c if isinstance(x, tuple))
+        settings = tuple(x for x in c if isinstance(x, st.MapSetting))
+        return st.MapClause(kind, columns, settings, _span(meta), name)
+
+    def onehot_clause(self, meta, c):
+        return self._map("onehot", meta, c)
+
+    def powers_clause(self, meta, c):
+        return self._map("powers", meta, c)
+
+    def monomials_clause(self, meta, c):
+        return self._map("monomials", meta, c)
+
+    def pairs_clause(self, meta, c):
+        return self._map("pairs", meta, c)
+
+    def spline_clause(self, meta, c):
+        return self._map("spline", meta, c)
+
+    def fourier_clause(self, meta, c):
+        return self._map("fourier", meta, c[1:], name=str(c[0]))
 
     def tune_range(self, meta, c):
         return (c[0], c[1], _span(meta))

@@ -175,6 +175,27 @@ class GroupClause:
 
 
 @dataclass(frozen=True)
+class MapSetting:
+    """One `word value, value...` setting of a map clause: `degree 3`, `knots 25%, 50%`, `unseen zeros`."""
+
+    key: str
+    values: tuple[float | str, ...]  # numbers (a percent already divided by 100) or words
+    span: Span
+
+
+@dataclass(frozen=True)
+class MapClause:
+    """A fixed map of columns into new inputs: `onehot`, `powers`, `monomials`, `pairs`, `spline`,
+    `fourier NAME = ...`; its settings are checked when the spec is resolved."""
+
+    kind: Literal["onehot", "powers", "monomials", "pairs", "spline", "fourier"]
+    columns: tuple[str, ...]
+    settings: tuple[MapSetting, ...]
+    span: Span
+    name: str | None = None  # `fourier NAME = ...`: the prefix of its inputs and the name of their group
+
+
+@dataclass(frozen=True)
 class TuneStmt:
     name: str
     default: float
@@ -227,7 +248,7 @@ class KeepStmt:
 
 
 Statement = Union[TableStmt, TargetClause, InputsClause, FeatureClause, RowWeightClause, ClassWeightClause,
-                  StandardizeClause, HoldoutClause, ValidateClause, MissingClause, GroupClause, TuneStmt,
+                  StandardizeClause, HoldoutClause, ValidateClause, MissingClause, GroupClause, MapClause, TuneStmt,
                   LearnStmt, ScoreStmt, LossStmt, GoalStmt, KeepStmt]
 
 

@@ -30,9 +30,9 @@ stage is reported together.
 | T102 | the file exists but cannot be read as its format says (bad CSV, pickled or non-2-D array, ...) |
 | T103 | the table has no rows or no columns |
 | T104 | two columns share a name |
-| T110 | a column named in the spec (or the model's input schema) is not in the table |
+| T110 | a column named in the spec (or the model's input schema) is not in the table (nor made by a feature map) |
 | T111 | an input pattern, or `all`, selects no column; or every input was excluded |
-| T112 | an input, feature or row-weight column is not numeric |
+| T112 | an input, feature, row-weight column, or a column under a numeric feature map, is not numeric |
 | T113 | the target or the row-weight column is also named as an input |
 | T114 | a derived feature's name is taken (a table column, an input or another feature) |
 | T120 | missing (NaN) or infinite values while `missing fail` is in force |
@@ -48,7 +48,11 @@ stage is reported together.
 | T150 | a constant input column under `standardize` |
 | T151 | saved standardization stats lack an input, or hold an unusable scale |
 | T160 | a derived feature uses something a row-by-row formula cannot (unknown function, a norm, a non-literal exponent or setting, `mean`/`sum`, a selection, a dot product) |
-| T161 | a derived feature is NaN or infinite on some rows (log of 0, division by 0, ...) |
+| T161 | a derived feature, or an input a feature map makes, is NaN or infinite on some rows (log of 0, division by 0, an overflowing power) |
+| T163 | a `onehot` column holds one category only on the training rows |
+| T164 | a `onehot` column holds a category not seen in training (under `unseen fail`, the default) |
+| T165 | the knots of a `spline` collapse on the training rows (two meet, or one sits at an end of the column) |
+| T166 | a feature map makes an input whose name is already a column or an input |
 | T170 | a holdout fraction outside (0, 1), or one that leaves a part empty |
 | T171 | the training part of a holdout split holds only one class |
 | T190 | (warning) `all` passed over non-numeric columns |
@@ -74,7 +78,8 @@ from objc.catalog import CATALOG
 from objc.cells import MISSING_CELLS
 from objc.diagnostics import Diagnostic, SpecError
 from objc.source_text import NO_SPAN, Span
-from objc.typed_tree import DerivedFeature, LabelMap, TableBinding
+from objc.typed_tree import (DerivedFeature, LabelMap, TableBinding, map_exponents, map_knot_name, map_knot_of,
+                              map_product_name)
 
 Task = Literal["margin", "residual"]
 
@@ -122,6 +127,8 @@ class BoundData:
     file_label: str = ""  # the file as the user wrote it, for messages
     standardization_fitted: bool = False  # stats computed from these rows (not applied from a model)
     warnings: tuple[Diagnostic, ...] = ()
+    unscaled: tuple[str, ...] = ()  # inputs `standardize` leaves as they are (onehot's 0/1 indicators)
+    maps: tuple[dict, ...] = ()  # each feature map's fitted state as plain data (categories, knots, draws)
 
     @property
     def n_rows(self) -> int:
@@ -541,6 +548,116 @@ def _eval_expr(e: st.Expr, values: Mapping[str, np.ndarray], n: int) -> np.ndarr
     raise AssertionError(f"unchecked feature expression {e!r}")  # _check_expr rejects everything else
 
 
+# ---------------------------------------------------------------- feature maps
+# Plain functions of NumPy arrays and plain-data maps (FeatureMap.plain()): the generated NumPy module
+# copies them by source (numpy_module.py), so objc and the module compute every map the same way.
+
+def map_category_text(cell) -> str:
+    """A cell as the name of its category: a number in one form (1, 1.0, "1.0" and " 1" are one
+    category, "1"), any other text as written (without surrounding blanks)."""
+    if isinstance(cell, (bool, np.bool_)):
+        return str(bool(cell))
+    text = cell.strip() if isinstance(cell, str) else None
+    try:
+        v = float(text if text is not None else cell)
+    except (TypeError, ValueError):
+        return text if text is not None else str(cell)
+    if not np.isfinite(v):
+        return text if text is not None else repr(v)
+    return str(int(v)) if v.is_integer() and abs(v) < 2.0 ** 53 else repr(v)
+
+
+def map_sorted_categories(texts) -> list:
+    """The distinct categories, sorted: by value when every one is a number, else as text."""
+    distinct = sorted(set(texts))
+    try:
+        return sorted(distinct, key=float)
+    except ValueError:
+        return distinct
+
+
+def map_fourier_draws(m: dict, n_columns: int):
+    """W (count x columns) ~ N(0, 1 / bandwidth^2) and b (count) ~ U[0, 2 pi] from the map's seed:
+    the random features of Rahimi & Recht (2007), the same draws for the same seed."""
+    rng = np.random.default_rng(m["seed"])
+    W = rng.normal(0.0, 1.0 / m["bandwidth"], size=(m["count"], n_columns))
+    b = rng.uniform(0.0, 2.0 * np.pi, size=m["count"])
+    return W, b
+
+
+def map_fit(m: dict, cols) -> dict:
+    """What a map takes from the training rows: a onehot map's categories (`cols[c]`: the category
+    texts of column c), a spline's knots at its quantiles, a fourier map's draws."""
+    if m["kind"] == "onehot":
+        return {"categories": {c: map_sorted_categories(cols[c]) for c in m["columns"]}}
+    if m["kind"] == "spline":
+        return {"knots": [float(k) for k in np.quantile(cols[m["columns"][0]], list(m["quantiles"]))]}
+    if m["kind"] == "fourier":
+        W, b = map_fourier_draws(m, len(m["columns"]))
+        return {"W": W, "b": b}
+    return {}
+
+
+def map_state_from_names(m: dict, names) -> dict:
+    """A map's fitted state as a saved input list holds it: `city=Lyon` names a category, `(temp-12.5)+^3` a knot."""
+    if m["kind"] == "onehot":
+        return {"categories": {c: [n[len(c) + 1:] for n in names if n.startswith(c + "=")] for c in m["columns"]}}
+    if m["kind"] == "spline":
+        found = [map_knot_of(n, m["columns"][0], m["degree"]) for n in names]
+        return {"knots": [k for k in found if k is not None]}
+    return map_fit(m, {})
+
+
+def map_outputs(m: dict, state: dict, cols) -> list:
+    """The inputs a map makes, as (name, values) pairs; `cols[c]` holds column c's floats (its
+    category texts for onehot). A onehot row of a category outside `state` is all zeros here; the
+    caller decides whether that is an error (`unseen fail`)."""
+    kind, columns = m["kind"], m["columns"]
+    out = []
+    if kind == "onehot":
+        for c in columns:
+            texts = np.asarray(cols[c], dtype=object)
+            for cat in state["categories"][c]:
+                out.append((c + "=" + cat, (texts == cat).astype(np.float64)))
+    elif kind in ("powers", "monomials", "pairs", "spline"):
+        degree = m["degree"]
+        for e in map_exponents("powers" if kind == "spline" else kind, len(columns), degree):
+            value = np.ones(len(cols[columns[0]]))
+            for c, p in zip(columns, e):
+                if p:
+                    value = value * cols[c] ** p
+            out.append((map_product_name(columns, e), value))
+        if kind == "spline":
+            x = cols[columns[0]]
+            for k in state["knots"]:
+                out.append((map_knot_name(columns[0], k, degree), np.maximum(x - k, 0.0) ** degree))
+    elif kind == "fourier":
+        X = np.column_stack([cols[c] for c in columns])
+        z = np.sqrt(2.0 / m["count"]) * np.cos(X @ np.asarray(state["W"]).T + np.asarray(state["b"]))
+        out += [(f"{m['name']}_{j + 1}", np.ascontiguousarray(z[:, j])) for j in range(m["count"])]
+    return out
+
+
+def map_unseen_rows(m: dict, state: dict, cols) -> list:
+    """(column, row positions, values) of the cells of a onehot map's columns outside its categories."""
+    found = []
+    if m["kind"] == "onehot":
+        for c in m["columns"]:
+            texts = np.asarray(cols[c], dtype=object)
+            bad = np.flatnonzero(~np.isin(texts, np.asarray(state["categories"][c], dtype=object)))
+            if len(bad):
+                found.append((c, bad, list(dict.fromkeys(texts[bad].tolist()))))
+    return found
+
+
+def _map_state_plain(m: dict, state: dict) -> dict:
+    """A map's fitted state as JSON-ready data."""
+    out = {"kind": m["kind"], "columns": list(m["columns"])}
+    for key, value in state.items():
+        out[key] = value.tolist() if isinstance(value, np.ndarray) else value
+    return out
+
+
 # ---------------------------------------------------------------- binding
 
 @dataclass(frozen=True)
@@ -550,6 +667,7 @@ class _Pick:
     name: str
     span: Span
     feature: DerivedFeature | None = None
+    mapped: bool = False  # named by a saved schema, made by a feature map
 
 
 def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name: str = "",
@@ -610,6 +728,14 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
                 diags.append(where.diag("T110", f"feature {_q(f.name)} reads column {_q(nm.id)}, which is not "
                                         f"in {_q(shown)}", nm.span, _did_you_mean(nm.id, columns + feature_names[:i])))
 
+    for m in binding.maps:
+        for c in m.columns:
+            if c not in table:
+                diags.append(where.diag("T110", f"column {_q(c)} of `{m.kind}` is not in {_q(shown)}", m.span,
+                                        _did_you_mean(c, columns)))
+    map_plain = [m.plain() for m in binding.maps]
+    may_map = bool(binding.maps)
+
     picks: list[_Pick] = []
     skipped: list[str] = []
     if input_names is not None:
@@ -619,6 +745,8 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
                 picks.append(_Pick(name, by_feature[name].span, by_feature[name]))
             elif name in table:
                 picks.append(_Pick(name, inputs_span))
+            elif may_map:
+                picks.append(_Pick(name, inputs_span, mapped=True))  # made by a map: checked once maps are computed
             else:
                 diags.append(where.diag("T110", f"input {_q(name)} of the model's schema is not in {_q(shown)}",
                                         inputs_span, _did_you_mean(name, columns + list(by_feature))))
@@ -647,8 +775,14 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
         floats[name] = values
 
     for p in picks:
-        if p.feature is None:
+        if p.feature is None and not p.mapped:
             numeric(p.name, "input column", p.span)
+    for m in binding.maps:
+        for c in m.columns:
+            if m.kind == "onehot":
+                used.setdefault(c, ("onehot column", m.span))
+            else:
+                numeric(c, f"column read by `{m.kind}`,", m.span)
     for f in binding.features:
         for nm in _expr_names(f.expr):
             if nm.id in table:
@@ -742,6 +876,12 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
         values[f.name] = v
     _raise_all(diags)
 
+    unscaled: list[str] = []
+    fitted_maps: list[dict] = []
+    if binding.maps:
+        picks = _map_inputs(binding, map_plain, picks, values, table, keep, rows, input_names, where, unscaled,
+                            fitted_maps)
+
     names = tuple(p.name for p in picks)
     X = np.empty((n, len(names)), dtype=np.float64)
     for j, name in enumerate(names):
@@ -753,7 +893,7 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
         means, scales = _saved_stats(standardization, names, where, inputs_span)
         X = (X - means) / scales
     elif binding.standardize:
-        standardization = _fit_stats(X, names, [p.span for p in picks], where)
+        standardization = _fit_stats(X, names, [p.span for p in picks], where, unscaled=frozenset(unscaled))
         X = (X - np.asarray(standardization.means)) / np.asarray(standardization.scales)
         fitted = True
 
@@ -762,7 +902,79 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
                      label_map=binding.label_map if (target is not None and task == "margin" and binding.label_map
                                                      and binding.label_map.pairs) else None,
                      standardization=standardization, source=path, rows=_frozen(rows), task=task,
-                     dropped=n_all - n, file_label=shown, standardization_fitted=fitted, warnings=tuple(warnings))
+                     dropped=n_all - n, file_label=shown, standardization_fitted=fitted, warnings=tuple(warnings),
+                     unscaled=tuple(unscaled), maps=tuple(fitted_maps))
+
+
+def _map_inputs(binding: TableBinding, map_plain: list[dict], picks: list[_Pick], values: dict[str, np.ndarray],
+                table: Mapping[str, np.ndarray], keep: np.ndarray, rows: np.ndarray,
+                input_names: tuple[str, ...] | None, where: _Where, unscaled: list[str],
+                fitted_maps: list[dict]) -> list[_Pick]:
+    """Compute every map on the kept rows into `values`; the picks with the maps' inputs (appended,
+    or, for a saved schema, those it names). A map's state comes from these rows when fitting, from
+    the saved input names otherwise (categories and knots are written in them; fourier's draws come
+    from its seed)."""
+    diags: list[Diagnostic] = []
+    taken = {p.name for p in picks if not p.mapped}
+    made: dict[str, Span] = {}
+    for m, mp in zip(binding.maps, map_plain):
+        cols: dict[str, object] = {}
+        for c in m.columns:
+            cols[c] = [map_category_text(v) for v in table[c][keep]] if m.kind == "onehot" else values[c]
+        if input_names is None:
+            state = map_fit(mp, cols)
+            for c in (m.columns if m.kind == "onehot" else ()):
+                if len(state["categories"][c]) < 2:
+                    diags.append(where.diag("T163", f"column {_q(c)} of `onehot` holds one category only "
+                                            f"({_q(state['categories'][c][0])}) in {_q(where.file)}: its indicator "
+                                            "would be 1 on every row", m.span, "leave the column out of `onehot`"))
+            if m.kind == "spline":
+                x, knots = cols[m.columns[0]], state["knots"]
+                if any(b <= a for a, b in zip(knots, knots[1:])) or knots[0] <= np.min(x) or knots[-1] >= np.max(x):
+                    shown = ", ".join(f"{q * 100:g}% at {_value(k)}" for q, k in zip(m.quantiles, knots))
+                    diags.append(where.diag("T165", f"the knots of `spline` {_q(m.columns[0])} collapse on the "
+                                            f"training rows of {_q(where.file)} ({shown}; the column runs from "
+                                            f"{_value(np.min(x))} to {_value(np.max(x))}): two knots meet, or one "
+                                            "sits at an end, so a basis column repeats another", m.span,
+                                            "choose quantiles where the column takes distinct values, or fewer "
+                                            "knots"))
+                    continue
+        else:
+            state = map_state_from_names(mp, input_names)
+            for c, bad, cells in map_unseen_rows(mp, state, cols) if m.unseen == "fail" else ():
+                listed = ", ".join(_q(v) for v in cells[:5]) + (", ..." if len(cells) > 5 else "")
+                diags.append(where.diag("T164", f"column {_q(c)} of {_q(where.file)} holds categories not seen in "
+                                        f"training: {listed} at {_rows_text(rows[bad])}", m.span,
+                                        "write `unseen zeros` after the `onehot` columns to give such rows all-zero "
+                                        "indicators, or refit on rows that hold them", rows=True))
+        fitted_maps.append(_map_state_plain(mp, state))
+        for name, v in map_outputs(mp, state, cols):
+            if name in made or (name in taken and name in m.columns):
+                continue  # one input per name: the same product made twice, or a column as its own first power
+            if name not in m.columns and (name in table or name in taken):
+                diags.append(where.diag("T166", f"`{m.kind}` makes an input named {_q(name)}, which is already "
+                                        f"{'a column of ' + _q(where.file) if name in table else 'an input'}", m.span,
+                                        "rename the column or the feature"))
+                continue
+            if not np.all(np.isfinite(v)):
+                bad = np.flatnonzero(~np.isfinite(v))
+                diags.append(where.diag("T161", f"input {_q(name)} made by `{m.kind}` overflows at "
+                                        f"{_rows_text(rows[bad])} of {_q(where.file)}", m.span,
+                                        "rescale the column first (a `feature`) or lower the degree", rows=True))
+                continue
+            values[name] = v
+            made[name] = m.span
+            if m.kind == "onehot":
+                unscaled.append(name)
+    _raise_all(diags)
+    if input_names is None:
+        return picks + [_Pick(name, span) for name, span in made.items()]
+    missing = [p.name for p in picks if p.mapped and p.name not in made]
+    if missing:
+        raise where.error("T110", "input(s) " + ", ".join(_q(n) for n in missing) + " of the model's schema are "
+                          f"neither columns of {_q(where.file)} nor made by the spec's maps",
+                          binding.inputs_span or binding.span)
+    return picks
 
 
 def _select(binding: TableBinding, table: Mapping[str, np.ndarray], target: str | None, where: _Where,
@@ -896,15 +1108,20 @@ def _matches(raw: np.ndarray, value: str | float) -> np.ndarray:
 
 
 def _fit_stats(X: np.ndarray, names: tuple[str, ...], spans: Sequence[Span], where: _Where, rows_label: str = "",
-               hint: str = "leave it out of the inputs") -> Standardization:
+               hint: str = "leave it out of the inputs", unscaled: frozenset[str] = frozenset()) -> Standardization:
     """Mean and population standard deviation of each column: the one rule for what `standardize`
-    fits and for when a column is too constant to scale (also on a fold's or a holdout's rows)."""
+    fits and for when a column is too constant to scale (also on a fold's or a holdout's rows).
+    Columns in `unscaled` (onehot indicators) keep mean 0 and scale 1: they stay 0/1, and a
+    category absent from a fold's rows is no constant column to refuse."""
     with np.errstate(over="ignore", invalid="ignore"):
         means = X.mean(axis=0)
         scales = X.std(axis=0)  # population standard deviation (ddof 0), as scikit-learn's StandardScaler
     on = f" on {rows_label}" if rows_label else ""
     diags = []
     for j, name in enumerate(names):
+        if name in unscaled:
+            means[j], scales[j] = 0.0, 1.0
+            continue
         top = np.max(np.abs(X[:, j])) if len(X) else 0.0
         if not (np.isfinite(scales[j]) and np.isfinite(means[j])):
             # values near the float limit: the spread overflows, and dividing by inf would zero the column
@@ -1000,7 +1217,8 @@ def split_rows(data: BoundData, train_idx: np.ndarray, held_idx: np.ndarray, *, 
         std = data.standardization
         mean, scale = np.asarray(std.means), np.asarray(std.scales)
         raw_train, raw_held = train.X * scale + mean, held.X * scale + mean
-        refit = _fit_stats(raw_train, data.input_names, [span] * data.n_inputs, where, rows_label, hint)
+        refit = _fit_stats(raw_train, data.input_names, [span] * data.n_inputs, where, rows_label, hint,
+                           frozenset(data.unscaled))
         m2, s2 = np.asarray(refit.means), np.asarray(refit.scales)
         train = replace(train, X=_frozen(np.ascontiguousarray((raw_train - m2) / s2)), standardization=refit)
         held = replace(held, X=_frozen(np.ascontiguousarray((raw_held - m2) / s2)), standardization=refit,

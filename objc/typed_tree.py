@@ -55,6 +55,78 @@ class DerivedFeature:
 
 
 @dataclass(frozen=True)
+class FeatureMap:
+    """A fixed map of columns into inputs (a table clause: `onehot`, `powers`, `monomials`, `pairs`,
+    `spline`, `fourier`). Its settings are checked; what it learns from the training rows (the
+    categories, the knots) is found when the table is bound, the draws of `fourier` from its seed."""
+
+    kind: Literal["onehot", "powers", "monomials", "pairs", "spline", "fourier"]
+    columns: tuple[str, ...]
+    span: Span
+    degree: int = 1  # powers, monomials, spline
+    quantiles: tuple[float, ...] = ()  # spline: where its knots go, as shares of the training rows
+    count: int = 0  # fourier: how many random features
+    bandwidth: float = 1.0  # fourier: the Gaussian kernel's length scale
+    seed: int = 0  # fourier: the seed of its draws
+    unseen: Literal["fail", "zeros"] = "fail"  # onehot: what a category not seen in training does
+    name: str | None = None  # fourier: the prefix of its inputs and the name of their group
+
+    def plain(self) -> dict:
+        """The map as plain data (the generated module's copy of it)."""
+        return {"kind": self.kind, "columns": list(self.columns), "degree": self.degree,
+                "quantiles": list(self.quantiles), "count": self.count, "bandwidth": self.bandwidth,
+                "seed": self.seed, "unseen": self.unseen, "name": self.name}
+
+
+def map_exponents(kind: str, n_columns: int, degree: int) -> list[tuple[int, ...]]:
+    """The exponent of each column in each product a polynomial map makes, in a stable order: by
+    total degree, then as itertools.combinations_with_replacement lists the columns."""
+    import itertools
+    if kind == "pairs":
+        combos = list(itertools.combinations(range(n_columns), 2))
+    elif kind == "powers":
+        combos = [(j,) * d for d in range(1, degree + 1) for j in range(n_columns)]
+    else:
+        combos = [c for d in range(1, degree + 1) for c in itertools.combinations_with_replacement(range(n_columns), d)]
+    return [tuple(c.count(j) for j in range(n_columns)) for c in combos]
+
+
+def map_product_name(columns, exponents) -> str:
+    """`temp`, `temp^2`, `temp*rain`, `temp^2*rain`: the name of a product of columns."""
+    return "*".join(c if e == 1 else f"{c}^{e}" for c, e in zip(columns, exponents) if e)
+
+
+def map_knot_name(column: str, knot: float, degree: int) -> str:
+    """`(temp-12.5)+^3`: the truncated power (temp - knot)_+^degree; the knot is written exactly
+    (repr of the float), so the name itself stores it."""
+    shift = f"-{knot!r}" if knot >= 0 else f"+{-knot!r}"
+    return f"({column}{shift})+" + (f"^{degree}" if degree != 1 else "")
+
+
+def map_knot_of(name: str, column: str, degree: int) -> float | None:
+    """The knot a `map_knot_name` holds, or None when `name` is not one of this column's."""
+    head, tail = f"({column}", ")+" + (f"^{degree}" if degree != 1 else "")
+    if not (name.startswith(head) and name.endswith(tail)) or len(name) <= len(head) + len(tail):
+        return None
+    shift = name[len(head):len(name) - len(tail)]
+    try:
+        value = float(shift[1:])
+    except ValueError:
+        return None
+    return value if shift[0] == "-" else -value if shift[0] == "+" else None
+
+
+def map_fixed_names(m: "FeatureMap") -> tuple[str, ...] | None:
+    """The inputs a map makes when they do not depend on the rows (every map but onehot and the
+    knot part of spline), else None."""
+    if m.kind in ("powers", "monomials", "pairs"):
+        return tuple(map_product_name(m.columns, e) for e in map_exponents(m.kind, len(m.columns), m.degree))
+    if m.kind == "fourier":
+        return tuple(f"{m.name}_{j}" for j in range(1, m.count + 1))
+    return None
+
+
+@dataclass(frozen=True)
 class TableBinding:
     """Everything a spec says about its table; `objc.tables` reads data by it."""
 
@@ -80,13 +152,19 @@ class TableBinding:
     validation_span: Span | None = None
     missing: Literal["fail", "drop"] = "fail"
     groups: tuple[tuple[str, tuple[str, ...]], ...] = ()
+    maps: tuple[FeatureMap, ...] = ()
 
     def explicit_inputs(self) -> tuple[str, ...] | None:
-        """Input names when every input is named outright (no pattern, no `all`), else None."""
+        """Input names when every input is named outright (no pattern, no `all`, no map whose
+        inputs depend on the rows: onehot, spline), else None."""
         if any(i.kind != "column" for i in self.inputs):
             return None
+        made = [map_fixed_names(m) for m in self.maps]
+        if any(names is None for names in made):
+            return None
         excluded = {e.text for e in self.excluded}
-        return tuple(i.text for i in self.inputs if i.text not in excluded) + tuple(f.name for f in self.features)
+        names = tuple(i.text for i in self.inputs if i.text not in excluded) + tuple(f.name for f in self.features)
+        return tuple(dict.fromkeys(names + tuple(n for ns in made for n in ns)))  # a name is one input
 
 
 # ---------------------------------------------------------------- typed expressions

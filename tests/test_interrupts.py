@@ -115,7 +115,7 @@ def _signal_run(tmp_path: Path, args: list[str], out: Path, sig: int) -> list[st
     assert code == 0, err
     assert assert_nothing_or_complete(out, False) == "complete"
     states = []
-    for fraction in (0.35, 0.7, 0.92, 0.99):
+    for fraction in (0.1, 0.35, 0.7, 0.92, 0.99):
         for p in model_paths(out):
             p.unlink(missing_ok=True)
         proc = _objc(args, tmp_path)

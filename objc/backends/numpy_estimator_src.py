@@ -57,7 +57,10 @@ class EstimatorBase:
         table = SPEC["table"]
         if hasattr(X, "columns") and not _is_sparse(X):
             if table is not None:
-                X, names = _frame_inputs(X, table)  # the spec's inputs by name, and its derived inputs
+                # the spec's inputs by name, its derived inputs, and its feature maps (fitted on the rows fit sees)
+                X, names, state = _frame_inputs(X, table, None if reset else getattr(self, "map_state_", None))
+                if reset:
+                    self.map_state_ = state
             else:
                 names = tuple(str(c) for c in X.columns)
         elif table is not None and table["features"]:
@@ -105,6 +108,12 @@ class EstimatorBase:
             self.input_mean_ = X.mean(axis=0)
             scale = X.std(axis=0)
             self.input_scale_ = np.where(scale > 0, scale, 1.0)  # a constant input stays as it is
+            unscaled = _map_unscaled(table, getattr(self, "map_state_", None))
+            if unscaled:  # onehot indicators stay 0/1, as objc leaves them
+                names = list(getattr(self, "feature_names_in_", ()))
+                for j, name in enumerate(names):
+                    if name in unscaled:
+                        self.input_mean_[j], self.input_scale_[j] = 0.0, 1.0
         return (X - self.input_mean_) / self.input_scale_
 
     def _check_fitted(self):
@@ -230,9 +239,50 @@ def _frame_column(frame, name):
         raise ValueError(f"column {name!r} of X is not numeric") from None
 
 
-def _frame_inputs(frame, table):
+def _map_unscaled(table, state):
+    """The names of the onehot indicators, which `standardize` leaves 0/1."""
+    out = set()
+    for m, st in zip(table.get("maps", ()), state or ()):
+        if m["kind"] == "onehot":
+            out.update(c + "=" + cat for c in m["columns"] for cat in st["categories"][c])
+    return out
+
+
+def _apply_maps(table, cells_of, numbers_of, data, chosen, state, fail):
+    """Append every feature map's inputs to `data` and `chosen` (in place); `state` is the maps'
+    fitted state (None: fit it on these rows). Returns the state. The map math is objc's own,
+    copied into this module (map_fit, map_outputs)."""
+    fitting = state is None
+    state = [] if fitting else state
+    made = set(chosen)
+    for k, m in enumerate(table.get("maps", ())):
+        cols = {c: ([map_category_text(v) for v in cells_of(c)] if m["kind"] == "onehot" else numbers_of(c))
+                for c in m["columns"]}
+        if fitting:
+            st = map_fit(m, cols)
+            if m["kind"] == "onehot":
+                for c in m["columns"]:
+                    if len(st["categories"][c]) < 2:
+                        fail(f"column {c!r} of `onehot` holds one category only")
+            state.append(st)
+        else:
+            st = state[k]
+            if m["unseen"] == "fail":
+                for c, bad, values in map_unseen_rows(m, st, cols):
+                    fail(f"column {c!r} holds categories not seen in training: "
+                         + ", ".join(repr(v) for v in values[:5]) + f" (data row {int(bad[0]) + 1} first)")
+        for name, value in map_outputs(m, st, cols):
+            if name not in made:
+                made.add(name)
+                data[name] = value
+                chosen.append(name)
+    return state
+
+
+def _frame_inputs(frame, table, state=None):
     """X as the spec's table clause reads it: the named, matched or `all` inputs in its order, then
-    each `feature` computed from the columns; returns (matrix, input names)."""
+    each `feature` computed from the columns, then each feature map's inputs (fitted when `state`
+    is None); returns (matrix, input names, the maps' state)."""
     by_name = {str(c): c for c in frame.columns}
 
     def fail(message):
@@ -245,9 +295,16 @@ def _frame_inputs(frame, table):
         with np.errstate(all="ignore"):
             data[fname] = np.broadcast_to(fn(_FrameColumns(frame, data)), (n,)).astype(np.float64)
         chosen.append(fname)
+
+    def cells_of(name):
+        if name not in by_name:
+            fail(f"a feature map of the spec reads column {name!r}, which X does not have")
+        return list(np.asarray(frame[by_name[name]], dtype=object))
+    numbers = _FrameColumns(frame, data)
+    state = _apply_maps(table, cells_of, lambda c: (cells_of(c), numbers[c])[1], data, chosen, state, fail)
     if not chosen:
         raise ValueError("X holds none of the spec's inputs")
-    return np.column_stack([data[c] for c in chosen]), tuple(chosen)
+    return np.column_stack([data[c] for c in chosen]), tuple(chosen), state
 
 
 def _label_matches(cells, value):
@@ -470,6 +527,34 @@ def load_table(path):
         c = _numeric(path, table["row_weight"], columns[table["row_weight"]])
     X = np.column_stack([data[name] for name in inputs])
     bad = ~np.isfinite(X).all(axis=1) | ~np.isfinite(y) | ~np.isfinite(c)
+    map_state = None
+    if table.get("maps"):
+        # the maps are fitted on the rows kept after missing values, as objc fits them
+        lazy = _LazyNumeric(path, columns, data)
+        for m in table["maps"]:
+            for name in m["columns"]:
+                if name not in columns:
+                    raise TableError(f"{path}: column {name!r} of `{m['kind']}` is not in the table")
+                if m["kind"] == "onehot":
+                    bad |= np.array([cell in _MISSING_CELLS for cell in columns[name]], dtype=bool)
+                else:
+                    bad |= ~np.isfinite(lazy[name])
+        if np.any(bad) and table["missing"] != "drop":
+            first = int(np.flatnonzero(bad)[0]) + 1
+            raise TableError(f"{path}: data row {first} has a missing or infinite value (the spec says "
+                             "`missing fail`)")
+        keep_rows = np.flatnonzero(~bad)
+        kept = {name: v[keep_rows] for name, v in data.items()}
+        for name in {c for m in table["maps"] for c in m["columns"] if m["kind"] != "onehot"}:
+            kept[name] = lazy[name][keep_rows]
+
+        def fail(message):
+            raise TableError(f"{path}: {message}")
+        chosen = list(inputs)
+        map_state = _apply_maps(table, lambda name: [columns[name][i] for i in keep_rows], lambda name: kept[name],
+                                kept, chosen, None, fail)
+        inputs = chosen
+        X, y, c, bad = np.column_stack([kept[name] for name in inputs]), y[keep_rows], c[keep_rows], bad[keep_rows]
     if np.any(bad):
         if table["missing"] != "drop":
             first = int(np.flatnonzero(bad)[0]) + 1
@@ -489,11 +574,17 @@ def load_table(path):
     stats = None
     if table["standardize"]:
         mean, scale = X.mean(axis=0), X.std(axis=0)
+        unscaled = _map_unscaled(table, map_state)
         for j, name in enumerate(inputs):
+            if name in unscaled:  # onehot indicators stay 0/1, as objc leaves them
+                mean[j], scale[j] = 0.0, 1.0
             if not scale[j] > 0:
                 raise TableError(f"{path}: input {name!r} is constant; `standardize` would divide by zero")
         X = (X - mean) / scale
         stats = {"names": list(inputs), "means": mean.tolist(), "scales": scale.tolist()}
+    if map_state is not None:
+        stats = dict(stats or {}, maps=[{k: (v.tolist() if hasattr(v, "tolist") else v) for k, v in st.items()}
+                                        for st in map_state])
     return X, y, c, tuple(inputs), stats
 
 
@@ -556,6 +647,8 @@ def main(argv=None):
                 raise TableError(f"--set {item!r}: {value!r} is not a number") from None
         param_tol = None if args.param_tol.strip().lower() == "off" else _positive(args.param_tol, "--param-tol")
         X, y, c, names, stats = load_table(args.table)
+        maps = stats.pop("maps", None) if stats else None  # the feature maps' state, reported on its own
+        stats = stats or None
         out = run_solver(SPEC, X, y, c, names, tunables, args.tol, args.max_passes, args.allow_nonconvex,
                          param_tol=param_tol)
     except (TableError, ValueError) as err:
@@ -567,7 +660,7 @@ def main(argv=None):
     payload = {
         "spec": SPEC["name"], "spec_sha256": SPEC["sha256"], "verdict": SPEC["verdict"], "inputs": list(names),
         "params": params, "objective": out["objective"], "status": out["status"], "method": out["method"],
-        "certificate": out["certificate"], "passes": out["passes"], "standardization": stats,
+        "certificate": out["certificate"], "passes": out["passes"], "standardization": stats, "maps": maps,
         "tunables": resolve_tunables(SPEC, tunables),
     }
     try:

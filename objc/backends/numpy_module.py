@@ -632,8 +632,19 @@ class _Emitter:
             "standardize": ast.Constant(bool(tb.standardize)),
             "holdout": _const((float(tb.holdout), int(tb.holdout_seed)) if tb.holdout is not None else None),
             "missing": ast.Constant(tb.missing),
+            "maps": _const(tuple(m.plain() for m in tb.maps)),
         }
+        self.map_functions()
         return ast.Dict([ast.Constant(k) for k in fields], list(fields.values()))
+
+    def map_functions(self) -> None:
+        """The feature maps' math, copied by source from objc (typed_tree's names, tables' values),
+        so the module computes every map as objc does."""
+        from objc import tables
+        for fn in (tt.map_exponents, tt.map_product_name, tt.map_knot_name, tt.map_knot_of,
+                   tables.map_category_text, tables.map_sorted_categories, tables.map_fourier_draws,
+                   tables.map_fit, tables.map_state_from_names, tables.map_outputs, tables.map_unseen_rows):
+            self.defs.append(ast.parse(textwrap.dedent(inspect.getsource(fn))).body[0])
 
     def feature_function(self, fname: str, f: tt.DerivedFeature) -> None:
         from objc import syntax_tree as st
