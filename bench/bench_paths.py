@@ -16,7 +16,9 @@ The cases (the issue's targets):
   with lam = 1 / (2 C n), n the training part's rows (all parts have the same size here).
 
 Both sides do the same work: per fold, the whole path on the training part (warm starts), the
-held-out score of every point; then one refit at the chosen value on all rows. objc runs at its
+held-out score of every point; then one refit at the chosen value on all rows (objc's Lasso side
+forms the table's X^T X once from the held parts and each fold's from it, paths.fold_caches, as
+`sweep --folds` does; the refit reuses the table's). objc runs at its
 default certificate (relative duality gap 1e-6, parameter tolerance 1e-6). scikit-learn's `tol` is
 chosen here, in this run: the largest of a few values whose answers, on the first fold's path, reach
 objc's default relative duality gap (1e-6) as measured by objc's own evaluator (the generated
@@ -89,9 +91,12 @@ def objc_cv(checked, data, folds, values: list[float], score) -> tuple[float, di
     table = np.zeros((len(folds), len(values)))
     passes, screened, worst_gap, first = 0, 0, 0.0, None
     form = training.form_for(checked, data.input_names)
-    for k, (tr, te) in enumerate(folds):
-        train, held = part(data, tr), part(data, te)
-        results = paths.fit_path(checked, train, {}, "lam", values)
+    parts = [(part(data, tr), part(data, te)) for tr, te in folds]
+    # one X^T X of the table for every fold where the fits go the Gram way (paths.fold_caches)
+    caches, whole = paths.fold_caches(checked, parts, {"lam": values[0]}, data)
+    passes += 0 if whole is None else 1  # the held parts' sums read the table once
+    for k, (train, held) in enumerate(parts):
+        results = paths.fit_path(checked, train, {}, "lam", values, cache=caches[k])
         table[k] = score(held, training.scores_of_fits(form, [r.params for r in results], held.X, held.y))
         for r in results:
             passes += r.passes
@@ -100,7 +105,7 @@ def objc_cv(checked, data, folds, values: list[float], score) -> tuple[float, di
         if k == 0:
             first = results
     best = int(np.argmin(table.mean(axis=0)))
-    final = training.run_backend(checked, data, "numpy", {"lam": values[best]})
+    final = training.run_backend(checked, data, "numpy", {"lam": values[best]}, prepared=whole)
     seconds = time.perf_counter() - start
     return seconds, {"best": best, "passes": passes, "screened": screened, "worst_gap": worst_gap,
                      "first_fold": first, "final": final}

@@ -159,6 +159,59 @@ def _fit_free(pb: Any, ns: dict[str, Any], free: np.ndarray) -> np.ndarray | Non
     return theta
 
 
+def _row_sums(data: tables.BoundData) -> dict[str, Any]:
+    """X^T X, X^T y and X^T 1 of the rows (one X^T X and one two-column product)."""
+    X = np.asarray(data.X, dtype=np.float64)
+    both = X.T @ np.column_stack([np.asarray(data.y, dtype=np.float64), np.ones(X.shape[0])])
+    return {"G": X.T @ X, "Xy": both[:, 0], "X1": both[:, 1], "n": X.shape[0]}
+
+
+def _sums_cache(data: tables.BoundData, sums: dict[str, Any]) -> dict[str, Any]:
+    """A `fit_path` cache for `data` holding the uncentred sums of its rows (read by the solver's Gram
+    path, which then forms no X^T X of its own: see `_uncentred_sums` in the solver runtime)."""
+    return {"X": data.X, "uncentred sums": {"X": data.X, "y": data.y, "G": sums["G"], "Xy": sums["Xy"],
+                                           "X1": sums["X1"]}}
+
+
+def fold_caches(checked: CheckedObjective, parts: list[tuple[tables.BoundData, tables.BoundData]],
+                tunables: dict[str, float], whole: tables.BoundData | None = None
+                ) -> tuple[list[dict[str, Any]], dict[str, Any] | None]:
+    """`fit_path` caches for the (training rows, held rows) parts of a K-fold cross-validation, and one
+    for `whole` (the refit on every row), or empty caches where they do not apply.
+
+    The parts' held rows must partition one table and each part's training rows be the other parts'
+    rows, the same values (no per-fold standardization): then the table's X^T X is the sum of the held
+    parts' and each fold's is that less its own held part's (one X^T X of the table in all, where each
+    fold would otherwise form its own: Friedman, Hastie & Tibshirani 2010, sec. 2.2, cover the Gram form
+    of a path's updates). Applies where every fit goes the solver's Gram way with equal row weights."""
+    empty: tuple[list[dict[str, Any]], dict[str, Any] | None] = ([{} for _ in parts], None)
+    if not parts:
+        return empty
+    first_train = parts[0][0]
+    if whole is not None and whole.n_rows != sum(held.n_rows for _, held in parts):
+        return empty
+    caches: list[dict[str, Any]] = [{"X": train.X} for train, _ in parts]
+    bound = _numpy_problem(checked, first_train, tunables, caches[0])  # its checked rows stay in the cache
+    if bound is None:
+        return empty
+    ns, pb = bound
+    if not ns["gram_possible"](pb) or np.ptp(pb.c) != 0.0 or any(np.ptp(held.weights) != 0.0 for _, held in parts):
+        return empty
+    held_sums = [_row_sums(held) for _, held in parts]
+    total = {key: sum(s[key] for s in held_sums) for key in ("G", "Xy", "X1", "n")}
+    if not (np.all(np.isfinite(total["G"])) and np.all(np.isfinite(total["Xy"]))):
+        return empty  # a held row the checks would refuse: each fold checks and forms its own
+    for k, ((train, held), own) in enumerate(zip(parts, held_sums)):
+        if train.n_rows + held.n_rows != total["n"]:
+            return empty
+        fold = {key: total[key] - own[key] for key in ("G", "Xy", "X1")}
+        cache = _sums_cache(train, fold)
+        if k == 0:
+            cache.update({key: v for key, v in caches[0].items() if key != "X"})
+        caches[k] = cache
+    return caches, None if whole is None else _sums_cache(whole, total)
+
+
 def fit_path(checked: CheckedObjective, data: tables.BoundData, tunables: dict[str, float], tunable: str,
              values: list[float], *, backend: Backend = "numpy", tol: float = 1e-6, param_tol: float | None = 1e-6,
              screen: bool = True, progress: Callable[[int, int, FitResult], None] | None = None,

@@ -353,17 +353,35 @@ class FitOptions:
     solver: str | None = None
 
 
+def _fold_caches(checked: CheckedObjective, validation: Validation, setting: dict[str, float],
+                 options: FitOptions) -> list[dict | None]:
+    """One path cache per part: for K folds of a table whose fits go the Gram way, each holds its
+    fold's sums formed from the table's (`paths.fold_caches`); else None (each part forms its own)."""
+    none: list[dict | None] = [None] * len(validation.parts)
+    lib = _paths_module()
+    if validation.kind != "folds" or options.backend != "numpy" or lib is None or not hasattr(lib, "fold_caches"):
+        return none
+    # a standardization fitted again on each fold's rows (tables.split_rows) makes the folds' columns
+    # differ from the table's: the table's sums do not apply
+    if any(p.train.standardization is not None and p.train.standardization_fitted for p in validation.parts):
+        return none
+    caches, _whole = lib.fold_caches(checked, [(p.train, p.held) for p in validation.parts], setting)
+    return [c if c else None for c in caches]
+
+
 def _fit_part(checked: CheckedObjective, part: Part, grid: Grid, base: dict[str, float], options: FitOptions,
-              on_fit: Callable[[int, FitResult], None]) -> tuple[list[FitResult], str]:
+              on_fit: Callable[[int, FitResult], None], cache: dict | None = None) -> tuple[list[FitResult], str]:
     """Every grid point fitted on the part's training rows, warm-started along the paths of
-    `fit_order`; (results by grid index, which warm-start machinery ran)."""
+    `fit_order`; (results by grid index, which warm-start machinery ran). `cache`: the part's path cache
+    (`_fold_caches`), a new one by default."""
     settings = grid.settings()
     along, paths = fit_order(checked, grid)
     name = grid.axes[along].name
     results: list[FitResult | None] = [None] * grid.size
     lib = _paths_module()
     if lib is not None and hasattr(lib, "fit_path"):
-        cache: dict = {}  # one per part: its Gram matrix or column centre serves every path of the part
+        if cache is None:
+            cache = {}  # one per part: its Gram matrix or column centre serves every path of the part
         for path in paths:
             def relay(j: int, total: int, res: FitResult, path: tuple[int, ...] = path) -> None:
                 results[path[j - 1]] = res
@@ -498,6 +516,7 @@ def evaluate_grid(checked: CheckedObjective, validation: Validation, grid: Grid,
     total, done = grid.size * len(validation.parts), 0
     per_part: list[list[FitResult]] = []
     warm = ""
+    caches = _fold_caches(checked, validation, dict(base, **settings[0]), options)
     for f, part in enumerate(validation.parts):
         def on_fit(k: int, res: FitResult, f: int = f) -> None:
             nonlocal done
@@ -506,7 +525,7 @@ def evaluate_grid(checked: CheckedObjective, validation: Validation, grid: Grid,
                 progress(done, total, {"part": f + 1, "parts": len(validation.parts), "point": k + 1,
                                        "points": grid.size, "setting": settings[k], "objective": res.objective,
                                        "certificate": res.certificate.relative})
-        fitted, warm = _fit_part(checked, part, grid, base, options, on_fit)
+        fitted, warm = _fit_part(checked, part, grid, base, options, on_fit, caches[f])
         per_part.append(fitted)
     figures = [_part_figures(checked, part, fitted, keys, base) for part, fitted in zip(validation.parts, per_part)]
     points = []

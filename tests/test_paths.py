@@ -309,3 +309,50 @@ def test_paths_sharing_a_cache_equal_cold_fits_and_form_the_gram_matrix_once(fol
             assert r.certificate.curvature == pytest.approx(cold.certificate.curvature, rel=1e-12)
             assert r.certificate.distance is not None and r.certificate.distance <= 1e-6
             np.testing.assert_allclose(r.params["w"], cold.params["w"], atol=2e-6)
+
+
+def test_fold_caches_give_each_fold_its_own_sums_and_the_same_path(folder):
+    from sklearn.linear_model import lasso_path
+    checked, data = _bound(folder, _diabetes_spec(LASSO))
+    order = np.random.default_rng(0).permutation(data.n_rows)
+    held_rows = np.array_split(order, 5)
+    parts = []
+    for k in range(5):
+        tr = np.sort(np.concatenate(held_rows[:k] + held_rows[k + 1:]))
+        parts.append((_rows(data, tr),
+                      _rows(data, np.sort(held_rows[k]))))
+    caches, whole = paths.fold_caches(checked, parts, {"lam": 1.0}, data)
+    assert whole is not None and all("uncentred sums" in c for c in caches)
+    values = _grid(paths.path_start(checked, parts[0][0], {}, "lam"), 6)
+    for (train, _held), cache in zip(parts, caches):
+        sums = cache["uncentred sums"]
+        # the table's sums less the held rows' are the fold's own, as NumPy forms them from its rows
+        np.testing.assert_allclose(sums["G"], train.X.T @ train.X, rtol=1e-12, atol=1e-9)
+        np.testing.assert_allclose(sums["Xy"], train.X.T @ train.y, rtol=1e-12, atol=1e-9)
+        np.testing.assert_allclose(sums["X1"], train.X.sum(axis=0), rtol=1e-12, atol=1e-9)
+        path = paths.fit_path(checked, train, {}, "lam", values, cache=cache)
+        assert sum(r.passes for r in path) == 0  # the fold's Gram matrix came from the sums
+        # scikit-learn's lasso_path on the centred fold (its documented objective (1 / 2n) ||y - X w||^2 +
+        # alpha ||w||_1, lam = alpha as in the test above); tol 1e-14 leaves it far below 1e-6
+        Xc, yc = train.X - train.X.mean(axis=0), train.y - train.y.mean()
+        _alphas, coefs, _gaps = lasso_path(Xc, yc, alphas=values, tol=1e-14, max_iter=100_000)
+        for k, r in enumerate(path):
+            assert r.status == "optimal" and r.certificate.relative <= 1e-6
+            np.testing.assert_allclose(r.params["w"], coefs[:, k], atol=1e-5)
+    refit = training.run_backend(checked, data, "numpy", {"lam": values[3]}, prepared=whole)
+    cold = training.run_backend(checked, data, "numpy", {"lam": values[3]})
+    assert refit.passes == 0 and refit.status == cold.status == "optimal"
+    np.testing.assert_allclose(refit.params["w"], cold.params["w"], atol=2e-6)
+
+
+def test_fold_caches_stay_empty_where_the_fits_do_not_go_the_gram_way(folder):
+    checked, data = _bound(folder, _cancer_spec("mean logistic(y * s) + lam * l2sq(w)"))
+    rows = np.arange(data.n_rows)
+    parts = [(_rows(data, rows[rows % 2 != k]), _rows(data, rows[rows % 2 == k])) for k in range(2)]
+    caches, whole = paths.fold_caches(checked, parts, {"lam": 1.0}, data)
+    assert whole is None and all(not c for c in caches)
+
+
+def _rows(data, idx):
+    from objc import tables
+    return tables.take_rows(data, idx)

@@ -184,9 +184,24 @@ class _Penalty:
         self.idx, self.coef = idx, coef
 
     def value_and_gradient(self, theta, tun):
+        if self.form == "l2sq" and np.ndim(self.coef) == 1:  # a data-scaled ridge: sum_j coef_j theta_j^2
+            th = theta[self.idx]
+            return float(np.dot(self.coef, th * th)), 2.0 * self.coef * th
         value, grad = self.fn(theta[self.idx], tun)
         return self.coef * float(value), self.coef * np.broadcast_to(np.asarray(grad, dtype=np.float64),
                                                                      self.idx.shape)
+
+
+def _dropout_ridge(pb, table, idx, coef, c):
+    """A dropout penalty as the ridge it equals, sum_j d_j theta_j^2 with d_j = coef * p / (2 (1 - p)) * m2_j,
+    m2 the second moments of the columns theta[idx] weighs (normalized like the goal's rows)."""
+    p = float(table["drop"](pb.tun))
+    if not 0.0 < p < 1.0:
+        raise SolverInputError(f"spec line {table['line']}: the drop probability must lie in (0, 1), got {p:g}")
+    start = pb.slots[table["param"]][0]
+    cols = idx - start
+    X = pb.X if cols.size == pb.p and np.array_equal(cols, np.arange(pb.p)) else pb.X[:, cols]
+    return coef * table["factor"](p) * table["moments"](X, c, table["rows"])
 
 
 class _Problem:
@@ -344,6 +359,9 @@ def build_problem(spec, X, y, weights, input_names, tunables=None, prepared=None
         elif table["kind"] == "params":
             idx = _theta_indices(pb, table["param"], table["entries"])
             pb.penalties.append(_Penalty(table, idx, coef))
+            if table.get("form") == "dropout":
+                pb.penalties[-1].coef = _dropout_ridge(pb, table, idx, coef, c)
+                pb.penalties[-1].form = "l2sq"
         else:
             pb.constant += coef * float(table["constant"](pb.tun))
 
@@ -653,9 +671,25 @@ def _separable_conjugate(z, alpha, beta, lo, hi):
     return out
 
 
+def _box_free(pb):
+    """No bound on any coordinate (every lo -inf, every hi +inf): the penalty's conjugate and the dual
+    rescaling then take the short forms below, the same figures with a few array operations where a
+    path's Gram iterations otherwise spend most of their time (measured on bench_paths.py's Lasso)."""
+    kept = pb.__dict__.get("box_free")
+    if kept is None or kept[0] is not pb.lo or kept[1] is not pb.hi:
+        kept = (pb.lo, pb.hi, bool(np.all(np.isneginf(pb.lo)) and np.all(np.isposinf(pb.hi))))
+        pb.box_free = kept
+    return kept[2]
+
+
 def _dual_scale(pb, z):
     """The largest t <= 1 with R*(t z) finite (the rescaling of Kim et al. 2007)."""
     t = 1.0
+    if not pb.groups and _box_free(pb):  # the two tests below with hi = +inf and lo = -inf everywhere
+        over = (pb.beta == 0) & ((z > pb.alpha) | (z < -pb.alpha))
+        if np.any(over):
+            t = min(t, float(np.min(pb.alpha[over] / np.abs(z[over]))))
+        return t
     lin = pb.beta == 0
     for idx, _ in pb.groups:  # a group's coordinates are priced by its norm below
         lin[idx] = False
@@ -673,6 +707,10 @@ def _dual_scale(pb, z):
 
 
 def _penalty_conjugate(pb, z):
+    if not pb.groups and _box_free(pb) and not np.any(pb.beta > 0):
+        # _separable_conjugate with no bounds and no ridge: 0 where |z| <= alpha, else infinite (its best
+        # candidate is x = 0, written the same way so that NaN spreads alike)
+        return float(np.sum(np.where((z > pb.alpha) | (z < -pb.alpha), np.inf, z * 0.0 - pb.alpha * 0.0)))
     grouped = np.zeros(pb.size, dtype=bool)
     total = 0.0
     for idx, lam in pb.groups:
@@ -1096,9 +1134,22 @@ class _OneBlasThread:
     matrix took 11-12 ms on one thread and 12-57 ms on two, up to 400 ms while another process held a core
     (an idle core is needed at every hand-off); one thread was as fast as two when the machine was idle."""
 
+    def __init__(self, pb=None):
+        # a path's cache keeps the scan of the loaded libraries (a ThreadpoolController): a fresh cap re-reads
+        # them, a few ms with SciPy and scikit-learn loaded, at each of a path's many entries
+        self._prepared = getattr(pb, "prepared", None)
+
     def __enter__(self):
         try:  # a thread cap is an optimisation only, never a reason to fail
-            self._cap = None if _threadpoolctl is None else _threadpoolctl.threadpool_limits(limits=1, user_api="blas")
+            if _threadpoolctl is None:
+                self._cap = None
+            elif self._prepared is None:
+                self._cap = _threadpoolctl.threadpool_limits(limits=1, user_api="blas")
+            else:
+                controller = self._prepared.get("blas controller")
+                if controller is None:
+                    controller = self._prepared["blas controller"] = _threadpoolctl.ThreadpoolController()
+                self._cap = controller.limit(limits=1, user_api="blas")
         except Exception:
             self._cap = None
         return self
@@ -1122,7 +1173,7 @@ def _sample_hessian(pb, rows, d):
     root = np.sqrt(d)
     chunk = max(1, (1 << 20) // (8 * pb.p))
     buf = np.empty((min(chunk, k), pb.p))
-    with _OneBlasThread():
+    with _OneBlasThread(pb):
         for first in range(0, k, chunk):
             last = min(first + chunk, k)
             block = buf[:last - first]
@@ -1172,7 +1223,7 @@ def _sampled_curvature(pb, s):
     gamma = (k + 8) * unit / (1.0 - (k + 8) * unit)  # k products, each entry of S off by at most 3u
     allowance = gamma * float(np.dot(d0, norms2)) * (1.0 + 1e-10) + \
         10.0 * size * unit * float(np.sqrt(np.sum(H * H)))
-    with _OneBlasThread():  # a small eigenproblem: the same hand-offs
+    with _OneBlasThread(pb):  # a small eigenproblem: the same hand-offs
         least = float(np.linalg.eigvalsh(H)[0]) - allowance
     if not least > 0.0:
         return None
@@ -2011,7 +2062,7 @@ def build_gram(pb):
         blocks = prep.get(key)
         if blocks is None:
             whole = pb if source is pb.X else _columns_problem(pb, source)
-            blocks = _gram_weight_blocks(whole, rho, y)
+            blocks = _gram_weight_blocks(whole, rho, y, _uncentred_sums(pb))
             prep[key] = blocks
             pb.passes += whole.passes if whole is not pb else 0
         if picked is not key:
@@ -2079,17 +2130,39 @@ def _columns_problem(pb, X):
     return whole
 
 
-def _gram_weight_blocks(pb, rho, y):
-    """(H_ww, q_w, h_w): the weight blocks of the Gram matrix and its two vectors (one or two passes)."""
+def _uncentred_sums(pb):
+    """The caller's uncentred sums of this table, or None. A caller that fits several row subsets of one
+    table (the folds of a cross-validation) may put into its cache, under "uncentred sums", a dict with
+    G = X^T X, Xy = X^T y, X1 = X^T 1 of the very X and y objects it hands in ("X", "y"): formed from the
+    whole table's sums less the held rows' (one X^T X of the table instead of one per fold). Valid only
+    for those objects and equal row weights (rho constant), which is what reading them needs."""
+    prep = getattr(pb, "prepared", None)
+    sums = None if prep is None else prep.get("uncentred sums")
+    if sums is None or sums.get("X") is not prep.get("X") or prep.get("columns") is not None:
+        return None
+    kept = prep.get("checked rows")
+    if kept is None or kept[0] is not sums["X"] or kept[1] is not sums["y"] or kept[4] is not pb.X:
+        return None
+    if np.ptp(pb.c) != 0.0:
+        return None
+    return sums
+
+
+def _gram_weight_blocks(pb, rho, y, sums=None):
+    """(H_ww, q_w, h_w): the weight blocks of the Gram matrix and its two vectors (one or two passes;
+    none with the caller's uncentred `sums`, see `_uncentred_sums`)."""
     m = pb.center if pb.center is not None else np.zeros(pb.p)
     size = pb.p
     H, q, h = np.zeros((size, size)), np.zeros(size), np.zeros(size)
     view = _Problem()
     view.X, view.n, view.p, view.w_index = pb.X, pb.n, pb.p, np.arange(size, dtype=np.intp)
     view.passes = 0
-    if not (not _is_sparse(pb.X) and np.ptp(rho) == 0.0 and _gram_uncentred(view, rho, y, m, H, q, h)):
+    view.sums = sums
+    if not _is_sparse(pb.X) and np.ptp(rho) == 0.0 and _gram_uncentred(view, rho, y, m, H, q, h):
+        pb.passes += view.passes + (0 if sums is not None else 1)  # X^T X counts one pass, the caller's none
+    else:
         _gram_centred_blocks(view, rho, y, m, H, q, h)
-    pb.passes += view.passes + 1
+        pb.passes += view.passes + 1
     return H, q, h
 
 
@@ -2098,15 +2171,19 @@ def _gram_uncentred(pb, rho, y, m, H, q, h):
     (about half the time of the centred blocks). Used only when centring cancels at most two digits
     (sum x^2 <= 100 sum (x - m)^2 in every column); returns False otherwise."""
     w = pb.w_index
-    G = pb.X.T @ pb.X
+    sums = getattr(pb, "sums", None)
+    G = pb.X.T @ pb.X if sums is None else sums["G"]
     n, r = pb.n, float(rho[0])
     diag = np.diag(G)
     centred = diag - n * m * m
     if not np.all(centred > 0) or np.any(diag > 100.0 * centred):
         return False
     H[np.ix_(w, w)] = r * (G - n * np.outer(m, m))
-    both = pb.X.T @ np.column_stack([rho * y, rho])
-    pb.passes += 1
+    if sums is None:
+        both = pb.X.T @ np.column_stack([rho * y, rho])
+        pb.passes += 1
+    else:  # rho is the constant r here (the caller of `_gram_uncentred` checked it)
+        both = np.column_stack([r * sums["Xy"], r * sums["X1"]])
     q[w] = both[:, 0] - m * float(np.dot(rho, y))
     h[w] = both[:, 1] - m * float(np.sum(rho))
     return True
@@ -2796,7 +2873,10 @@ def setup_problem(pb, method, prepared=None):
         columns = None if prepared is None or source is pb.X else prepared.get("columns")
         key = ("center", id(source), _fingerprint(pb.c) if _rows_token(pb) is None else _rows_token(pb))
         center = None if prepared is None else prepared.get(key)
-        if center is None:
+        sums = None if center is not None or source is not pb.X else _uncentred_sums(pb)
+        if center is None and sums is not None:  # equal row weights: the centre is X^T 1 / n
+            center = np.asarray(sums["X1"], dtype=np.float64) / float(pb.n)
+        elif center is None:
             center = np.asarray(source.T @ pb.c, dtype=np.float64).ravel() / float(np.sum(pb.c))
             pb.passes += 1
             if prepared is not None:
