@@ -503,6 +503,188 @@ def _k_l2sq_conj(u):
     return np.sum(np.asarray(u, dtype=float) ** 2) / 4.0
 
 
+# dropout of inputs averaged out in closed form (Wager, Wang & Liang 2013, "Dropout training as adaptive
+# regularization", sec. 2): each x_ij kept with probability 1 - p and scaled by 1 / (1 - p) has variance
+# x_ij^2 p / (1 - p), so E[(r_i - w . (x~_i - x_i))^2 / 2] = r_i^2 / 2 + p / (2 (1 - p)) sum_j w_j^2 x_ij^2.
+# Averaged over the rows like the loss, the excess is a ridge weighted by the inputs' second moments m2.
+
+def _k_dropout_factor(p):
+    return p / (2.0 * (1.0 - p))
+
+
+def _k_by_input(m2, w):
+    # m2 holds one number per input: along the rows of a weight matrix (one column per class)
+    m2 = np.asarray(m2, dtype=float)
+    return m2.reshape(m2.shape + (1,) * (np.ndim(w) - 1)) if m2.ndim == 1 else m2
+
+
+def _k_dropridge(w, p=0.5, m2=1.0):
+    w = np.asarray(w, dtype=float)
+    return _k_dropout_factor(p) * np.sum(_k_by_input(m2, w) * w * w)
+
+
+def _k_dropridge_d(w, p=0.5, m2=1.0):
+    return 2.0 * _k_dropout_factor(p) * _k_by_input(m2, w) * np.asarray(w, dtype=float)
+
+
+def _k_dropridge_prox(v, g, p=0.5, m2=1.0):
+    # argmin_z g f sum m2 z^2 + ||z - v||^2 / 2, coordinate by coordinate
+    return np.asarray(v, dtype=float) / (1.0 + 2.0 * g * _k_dropout_factor(p) * _k_by_input(m2, v))
+
+
+def _k_dropridge_conj(u, p=0.5, m2=1.0):
+    # sup_w u.w - f sum m2 w^2 = sum u^2 / (4 f m2)
+    return np.sum(np.asarray(u, dtype=float) ** 2 / (4.0 * _k_dropout_factor(p) * _k_by_input(m2, u)))
+
+
+def _k_second_moments(X, c, rows):
+    """sum_i c_i x_ij^2 per column, normalized like the goal's row aggregate: by sum c ('mean'), by the
+    row count ('perrow') or not at all ('sum'). X dense or a SciPy sparse matrix."""
+    squares = X.multiply(X) if hasattr(X, "multiply") and not isinstance(X, np.ndarray) else np.asarray(X) ** 2
+    total = np.asarray(squares.T @ np.asarray(c, dtype=float), dtype=float).ravel()
+    if rows == "mean":
+        return total / float(np.sum(c))
+    if rows == "perrow":
+        return total / float(X.shape[0])
+    return total
+
+
+# ---- multiclass losses, one value per row: S (rows x K scores), y (each row's class 0..K-1, as floats).
+# The entries' `value` (evaluation, metrics, witnesses); the NumPy solver's kernels are its own.
+
+def _k_mc_picked(S, y):
+    S = np.asarray(S, dtype=float)
+    return S[np.arange(S.shape[0]), np.asarray(y).astype(np.int64)]
+
+
+def _k_mc_softmax_ce(S, y):
+    # log sum_k exp(s_k) - s_y, shifted by the row maximum so that exp cannot overflow
+    S = np.asarray(S, dtype=float)
+    top = np.max(S, axis=1)
+    return top + np.log(np.sum(np.exp(S - top[:, None]), axis=1)) - _k_mc_picked(S, y)
+
+
+def _k_mc_cs_hinge(S, y):
+    # max_k (s_k + [k != y]) - s_y
+    S = np.asarray(S, dtype=float)
+    other = np.ones_like(S)
+    other[np.arange(S.shape[0]), np.asarray(y).astype(np.int64)] = 0.0
+    return np.max(S + other, axis=1) - _k_mc_picked(S, y)
+
+
+def _k_mc_ww_hinge(S, y):
+    # sum over k != y of max(0, 1 + s_k - s_y); the k = y term would add max(0, 1) = 1
+    S = np.asarray(S, dtype=float)
+    return np.sum(np.maximum(0.0, 1.0 + S - _k_mc_picked(S, y)[:, None]), axis=1) - 1.0
+
+
+def _k_mc_probabilities(S):
+    # softmax of each row's scores: the class probabilities softmax_ce models
+    S = np.asarray(S, dtype=float)
+    e = np.exp(S - np.max(S, axis=1, keepdims=True))
+    return e / np.sum(e, axis=1, keepdims=True)
+
+
+def _k_inputs_l2(W):
+    # sum over inputs j of ||W[j, :]||_2
+    return float(np.sum(np.sqrt(np.sum(np.asarray(W, dtype=float) ** 2, axis=1))))
+
+
+def _k_inputs_l2_d(W):
+    W = np.asarray(W, dtype=float)
+    n = np.sqrt(np.sum(W ** 2, axis=1, keepdims=True))
+    return np.where(n > 0.0, W / np.where(n > 0.0, n, 1.0), 0.0)
+
+
+# ---- multiclass kernels (vector score per row)
+# What the NumPy multiclass solver (backends/numpy_multiclass_src.py) needs besides the values above: S is
+# (rows x K), y the rows' classes; a conjugate takes the per-row dual vectors V (rows x K) and returns one
+# value per row (+inf outside its domain). Domains are tested with a slack of 1e-9 against rounding (common
+# practice, no source).
+
+def _k_mc_onehot(y, K):
+    E = np.zeros((len(y), K))
+    E[np.arange(len(y)), np.asarray(y).astype(np.int64)] = 1.0
+    return E
+
+
+def _k_softmax_ce_vd(S, y):
+    # the values and the gradient softmax(s) - e_y from one exponential of the shifted scores (in place: this
+    # runs on every trial step of a line search)
+    S = np.asarray(S, dtype=float)
+    rows = np.arange(S.shape[0])
+    yi = np.asarray(y).astype(np.int64)
+    G = S - np.max(S, axis=1, keepdims=True)
+    picked = G[rows, yi]
+    np.exp(G, out=G)
+    total = np.sum(G, axis=1)
+    G /= total[:, None]
+    G[rows, yi] -= 1.0
+    return np.log(total) - picked, G
+
+
+def _k_softmax_ce_conj(V, y):
+    # with q = v + e_y in the simplex: sum_k q_k log q_k (the negative entropy; 0 log 0 = 0)
+    Q = np.asarray(V, dtype=float) + _k_mc_onehot(y, np.shape(V)[1])
+    inside = (np.min(Q, axis=1) >= -1e-9) & (np.abs(np.sum(Q, axis=1) - 1.0) <= 1e-9)
+    Qp = np.maximum(Q, 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ent = np.sum(np.where(Qp > 0.0, Qp * np.log(np.where(Qp > 0.0, Qp, 1.0)), 0.0), axis=1)
+    return np.where(inside, ent, np.inf)
+
+
+def _k_cs_hinge_d(S, y):
+    # a subgradient: e_k - e_y for the first k attaining max_k (s_k + [k != y])
+    S = np.asarray(S, dtype=float)
+    E = _k_mc_onehot(y, S.shape[1])
+    top = np.argmax(S + 1.0 - E, axis=1)
+    G = -E
+    G[np.arange(S.shape[0]), top] += 1.0
+    return G
+
+
+def _k_cs_hinge_conj(V, y):
+    # conjugate of max_k (s_k + [k != y]) - s_y: with q = v + e_y in the simplex it is -sum_k [k != y] q_k = v_y
+    V = np.asarray(V, dtype=float)
+    E = _k_mc_onehot(y, V.shape[1])
+    Q = V + E
+    inside = (np.min(Q, axis=1) >= -1e-9) & (np.abs(np.sum(Q, axis=1) - 1.0) <= 1e-9)
+    return np.where(inside, np.sum(V * E, axis=1), np.inf)
+
+
+def _k_ww_hinge_d(S, y):
+    # a subgradient: e_k - e_y summed over the classes k != y with 1 + s_k - s_y > 0
+    S = np.asarray(S, dtype=float)
+    E = _k_mc_onehot(y, S.shape[1])
+    sy = np.sum(S * E, axis=1, keepdims=True)
+    A = np.where((1.0 + S - sy > 0.0) & (E == 0.0), 1.0, 0.0)
+    return A - E * np.sum(A, axis=1, keepdims=True)
+
+
+def _k_ww_hinge_conj(V, y):
+    # conjugate of sum_{k != y} max(0, 1 + s_k - s_y): finite for v_k in [0, 1] (k != y) and sum_k v_k = 0,
+    # where it is -sum_{k != y} v_k = v_y
+    V = np.asarray(V, dtype=float)
+    E = _k_mc_onehot(y, V.shape[1])
+    off = np.where(E == 0.0, V, 0.5)
+    inside = (np.min(off, axis=1) >= -1e-9) & (np.max(off, axis=1) <= 1.0 + 1e-9) & \
+        (np.abs(np.sum(V, axis=1)) <= 1e-9)
+    return np.where(inside, np.sum(V * E, axis=1), np.inf)
+
+
+def _k_inputs_l2_prox(W, g):
+    # each input's row of W shrunk toward 0 by g in its own L2 norm (the group soft threshold)
+    W = np.asarray(W, dtype=float)
+    n = np.sqrt(np.sum(W ** 2, axis=1, keepdims=True))
+    return W * np.maximum(0.0, 1.0 - g / np.where(n > 0.0, n, 1.0))
+
+
+def _k_inputs_l2_conj(Z):
+    # the dual norm's unit ball: max_j ||Z[j, :]||_2 <= 1
+    Z = np.asarray(Z, dtype=float)
+    return 0.0 if np.max(np.sqrt(np.sum(Z ** 2, axis=1)), initial=0.0) <= 1.0 + 1e-12 else np.inf
+
+
 # ---------------------------------------------------------------- entry shape
 
 @dataclass(frozen=True)
@@ -582,7 +764,7 @@ class Entry:
     # (lo, hi, **settings) -> min of l'' over [lo, hi] (elementwise); the NumPy backend turns it into a
     # strong-convexity modulus and so a certified distance of the weights to the optimum
     curv_floor: Callable[..., Any] | None = field(default=None, kw_only=True)
-    role: Literal["margin", "residual", None] = None
+    role: Literal["margin", "residual", "multiclass", None] = None
     calibrated: bool | None = None
     trainable: bool = True
     # for an entry that is not trainable: why training on it is refused, and what to do instead
@@ -602,6 +784,13 @@ class Entry:
     kink_at_zero_value: bool = field(default=False, kw_only=True)
     # warnings every goal that trains on the entry gets: (code, message, hint)
     training_warnings: tuple[tuple[str, str, str], ...] = field(default=(), kw_only=True)
+    # a norm that applies to a parameter learned by classes (True), or only to one ("only": inputs_l2)
+    on_class_matrix: bool | str = field(default=False, kw_only=True)
+    # why the entry is convex, with its published source: said in the checker's per-term verdicts
+    convexity_rule: str = field(default="", kw_only=True)
+    # the entry's value reads the training rows' second moments of the inputs its argument weighs
+    # (`m2=`, from `_k_second_moments`, normalized like the goal's row aggregate): a data-scaled norm
+    reads_second_moments: bool = field(default=False, kw_only=True)
 
     def resolve_options(self, given: tuple[float, ...]) -> dict[str, float]:
         """Options from positional values; raise ValueError (caught by the resolver) when wrong."""
@@ -636,6 +825,14 @@ def _cp_pinball(cp, r, t=0.5):
     return t * cp.pos(r) + (1.0 - t) * cp.neg(r)
 
 
+def _cp_dropridge(cp, w, p=0.5, m2=1.0):
+    # sqrt(m2) scales each input's weights: a sum of squares of a linear map of w, convex
+    root = np.sqrt(np.asarray(m2, dtype=float))
+    if root.ndim == 1 and len(w.shape) == 2:  # one row of weights per input: scale the rows
+        return (p / (2.0 * (1.0 - p))) * cp.sum_squares(cp.multiply(np.outer(root, np.ones(w.shape[1])), w))
+    return (p / (2.0 * (1.0 - p))) * cp.sum_squares(cp.multiply(root, w))
+
+
 def _cp_hypot(cp, a, b):
     # elementwise Euclidean norm of the pair: stack the two as rows and take the column norms
     a, b = cp.Expression.cast_to_const(a), cp.Expression.cast_to_const(b)
@@ -654,6 +851,39 @@ def _cp_power(cp, x, p=2.0):
     # 'inaccurate' in Clarabel on mean |r|^2.5 over the raw diabetes targets, the power cone did not
     # (measured, cvxpy 1.9); a tunable exponent takes any value, not only short fractions
     return cp.power(x, p, approx=False)
+
+
+def _cp_onehot(cp, S, y):
+    Y = np.zeros(S.shape)
+    Y[np.arange(S.shape[0]), np.asarray(y).astype(np.int64)] = 1.0
+    return Y
+
+
+def _cp_picked(cp, S, Y):
+    return cp.sum(cp.multiply(S, Y), axis=1)
+
+
+def _cp_softmax_ce(cp, S, y):
+    return cp.log_sum_exp(S, axis=1) - _cp_picked(cp, S, _cp_onehot(cp, S, y))
+
+
+def _cp_cs_hinge(cp, S, y):
+    Y = _cp_onehot(cp, S, y)
+    return cp.max(S + (1.0 - Y), axis=1) - _cp_picked(cp, S, Y)
+
+
+def _cp_ww_hinge(cp, S, y):
+    Y = _cp_onehot(cp, S, y)
+    # the picked score of each row repeated across the K columns, so it subtracts entry by entry
+    picked = cp.reshape(_cp_picked(cp, S, Y), (S.shape[0], 1), order="F") @ np.ones((1, S.shape[1]))
+    return cp.sum(cp.multiply(cp.pos(1.0 + S - picked), 1.0 - Y), axis=1)
+
+
+def _cp_inputs_l2(cp, W):
+    return cp.sum(cp.norm(W, 2, axis=1))
+
+
+_SCORE_AFFINE = "composed with the affine score s_i = W^T x_i + b it stays convex (Boyd & Vandenberghe 2004, sec. 3.2.2)"
 
 
 def _power_curvature(o: dict) -> Curvature:
@@ -789,6 +1019,24 @@ ENTRIES: tuple[Entry, ...] = (
           options=(Option("e", 0.1, 0.0, np.inf, low_open=False, meaning="half-width of the free band"),),
           lipschitz=_k(1.0), prox=_k_epsilon_insensitive_prox, conjugate=_k_epsilon_insensitive_conj,
           role="residual", curv_floor=_k_flat_curv_floor),
+    # ---- multiclass losses: arguments s (the K scores of a row) and y (the row's class)
+    Entry("softmax_ce", "loss", "softmax cross-entropy (multinomial logistic loss) of a row's K scores",
+          "log sum_k exp(s_k) - s_y", _const(CONVEX), _fixed_mono(NONMONO), _nonneg, _k_mc_softmax_ce, None,
+          _cp_softmax_ce, arity=2, smooth=_yes, role="multiclass", calibrated=True,
+          value_and_derivative=_k_softmax_ce_vd, conjugate=_k_softmax_ce_conj,
+          convexity_rule="log-sum-exp is convex (Boyd & Vandenberghe 2004, sec. 3.1.5, example 'log-sum-exp') and "
+                         "-s_y is affine; " + _SCORE_AFFINE),
+    Entry("cs_hinge", "loss", "multiclass hinge of Crammer & Singer (2001)", "max_k (s_k + [k != y]) - s_y",
+          _const(CONVEX), _fixed_mono(NONMONO), _nonneg, _k_mc_cs_hinge, _k_cs_hinge_d, _cp_cs_hinge, arity=2,
+          role="multiclass", calibrated=False, conjugate=_k_cs_hinge_conj,
+          convexity_rule="a pointwise maximum of affine functions of s is convex (Boyd & Vandenberghe 2004, sec. "
+                         "3.2.3) and -s_y is affine; " + _SCORE_AFFINE),
+    Entry("ww_hinge", "loss", "multiclass hinge of Weston & Watkins (1999)", "sum_{k != y} max(0, 1 + s_k - s_y)",
+          _const(CONVEX), _fixed_mono(NONMONO), _nonneg, _k_mc_ww_hinge, _k_ww_hinge_d, _cp_ww_hinge, arity=2,
+          role="multiclass", calibrated=False, conjugate=_k_ww_hinge_conj,
+          convexity_rule="each max(0, 1 + s_k - s_y) is a pointwise maximum of affine functions of s, so convex "
+                         "(Boyd & Vandenberghe 2004, sec. 3.2.3), and a sum of convex functions is convex; "
+                         + _SCORE_AFFINE),
     # ---- scalar atoms (elementwise on vectors)
     Entry("abs", "atom", "absolute value", "|x|", _const(CONVEX), _even_mono, _nonneg, _k_abs, _k_abs_d,
           lambda cp, x: cp.abs(x), lipschitz=_k(1.0)),
@@ -842,13 +1090,31 @@ ENTRIES: tuple[Entry, ...] = (
           refusal="l0(w) counts nonzero weights: a step in every weight, it cannot be trained on (its derivative "
                   "is 0 wherever it exists), only evaluated",
           refusal_hint="report it for a trained model; for sparse weights train with the convex l1(w)"),
+    # on a matrix learned by classes, l1 is entrywise (cvxpy's norm1 of a matrix sums every |W_jk|, measured
+    # with cvxpy 1.9; its norm(W, 1) would be the induced norm) and l2sq the squared Frobenius norm
     Entry("l1", "norm", "L1 norm", "sum_j |w_j|", _const(CONVEX), _even_mono, _nonneg, _k_l1, _k_l1_d,
-          lambda cp, w: cp.norm1(w), prox=_k_l1_prox, conjugate=_k_l1_conj),
+          lambda cp, w: cp.norm1(w), prox=_k_l1_prox, conjugate=_k_l1_conj, on_class_matrix=True),
     Entry("l2", "norm", "L2 (Euclidean) norm", "sqrt(sum_j w_j^2)", _const(CONVEX), _even_mono, _nonneg,
-          _k_l2, _k_l2_d, lambda cp, w: cp.norm2(w), prox=_k_l2_prox, conjugate=_k_l2_conj),
+          _k_l2, _k_l2_d, lambda cp, w: cp.norm2(w), prox=_k_l2_prox, conjugate=_k_l2_conj,
+          on_class_matrix=True),
     Entry("l2sq", "norm", "squared L2 norm (no half)", "sum_j w_j^2", _const(CONVEX), _even_mono, _nonneg,
           _k_l2sq, _k_l2sq_d, lambda cp, w: cp.sum_squares(w), smooth=_yes, prox=_k_l2sq_prox,
-          conjugate=_k_l2sq_conj),
+          conjugate=_k_l2sq_conj, on_class_matrix=True),
+    Entry("inputs_l2", "norm", "sum over inputs of the L2 norm of the input's weights across the classes (drops an "
+          "input from every class at once)", "sum_j ||W[j, :]||_2", _const(CONVEX), _even_mono, _nonneg,
+          _k_inputs_l2, _k_inputs_l2_d, _cp_inputs_l2, on_class_matrix="only", prox=_k_inputs_l2_prox,
+          conjugate=_k_inputs_l2_conj,
+          convexity_rule="a sum of norms of affine functions of W is convex (Boyd & Vandenberghe 2004, sec. 3.1.5 "
+                         "and 3.2.1)"),
+    Entry("dropridge", "norm", "dropout of the inputs w weighs, drop probability p, averaged out: a ridge "
+          "weighted by each input's second moment (exact for the squared loss; Wager, Wang & Liang 2013)",
+          "p / (2 (1 - p)) sum_j m2_j w_j^2, m2_j = the rows' mean of x_j^2 (normalized like the loss)",
+          _const(CONVEX), _even_mono, _nonneg, _k_dropridge, _k_dropridge_d,
+          _cp_dropridge,
+          options=(Option("p", 0.5, 0.0, 1.0, low_open=True, high_open=True,
+                          meaning="the probability that an input is dropped from a row"),),
+          smooth=_yes, prox=_k_dropridge_prox, conjugate=_k_dropridge_conj, reads_second_moments=True,
+          on_class_matrix=True),
 )
 
 CATALOG: dict[str, Entry] = {e.name: e for e in ENTRIES}

@@ -21,7 +21,7 @@ from typing import Literal
 import numpy as np
 
 from objc import typed_tree as tt
-from objc.catalog import CATALOG
+from objc.catalog import CATALOG, _k_second_moments
 from objc.curvature import (ArgumentFault, Curvature, Monotonicity, Sign, compose, curvature_add,
                             curvature_scale, sign_add, sign_mul)
 from objc.diagnostics import Diagnostic
@@ -141,7 +141,7 @@ class CheckedObjective:
     constraints: tuple[ConstraintInfo, ...]
     verdict: Verdict
     smooth: bool
-    task: Literal["margin", "residual", None]
+    task: Literal["margin", "residual", "multiclass", None]
     errors: tuple[Diagnostic, ...]
     warnings: tuple[Diagnostic, ...]
     expanded: str
@@ -525,6 +525,8 @@ def evaluate(e: tt.TExpr, env: EvalEnv):
             return np.divide(evaluate(e.left, env), evaluate(e.right, env))
     if isinstance(e, tt.Dot):
         a, b = evaluate(e.left, env), evaluate(e.right, env)
+        if np.ndim(a) == 2 and np.ndim(b) == 2:  # W . x with W learned by classes: rows x K
+            return b @ a if isinstance(e.right, tt.DataRef) and e.right.kind == "inputs" else a @ b
         if np.ndim(a) == 2:
             return a @ b
         if np.ndim(b) == 2:
@@ -542,8 +544,20 @@ def evaluate(e: tt.TExpr, env: EvalEnv):
     if isinstance(e, tt.Apply):
         entry = CATALOG[e.entry]
         args = [evaluate(a, env) for a in e.args]
+        if entry.reads_second_moments:
+            return entry.value(*args, **e.option_values(env.tunables), m2=_second_moments_of(e, env))
         return entry.value(*args, **e.option_values(env.tunables))
     raise AssertionError(e)
+
+
+def _second_moments_of(e: tt.Apply, env: EvalEnv) -> np.ndarray:
+    """The second moments of the inputs `e`'s parameter weighs, on the rows `env` holds."""
+    ref = e.args[0]
+    names = list(ref.entries) if isinstance(ref, tt.ParamRef) and ref.entries is not None else list(env.inputs)
+    n = np.size(env.y)
+    X = np.column_stack([np.broadcast_to(np.asarray(env.columns[k], dtype=float), (n,)) for k in names])
+    c = np.ones(n) if env.weights is None else np.asarray(env.weights, dtype=float)
+    return _k_second_moments(X, c, e.rows or "mean")
 
 
 def _inputs_for(spec: tt.ResolvedSpec) -> list[str]:
@@ -1077,6 +1091,10 @@ def check(spec: tt.ResolvedSpec, source: SourceText | None = None) -> CheckedObj
             for node in _contains(body, tt.Apply) + _contains(body, tt.CustomLoss):
                 if isinstance(node, tt.Apply) and CATALOG[node.entry].kind != "loss":
                     continue
+                if isinstance(node, tt.Apply) and CATALOG[node.entry].role == "multiclass":
+                    roles.add("multiclass")
+                    losses.append(node.entry)
+                    continue
                 arg = node.arg if isinstance(node, tt.CustomLoss) else node.args[0]
                 r = loss_role(arg)
                 if r:
@@ -1089,11 +1107,17 @@ def check(spec: tt.ResolvedSpec, source: SourceText | None = None) -> CheckedObj
             if isinstance(body, tt.Apply) and CATALOG[body.entry].kind == "loss" and \
                     loss_role(body.args[0]) == CATALOG[body.entry].role:
                 known = (body.entry, body.options)
+            if isinstance(body, tt.Apply) and CATALOG[body.entry].role == "multiclass":
+                known = (body.entry, body.options)
         role = next(iter(roles)) if len(roles) == 1 else (None if not roles else "mixed")
         verdict = "not subdifferentiable" if facts.uses_zero_one else _verdict(facts.curvature)
         explanation: list[str] = []
         if facts.fault:
             explanation.append(f"line {facts.fault.span.line}, column {facts.fault.span.column}: {facts.fault.message}")
+        for node in _contains(core, tt.Apply):
+            rule = CATALOG[node.entry].convexity_rule
+            if rule and f"{node.entry}: {rule}" not in explanation:
+                explanation.append(f"{node.entry}: {rule}")
         numbers = tuple(p.number for p in group) if len(group) > 1 else ()
         terms.append(Term(i, span, text,
                           value, ctext, csign, core, whole, kind, core.kind if is_rows else None, body,
@@ -1106,7 +1130,9 @@ def check(spec: tt.ResolvedSpec, source: SourceText | None = None) -> CheckedObj
 
     # ---- the whole goal: a witness wherever the rules do not prove it convex
     goal_witness = None
-    if zero_one_span is None and overall in (Curvature.UNKNOWN, Curvature.CONCAVE):
+    by_classes = any(p.by_classes for p in spec.parameters)
+    # the witness search probes vectors over the inputs; a matrix learned by classes is not searched
+    if zero_one_span is None and overall in (Curvature.UNKNOWN, Curvature.CONCAVE) and not by_classes:
         goal_witness = find_witness(spec.goal, spec)
     if goal_witness is not None:
         counterexample = f"counterexample: {goal_witness.describe()}"
@@ -1174,8 +1200,21 @@ def check(spec: tt.ResolvedSpec, source: SourceText | None = None) -> CheckedObj
             hint="a goal to minimize needs convex losses and penalties with nonnegative weights; a concave goal is "
             "usually a maximization written without negating it", notes=witness_notes)
 
-    task: Literal["margin", "residual", None] = None
-    roles = {t.role for t in terms if t.role in ("margin", "residual")}
+    task: Literal["margin", "residual", "multiclass", None] = None
+    roles = {t.role for t in terms if t.role in ("margin", "residual", "multiclass")}
+    classes = spec.table.classes if spec.table is not None else ()
+    if classes and roles - {"multiclass"}:
+        t = next(t for t in terms if t.role in roles - {"multiclass"})
+        err("E306", f"term {t.index + 1} is a {t.role} loss, but the target has {len(classes)} classes: a margin "
+            "loss needs a +1/-1 target and a residual loss a real one", t.span,
+            hint="use a multiclass loss of the K scores: softmax_ce(s, y), cs_hinge(s, y) or ww_hinge(s, y), with "
+                 "learn W over inputs by classes, b by classes and score s = W . x + b")
+        roles = set()
+    elif classes and spec.score is not None and spec.score.shape.kind == "rowclasses":
+        form = multiclass_form(spec)
+        if form is None:
+            err("E307", "with classes the score is W . x + b (or W . x): W learned over inputs by classes and b by "
+                "classes", spec.score.span, hint="write score s = W . x + b")
     if len(roles) > 1:
         err("E305", "the goal mixes margin losses (of y * s) and residual losses (of y - s); the target cannot be "
             "both +1/-1 labels and a real value", spec.goal_span)
@@ -1275,6 +1314,45 @@ def check(spec: tt.ResolvedSpec, source: SourceText | None = None) -> CheckedObj
                             tuple(errors), tuple(warnings), expanded, penalized, intercept, goal_witness)
 
 
+def _row_formula(formula: str) -> str:
+    """A multiclass loss's catalog formula written for row i (s_k -> s_ik, y -> y_i)."""
+    return (formula.replace("s_k", "s_ik").replace("s_y", "s_i,y_i").replace("k != y", "k != y_i"))
+
+
+def _class_norm_text(e: tt.Apply) -> str:
+    """A norm of a parameter learned by classes, as math text."""
+    name = render(e.args[0])
+    return {"l2sq": f"||{name}||_F^2", "l1": f"sum_jk |{name}_jk|" if e.args[0].shape.kind == "weights"
+            else f"sum_k |{name}_k|", "inputs_l2": f"sum_j ||{name}[j, :]||_2", "l2": f"||{name}||_2"}.get(
+        e.entry, render(e))
+
+
+def multiclass_form(spec: tt.ResolvedSpec) -> tuple[str, str | None] | None:
+    """(W, b or None) when the score is W . x + b (or W . x) with W over inputs by classes and b by
+    classes; None for any other score."""
+    if spec.score is None:
+        return None
+    e = spec.score.expr
+    params = {p.name: p for p in spec.parameters}
+
+    def weights(d) -> str | None:
+        if not isinstance(d, tt.Dot):
+            return None
+        for p, x in ((d.left, d.right), (d.right, d.left)):
+            if isinstance(p, tt.ParamRef) and p.shape.kind == "weights" and isinstance(x, tt.DataRef) and \
+                    x.kind == "inputs" and x.shape.names is None and p.entries is None:
+                return p.name
+        return None
+    if weights(e) is not None:
+        return weights(e), None
+    if isinstance(e, tt.Add):
+        for d, b in ((e.left, e.right), (e.right, e.left)):
+            if weights(d) is not None and isinstance(b, tt.ParamRef) and b.shape.kind == "classes" and \
+                    params[b.name].by_classes and not params[b.name].vector:
+                return weights(d), b.name
+    return None
+
+
 def _substitute_arg(node: tt.CustomLoss) -> tt.TExpr:
     """The custom loss body with its argument shown as the loss's own variable again."""
     def sub(e: tt.TExpr) -> tt.TExpr:
@@ -1313,16 +1391,59 @@ def _calibration_note(node: tt.CustomLoss) -> str:
     return ""
 
 
+def _dropout_lines(spec: tt.ResolvedSpec, terms: list[Term]) -> list[str]:
+    """What each data-scaled ridge equals, and whether it is the exact dropout average here."""
+    uses = list(dict.fromkeys(u for t in terms for u in _contains(t.core, tt.Apply)
+                              if CATALOG[u.entry].reads_second_moments))
+    if not uses:
+        return []
+    row_terms = [t for t in terms if t.kind == "rows"]
+    losses = sorted({t.known_loss[0] if t.known_loss else (t.losses[0] if t.losses else "a custom loss")
+                     for t in row_terms})
+    exact = len(row_terms) == 1 and row_terms[0].known_loss is not None and \
+        row_terms[0].known_loss[0] == "squared" and row_terms[0].role == "residual"
+    out = []
+    for u in uses:
+        weights = render(u.args[0])
+        norm = {"mean": "(1 / sum_i c_i) * sum_i c_i", "perrow": "(1 / n) * sum_i c_i"}.get(u.rows or "", "sum_i c_i")
+        p_text = next((ref.name for k, ref in u.tuned if k == "p"), None)
+        p = u.option_dict["p"]
+        factor = f"{p_text} / (2 (1 - {p_text}))" if p_text else f"{p / (2 * (1 - p)):.6g}"
+        squares = f"sum_j m2_j sum_k {weights}_jk^2" if u.args[0].shape.kind == "weights" else \
+            f"sum_j m2_j {weights}_j^2"
+        out.append(f"  {render(u)} = {factor} * {squares}, m2_j = {norm} * x_ij^2 over the inputs {weights} weighs "
+                   "(as the score sees them)")
+    if exact:
+        k = row_terms[0].coefficient_text
+        scale = "" if k in ("1", "") else f" (the goal weighs the loss by {k}: the exact average adds {k} times it)"
+        out.append("  dropridge is exactly what dropping each input with that probability (the kept ones scaled by "
+                   "1 / (1 - p)) adds to the average squared loss (Wager, Wang & Liang 2013)" + scale)
+    else:
+        out.append(f"  for {', '.join(losses) or 'this goal'} dropridge is only the quadratic approximation of "
+                   "dropout's average (the loss's curvature taken as 1); it is exact for the squared loss alone")
+    return out
+
+
 def _expanded(spec: tt.ResolvedSpec, terms: list[Term], intercept: str | None,
               penalized: bool) -> str:
     """The goal with every weight multiplied out and every convention spelled out."""
-    learned = ", ".join(f"{p.name} (one weight per input)" if p.vector else f"{p.name} (a number)"
+    learned = ", ".join((f"{p.name} (one weight per input and class)" if p.vector else f"{p.name} (one per class)")
+                        if p.by_classes else f"{p.name} (one weight per input)" if p.vector else f"{p.name} (a number)"
                         for p in spec.parameters)
+    form = multiclass_form(spec) if spec.table is not None and spec.table.classes else None
     lines = [f"minimize over {learned}:"]
     for k, t in enumerate(terms):
         lead = "    " if k == 0 else "  + "
         coef = t.coefficient_text
-        if t.kind == "rows" and t.body is not None:
+        if t.kind == "rows" and form is not None and isinstance(t.body, tt.Apply) and \
+                CATALOG[t.body.entry].role == "multiclass":
+            body = _row_formula(CATALOG[t.body.entry].formula)
+            core = {"mean": f"sum_i c_i ({body}) / sum_i c_i", "perrow": f"sum_i c_i ({body}) / n"}.get(
+                t.aggregate or "", f"sum_i c_i ({body})")
+        elif t.kind == "params" and isinstance(t.core, tt.Apply) and t.core.args and \
+                t.core.args[0].shape.kind in ("weights", "classes"):
+            core = _class_norm_text(t.core)
+        elif t.kind == "rows" and t.body is not None:
             body = render(t.body, 3).replace("y * s", "y_i * s_i").replace("y - s", "y_i - s_i")
             agg = {"mean": "(1 / sum_i c_i) * sum_i c_i * ", "perrow": "(1 / n) * sum_i c_i * "}.get(
                 t.aggregate or "", "sum_i c_i * ")
@@ -1345,7 +1466,13 @@ def _expanded(spec: tt.ResolvedSpec, terms: list[Term], intercept: str | None,
         lines.append("  like terms collected: " + "; ".join(
             f"terms {', '.join(str(n) for n in t.parts[:-1])} and {t.parts[-1]} as written ({t.text}) into term "
             f"{t.index + 1}" for t in collected))
-    if spec.score is not None:
+    if spec.score is not None and form is not None:
+        classes = spec.table.classes
+        s_name = spec.score.name
+        lines.append(f"where {s_name}_i = {form[0]}^T x_i" + (f" + {form[1]}" if form[1] else "") +
+                     f", the K = {len(classes)} scores of row i ({s_name}_ik for class k), and y_i the class of row i;"
+                     f" classes in order: {', '.join(c if isinstance(c, str) else f'{c:g}' for c in classes)}")
+    elif spec.score is not None:
         lines.append(f"where {spec.score.name} = {render(spec.score.expr)}, one value per row i")
     defined = {}
     for t in terms:
@@ -1354,12 +1481,17 @@ def _expanded(spec: tt.ResolvedSpec, terms: list[Term], intercept: str | None,
     for name, node in defined.items():
         body = render(_substitute_arg(node))
         lines.append(f"  {name}({node.param}) = {body}")
+    lines += _dropout_lines(spec, terms)
     weight_parts = []
     tb = spec.table
     if tb is not None and tb.row_weight:
         weight_parts.append(f"row weight from column '{tb.row_weight}'")
     if tb is not None and tb.class_weights:
         weight_parts.append("class weight " + ", ".join(f"{l:+g}: {w:g}" for l, w in tb.class_weights))
+    if tb is not None and tb.class_label_weights:
+        weight_parts.append("class weight " + ", ".join(
+            f"{l if isinstance(l, str) else format(l, 'g')}: {w:g}" for l, w in tb.class_label_weights)
+            + " (1 for a class not listed)")
     lines.append("  c_i = " + (" x ".join(weight_parts) if weight_parts else "1 for every row (no row or class "
                                                                                 "weights)"))
     if any(t.aggregate == "mean" for t in terms):

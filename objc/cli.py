@@ -64,9 +64,10 @@ def _backend_warnings(checked) -> tuple:
     err = numpy_module.unsupported(checked)
     if err is None:
         return ()
-    return (Diagnostic("W321", f"the NumPy backend (the default) cannot train this spec: {err.what}",
-                       err.span or NO_SPAN, "warning", "fit and build it with `--backend cvxpy`", (),
-                       checked.source.name),)
+    # the refusal's own code, so the warning here and the error `objc fit` gives are one diagnostic
+    return (Diagnostic("W321", f"the NumPy backend (the default) cannot train this spec ({err.code} in `objc "
+                       f"fit`): {err.what}", err.span or NO_SPAN, "warning",
+                       "fit and build it with `--backend cvxpy`", (), checked.source.name),)
 
 
 def _check_json(checked, extra_warnings: tuple = ()) -> dict:
@@ -100,7 +101,9 @@ def _check_json(checked, extra_warnings: tuple = ()) -> dict:
 def _check_text_report(checked, extra_warnings: tuple = ()) -> str:
     verdict = checked.verdict.upper()
     task = {"margin": "classification (losses of the margin y * s)",
-            "residual": "regression (losses of the residual y - s)"}.get(checked.task or "", "no per-row loss")
+            "residual": "regression (losses of the residual y - s)",
+            "multiclass": "classification into classes (losses of a row's K scores s and its class y)"}.get(
+                checked.task or "", "no per-row loss")
     lines = [f"spec      {checked.source.name}",
              f"verdict   {verdict}{'' if checked.accepted else '  (refused)'}",
              f"shape     {'smooth' if checked.smooth else 'nonsmooth'}, {task}", "", _rule("terms of the goal")]
@@ -115,6 +118,13 @@ def _check_text_report(checked, extra_warnings: tuple = ()) -> str:
         lines += ["", _rule("constraints")]
         for c in checked.constraints:
             lines.append(f"  line {c.span.line:<4} {c.text:<40} {c.kind}{'' if c.curvature_ok else '  <- breaks convexity'}")
+    from objc.catalog import CATALOG
+    ruled = {n for n, e in CATALOG.items() if e.convexity_rule}
+    rules = [(t.index + 1, x) for t in checked.terms if t.verdict == "convex" for x in t.explanation
+             if x.split(":", 1)[0] in ruled]
+    if rules:
+        lines += ["", _rule("why convex")]
+        lines += [f"  term {k}, {x}" for k, x in rules]
     lines += ["", _rule("the objective, expanded")]
     lines += ["  " + ln for ln in checked.expanded.splitlines()]
     if checked.errors:
@@ -351,7 +361,30 @@ def _param_tol(text: str) -> float | None:
     return value
 
 
+def _class_metric_lines(m: dict) -> list[str]:
+    """K x K confusion counts (rows: the true class, columns: the predicted one) and per-class figures."""
+    names = [c if isinstance(c, str) else f"{c:g}" for c in m["classes"]]
+    width = max([len(n) for n in names] + [6])
+    lines = [f"  0-1 error       {m['zero_one_error']:.4f}   (weighted {m['zero_one_error_weighted']:.4f}, "
+             f"{m['rows']} rows)"]
+    if "log_loss" in m:
+        lines.append(f"  log loss        {m['log_loss']:.6g}   (mean of -log p of the true class)")
+    lines.append("  confusion       rows: true class, columns: predicted class")
+    lines.append("  " + " " * (width + 2) + "  ".join(f"{n:>{width}}" for n in names))
+    for n, row in zip(names, m["class_confusion"]):
+        lines.append(f"  {n:>{width}}  " + "  ".join(f"{v:>{width}}" for v in row))
+    lines.append(f"  {'class':>{width}}  {'precision':>9}  {'recall':>9}  rows")
+    for n, pc in zip(names, m["per_class"]):
+        def fig(v):
+            return "-" if v is None else f"{v:.4f}"
+        lines.append(f"  {n:>{width}}  {fig(pc['precision']):>9}  {fig(pc['recall']):>9}  {pc['rows']}")
+    lines.append("  mean loss       " + "   ".join(f"{k} {v:.4g}" for k, v in m["mean_losses"].items()))
+    return lines
+
+
 def _metric_lines(m: dict) -> list[str]:
+    if "class_confusion" in m:
+        return _class_metric_lines(m)
     if "zero_one_error" in m:
         c = m["confusion"]
         lines = [f"  0-1 error       {m['zero_one_error']:.4f}   (weighted {m['zero_one_error_weighted']:.4f}, "
@@ -372,7 +405,7 @@ def cmd_eval(args) -> int:
     from objc.model_io import load_model
     model = load_model(Path(args.model))
     doc = model.document
-    checked = training.checked_from_model(doc, model.path)
+    checked = training.checked_for_saved(model)
     if args.table:
         data = training.bind_for_model(checked, doc, Path(args.table), need_target=True)
         where = args.table
@@ -398,7 +431,7 @@ def cmd_predict(args) -> int:
     from objc.model_io import _atomic_write, load_model
     model = load_model(Path(args.model))
     doc = model.document
-    checked = training.checked_from_model(doc, model.path)
+    checked = training.checked_for_saved(model)
     data = training.bind_for_model(checked, doc, Path(args.table), need_target=False)
     form = training.form_for(checked, tuple(doc["schema"]["inputs"]))
     s = training.scores(form, model.params, data.X, None)
@@ -407,7 +440,21 @@ def cmd_predict(args) -> int:
     import io
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
-    if doc["task"] == "margin":
+    if doc["task"] == "multiclass":
+        labels = training.predicted_labels(doc, s)
+        names = [c if isinstance(c, str) else f"{c:g}" for c in doc["schema"]["classes"]]
+        header = ["row"] + [f"score:{n}" for n in names] + ["label"]
+        probs = None
+        if training.trains_softmax(checked):
+            from objc.catalog import _k_mc_probabilities
+            probs = _k_mc_probabilities(s)
+            header += [f"chance:{n}" for n in names]
+        writer.writerow(header)
+        for i, (r, lab) in enumerate(zip(data.rows, labels)):
+            writer.writerow([int(r)] + [repr(float(v)) for v in s[i]]
+                            + [f"{lab:g}" if isinstance(lab, float) else str(lab)]
+                            + ([] if probs is None else [repr(float(v)) for v in probs[i]]))
+    elif doc["task"] == "margin":
         labels = training.predicted_labels(doc, s)
         writer.writerow(["row", "score", "label"])
         for r, v, lab in zip(data.rows, s, labels):
@@ -487,6 +534,12 @@ def cmd_sweep(args) -> int:
     _sweep_options(args)
     checked = check_file(spec_path)
     training.require_trainable(checked)
+    if checked.task == "multiclass":
+        tb = checked.spec.table
+        raise SpecError((Diagnostic("E410", f"`sweep` does not yet take a target with classes (this one has "
+                                    f"{len(tb.classes)})", tb.target_span or tb.span,
+                                    hint="fit each setting with `objc fit --set NAME=VALUE` and compare them with "
+                                         "`objc eval`", source_name=checked.source.name),), checked.source)
     requests = _sweep_requests(args, checked)
     base = _parse_settings(args.set, checked)
     data_path = Path(args.data) if args.data else None

@@ -70,3 +70,21 @@ def fail(code: str, message: str, span: Span = NO_SPAN, hint: str = "", source: 
          source_name: str = "") -> SpecError:
     """Build a SpecError with a single diagnostic (callers `raise fail(...)`)."""
     return SpecError((Diagnostic(code, message, span, "error", hint, (), source_name),), source)
+
+
+
+# a score the checker calls affine that the score's decomposition (objc/score_form.py), which every
+# backend and every metric uses, cannot read: an error of `objc check` itself
+SCORE_FORM_CODE = "E306"
+
+# A backend's refusal of a spec the checker accepts, by kind, and its code (docs/language.md
+# section 14). The NumPy backend raises `NotSupported` with one of these kinds; `objc check` reports it
+# before any training (W321 names the code) and `objc fit` / `objc build` refuse with the same code.
+NUMPY_REFUSAL_CODES: dict[str, str] = {
+    "constraint": "E403",  # a `keep` it cannot project on (not a sign, bound, box, L1 or L2 ball)
+    "expression": "E405",  # a piece of a term it has no derivative for (data or x inside a penalty, ...)
+    "penalty": "E407",  # a penalty term that reads several (or no) selections of the learned parameters
+    "aggregate": "E408",  # a term mixing per-row aggregates with other expressions
+    "feature": "E409",  # a feature the generated module cannot compute
+    "score": SCORE_FORM_CODE,
+}

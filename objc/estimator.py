@@ -85,6 +85,10 @@ def _checked(text: str, name: str) -> CheckedObjective:
         training.require_trainable(checked)
     except SpecError as err:
         raise _as_input_error(err) from None
+    if checked.task == "multiclass":
+        raise _error("E467", "the estimator class trains specs with a +1/-1 or a real target; this spec's target "
+                     f"has {len(checked.spec.table.classes)} classes", name,
+                     hint="train it with `objc fit` or objc.fit_spec (both take a target with classes)")
     return checked
 
 

@@ -11,7 +11,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from objc.checker import CheckedObjective, EvalEnv, evaluate
-from objc.score_form import ScoreForm, design
+from objc.score_form import ScoreForm, class_scores, design
 
 
 @dataclass(frozen=True)
@@ -64,14 +64,21 @@ def params_from_theta(form: ScoreForm, theta: np.ndarray) -> dict[str, np.ndarra
                      else float(theta[s.start])) for s in form.slots}
 
 
-def objective_terms(checked: CheckedObjective, form: ScoreForm, X: np.ndarray, y: np.ndarray,
+def objective_terms(checked: CheckedObjective, form: ScoreForm | None, X: np.ndarray, y: np.ndarray,
                     weights: np.ndarray, params: dict[str, np.ndarray | float],
                     tunables: dict[str, float] | None = None) -> tuple[float, tuple[float, ...]]:
-    """The objective and each goal term at `params`, evaluated from the typed tree."""
-    A, off = design(form, X, y)
-    score = A @ theta_from_params(form, params) + off
-    env = EvalEnv(list(form.input_names), dict(params), {n: X[:, i] for i, n in enumerate(form.input_names)}, y,
-               score, dict(tunables or {}), weights)
+    """The objective and each goal term at `params`, evaluated from the typed tree (`form` is None
+    for a multiclass score W . x + b, whose K scores per row come from `class_scores`)."""
+    if form is None:
+        score = class_scores(checked, params, X)
+        # a multiclass goal reads the inputs only through its score: the columns need no names
+        input_names: tuple[str, ...] = tuple(f"_input{j}" for j in range(X.shape[1]))
+    else:
+        A, off = design(form, X, y)
+        score = A @ theta_from_params(form, params) + off
+        input_names = form.input_names
+    env = EvalEnv(list(input_names), dict(params), {n: X[:, i] for i, n in enumerate(input_names)}, y,
+                  score, dict(tunables or {}), weights)
     with np.errstate(over="ignore"):
         values = tuple(float(np.sum(evaluate(t.expr, env))) for t in checked.terms)
     return float(sum(values)), values

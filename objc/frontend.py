@@ -2,10 +2,11 @@
 
 from __future__ import annotations
 
+from dataclasses import replace
 from pathlib import Path
 
 from objc.checker import CheckedObjective, check
-from objc.diagnostics import Diagnostic, SpecError
+from objc.diagnostics import SCORE_FORM_CODE, Diagnostic, SpecError
 from objc.resolve import resolve
 from objc.source_text import SourceText, Span, decode_spec_bytes, first_unencodable, position_at
 from objc.spec_parser import parse
@@ -27,12 +28,31 @@ def check_text(text: str, source_name: str = "<spec>") -> CheckedObjective:
     tree = parse(source)
     try:
         resolved = resolve(tree, source)
-        return check(resolved, source)
+        return _with_score_form(check(resolved, source))
     except RecursionError:
         # custom losses are inlined where used, so a long chain of them can nest deeper than the parser saw
         raise SpecError((Diagnostic("E106", "the spec nests too deeply once its custom losses are expanded",
                                     Span(1, 1, 1, 2), hint="define fewer losses in terms of each other",
                                     source_name=source_name),), source) from None
+
+
+def _with_score_form(checked: CheckedObjective) -> CheckedObjective:
+    """`checked` with an error (E306) when its score, affine to the checker, cannot be read as blocks
+    of the learned parameters (objc/score_form.py): every backend and every metric reads the score that
+    way, so no backend could train it, and `check` says so before any training."""
+    spec = checked.spec
+    # a score over classes has its own reading (the multiclass backends), not score_form's
+    if checked.errors or spec.score is None or checked.task not in ("margin", "residual"):
+        return checked
+    from objc.score_form import score_form
+    try:
+        score_form(checked, tuple(spec.table.explicit_inputs() or ()) if spec.table is not None else ())
+    except ValueError as err:
+        return replace(checked, errors=checked.errors + (Diagnostic(
+            SCORE_FORM_CODE, f"no backend can train this score: {err}", spec.score.span,
+            hint="write the score as a sum of terms w . x, w[name] * data, a learned number, and data",
+            source_name=checked.source.name),))
+    return checked
 
 
 def check_file(path: str | Path) -> CheckedObjective:

@@ -13,7 +13,7 @@ from objc import typed_tree as tt
 from objc.catalog import CATALOG, GROUP_NORM
 from objc.diagnostics import Diagnostic, SpecError
 from objc.source_text import SourceText, Span
-from objc.typed_tree import ROWS, SCALAR, Shape
+from objc.typed_tree import CLASSES, ROW_CLASSES, ROWS, SCALAR, WEIGHTS, Shape
 
 _ORDER = {"const": 0, "data": 1, "params": 2}
 BUILTIN_INPUTS = "x"
@@ -102,7 +102,8 @@ class _Resolver:
             elif isinstance(s, st.LearnStmt):
                 for item in s.items:
                     if claim(item.name, item.span, "learned parameter"):
-                        self.params[item.name] = tt.Parameter(item.name, item.over_inputs, item.span)
+                        self.params[item.name] = tt.Parameter(item.name, item.over_inputs, item.span,
+                                                              item.by_classes)
             elif isinstance(s, st.LossStmt):
                 if claim(s.name, s.span, "loss"):
                     self.losses[s.name] = s
@@ -120,7 +121,46 @@ class _Resolver:
                     continue
                 self._table_clause(s, table_parts, claim)
         if "name" in table_parts:
+            self._class_weights_by_label(table_parts)
             self.table = tt.TableBinding(**table_parts)
+        self._classes_parameters()
+
+    def _class_weights_by_label(self, parts: dict) -> None:
+        """Class weights of a `classes` target name its labels; of a +1/-1 target, +1 and -1."""
+        raw = parts.pop("_class_weight_items", ())
+        classes = parts.get("classes", ())
+        if classes:
+            known = {_label_key(c): c for c in classes}
+            out = []
+            for cw in raw:
+                if _label_key(cw.label) not in known:
+                    self.error("E212", f"class weight for {_label_text(cw.label)}, which is not one of the target's "
+                               f"classes ({', '.join(_label_text(c) for c in classes)})", cw.span,
+                               hint="name a class as the `target ... classes` clause lists it")
+                elif any(_label_key(cw.label) == _label_key(o) for o, _w in out):
+                    self.error("E212", f"class {_label_text(cw.label)} is given two class weights", cw.span)
+                else:
+                    out.append((known[_label_key(cw.label)], cw.weight))
+            if raw:
+                parts["class_label_weights"] = tuple(out)
+                parts.pop("class_weights", None)
+            return
+        for cw in raw:
+            if cw.label not in (1.0, -1.0):
+                self.error("E212", f"class weights are given for labels +1 and -1, not {_label_text(cw.label)}",
+                           cw.span, hint="a class named by its label needs a target with classes: "
+                           "target COLUMN classes a, b, c" if isinstance(cw.label, str) else "")
+
+    def _classes_parameters(self) -> None:
+        """A parameter `by classes` needs a target with classes (E253)."""
+        if self.table is not None and self.table.classes:
+            return
+        for p in self.params.values():
+            if p.by_classes:
+                self.error("E253", f"'{p.name}' is learned by classes, but the target has no classes", p.span,
+                           hint="list the classes in the table block: target kind classes a, b, c (three or "
+                           "more); for two classes map them to +1 and -1 (target late: yes -> +1, no -> -1) and "
+                           f"learn {p.name} {'over inputs' if p.vector else ''}".rstrip())
 
     def _table_clause(self, s, parts: dict, claim) -> None:
         def once(key: str, what: str) -> bool:
@@ -133,6 +173,8 @@ class _Resolver:
             if once("target", "a target"):
                 parts["target"] = s.column
                 parts["target_span"] = s.span
+                if s.classes:
+                    self._target_classes(s, parts)
                 if s.labels:
                     values = [p.value for p in s.labels]
                     for p in s.labels:
@@ -161,13 +203,13 @@ class _Resolver:
                 parts["row_weight"], parts["row_weight_span"] = s.column, s.span
         elif isinstance(s, st.ClassWeightClause):
             if once("class_weights", "class weights"):
+                parts["_class_weight_items"] = s.weights  # checked against the target once it is known
                 for cw in s.weights:
-                    if cw.label not in (1.0, -1.0):
-                        self.error("E212", f"class weights are given for labels +1 and -1, not {cw.label:g}", cw.span)
                     if cw.weight < 0:
                         self.error("E213", f"class weight {cw.weight:g} is negative; weights must be >= 0", cw.span,
                                    hint="a negative weight would reward errors and break convexity")
-                parts["class_weights"] = tuple((cw.label, cw.weight) for cw in s.weights)
+                parts["class_weights"] = tuple((cw.label, cw.weight) for cw in s.weights
+                                               if not isinstance(cw.label, str))
                 parts["class_weights_span"] = s.span
         elif isinstance(s, st.StandardizeClause):
             parts["standardize"] = True
@@ -203,6 +245,24 @@ class _Resolver:
                     made = tt.map_fixed_names(m) or ()
                     self.groups[m.name] = made
                     parts["groups"] = tuple(parts.get("groups", ())) + ((m.name, made),)
+
+    def _target_classes(self, s: st.TargetClause, parts: dict) -> None:
+        """`target kind classes a, b, c`: three or more distinct labels (E254)."""
+        labels = tuple(v for v, _span in s.classes)
+        keys = [_label_key(v) for v in labels]
+        for k, (v, span) in enumerate(s.classes):
+            if keys[k] in keys[:k]:
+                self.error("E254", f"class {_label_text(v)} is listed twice", span, hint="list each class once")
+                return
+        if len(labels) < 3:
+            listed = ", ".join(_label_text(v) for v in labels)
+            pair = (f"target {s.column}: {_label_text(labels[0])} -> +1, {_label_text(labels[1])} -> -1"
+                    if len(labels) == 2 else f"target {s.column}: yes -> +1, no -> -1")
+            self.error("E254", f"a target with classes needs three or more; this lists {len(labels)} ({listed})",
+                       s.span, hint=f"for two classes map them to +1 and -1: {pair}, with a margin loss such as "
+                       "logistic(y * s)")
+            return
+        parts["classes"] = labels
 
     def _feature_map(self, s: st.MapClause) -> tt.FeatureMap | None:
         """A map clause with its settings checked (E251: which settings; E252: their values)."""
@@ -389,6 +449,10 @@ class _Resolver:
                 return bad  # the operand is already reported; its stand-in value says nothing of its shape
             if inner.shape.kind == "rows":
                 over = "rows"
+            elif inner.shape.kind == "rowclasses":
+                self.error("E221", f"`{e.kind}` needs one value per row; this is {inner.shape.describe()}", e.span,
+                           hint=f"apply a multiclass loss first: {e.kind} softmax_ce(s, y)")
+                return bad
             elif inner.shape.kind == "vector" and e.kind == "perrow":
                 self.error("E250", "`perrow` divides by the number of rows, so it needs one value per row; this is "
                            f"{inner.shape.describe()}", e.span,
@@ -424,7 +488,7 @@ class _Resolver:
             return tt.TunableRef(n, t.default, t.low, t.high, e.span)
         if n in self.params:
             p = self.params[n]
-            shape = Shape("vector", None) if p.vector else SCALAR
+            shape = (WEIGHTS if p.vector else CLASSES) if p.by_classes else Shape("vector", None) if p.vector else SCALAR
             return tt.ParamRef(n, p.vector, e.span, shape)
         if self.score_stmt is not None and n == self.score_stmt.name:
             if where == "score":
@@ -497,6 +561,15 @@ class _Resolver:
             return a
         if a.kind == b.kind == "rows":
             return ROWS
+        if {a.kind, b.kind} <= {"rowclasses", "classes"} and "rowclasses" in (a.kind, b.kind) and e.op in "+-":
+            return ROW_CLASSES  # W . x + b: an intercept per class added to every row's K scores
+        if "rowclasses" in (a.kind, b.kind) and "rows" in (a.kind, b.kind):
+            self.error("E230", f"cannot combine {a.describe()} with {b.describe()}: with a target with classes the "
+                       "score gives K values per row, and y holds each row's class, so y * s and y - s have no "
+                       "meaning here", e.span,
+                       hint="use a multiclass loss of the score and the target: softmax_ce(s, y), cs_hinge(s, y) or "
+                            "ww_hinge(s, y)")
+            return None
         if a.kind == b.kind == "vector":
             if a.names is not None and b.names is not None and len(a.names) != len(b.names):
                 self.error("E229", f"vectors of different lengths ({len(a.names)} and {len(b.names)})", e.span)
@@ -509,6 +582,18 @@ class _Resolver:
 
     def _dot(self, left: tt.TExpr, right: tt.TExpr, span: Span) -> tt.TExpr | None:
         kinds = {left.shape.kind, right.shape.kind}
+        if kinds == {"weights", "matrix"}:
+            mat = right if left.shape.kind == "weights" else left
+            if mat.shape.names is not None:
+                self.error("E231", "a weight matrix learned by classes runs over every input; dot it with the whole "
+                           "x", span, hint="write W . x")
+                return None
+            return tt.Dot(left, right, span, ROW_CLASSES, _max_dep(left, right))
+        if "weights" in kinds or "classes" in kinds:
+            self.error("E232", f"a parameter learned by classes enters the score as W . x + b (W over inputs by "
+                       f"classes, b by classes); got {left.shape.describe()} . {right.shape.describe()}", span,
+                       hint="write score s = W . x + b")
+            return None
         if kinds == {"vector", "matrix"}:
             vec = left if left.shape.kind == "vector" else right
             mat = right if vec is left else left
@@ -613,6 +698,30 @@ class _Resolver:
                 self.error("E228", "x is the input matrix; it can only appear in a dot product such as w . x",
                            a.span, hint="write w . x")
                 return bad
+        if entry.role == "multiclass":
+            return self._multiclass_loss(e, entry, args) or bad
+        if entry.kind == "norm" and args[0].shape.kind in ("weights", "classes"):
+            a = args[0]
+            if not entry.on_class_matrix or (entry.name == "l2" and a.shape.kind == "weights"):
+                ok = [n for n, en in CATALOG.items() if en.on_class_matrix and en.trainable
+                      and (a.shape.kind == "classes" or n != "l2")]
+                self.error("E240", f"{e.func} does not apply to {a.shape.describe()}", e.span,
+                           hint="norms of a parameter learned by classes: " + ", ".join(f"{n}({render_name(a)})"
+                                                                              for n in ok))
+                return bad
+            return tt.Apply(entry.name, args, tuple(options.items()), e.span, SCALAR, a.depends, tuple(tuned))
+        if entry.on_class_matrix == "only":
+            self.error("E240", f"{e.func} sums the L2 norm of each input's weights across the classes; it takes a "
+                       "weight matrix learned by classes (learn W over inputs by classes)", e.span,
+                       hint=f"write {e.func}(W); for a weight vector, group_l2(w) or l2(w)")
+            return bad
+        for a in args:
+            if a.shape.kind in ("weights", "classes", "rowclasses"):
+                self.error("E230", f"{e.func} takes a number or one value per row; its argument is "
+                           f"{a.shape.describe()}", a.span,
+                           hint="the K scores of a row go into a multiclass loss (softmax_ce(s, y), cs_hinge(s, y), "
+                                "ww_hinge(s, y)); a parameter learned by classes into a norm such as l2sq(W)")
+                return bad
         if entry.kind == "norm":
             a = args[0]
             if a.shape.kind != "vector":
@@ -634,6 +743,50 @@ class _Resolver:
                     return bad
                 shape = a.shape
         return tt.Apply(entry.name, args, tuple(options.items()), e.span, shape, _max_dep(*args), tuple(tuned))
+
+    def _multiclass_loss(self, e: st.Call, entry, args: tuple[tt.TExpr, ...]) -> tt.TExpr | None:
+        """softmax_ce(s, y) and the multiclass hinges: the K scores of each row and the row's class."""
+        s, y = args
+        example = f"{e.func}(s, y)"
+        if self.table is None or not self.table.classes:
+            self.error("E255", f"{e.func} is a loss over K >= 3 classes, but the target has no classes", e.span,
+                       hint="list the classes (target kind classes a, b, c) and learn W over inputs by classes, b "
+                            "by classes; for a +1/-1 target use a margin loss such as logistic(y * s) or hinge(y * s)")
+            return None
+        if s.shape.kind != "rowclasses":
+            why = ("; a weight vector gives one score per row: learn W over inputs by classes"
+                   if s.shape.kind == "rows" else "")
+            self.error("E255", f"the first argument of {e.func} is the K scores of each row (a score W . x + b with "
+                       f"W learned by classes); it is {s.shape.describe()}{why}", e.args[0].span,
+                       hint=f"learn W over inputs by classes, b by classes; score s = W . x + b; then {example}")
+            return None
+        if not (isinstance(y, tt.DataRef) and y.kind == "target"):
+            self.error("E255", f"the second argument of {e.func} is the target y (each row's class)", e.args[1].span,
+                       hint=f"write {example}")
+            return None
+        return tt.Apply(entry.name, args, (), e.span, ROWS, "params")
+
+    def _normalized_like_rows(self, goal: tt.TExpr) -> tt.TExpr:
+        """A data-scaled norm (dropridge) averages the rows exactly as the goal's per-row loss does: it
+        takes the one row aggregate of the goal (mean, perrow or sum) and is refused when there is none
+        or several kinds."""
+        uses = _second_moment_uses(goal)
+        if not uses:
+            return goal
+        kinds = sorted({a.kind for a in _row_aggregates(goal)})
+        if len(kinds) != 1:
+            said = ("the goal has no per-row term (mean, sum or perrow over the rows)" if not kinds else
+                    f"the goal's per-row terms use {' and '.join(kinds)}")
+            self.error("E270", f"{uses[0].entry} averages its inputs' squares over the rows the way the goal's "
+                       f"per-row loss does, and {said}", uses[0].span,
+                       hint="use one of mean, sum or perrow for every per-row term of the goal")
+            return goal
+        kind = kinds[0]
+
+        def bind(e: tt.TExpr) -> tt.TExpr:
+            e = tt.map_children(e, bind)
+            return replace(e, rows=kind) if isinstance(e, tt.Apply) and CATALOG[e.entry].reads_second_moments else e
+        return bind(goal)
 
     def _tunable_setting(self, e: st.Expr, loss_env) -> tt.TunableRef | None:
         """The tunable a setting or exponent names, if it is a bare tunable name (not a loss's variable)."""
@@ -700,6 +853,11 @@ class _Resolver:
             self.error("E237", f"{GROUP_NORM} takes one argument (a weight vector)", e.span)
             return None
         arg = self.expr(e.args[0], loss_env, where)
+        if isinstance(arg, tt.ParamRef) and arg.shape.kind in ("weights", "classes"):
+            self.error("E240", f"{GROUP_NORM} sums norms over groups of a weight vector; for a matrix learned by "
+                       "classes, inputs_l2(W) sums the norm of each input's weights across the classes", e.span,
+                       hint="write inputs_l2(W)")
+            return None
         if not (isinstance(arg, tt.ParamRef) and arg.vector and arg.shape.names is None):
             self.error("E240", f"{GROUP_NORM} takes the whole weight vector, e.g. {GROUP_NORM}(w)", e.span)
             return None
@@ -719,10 +877,13 @@ class _Resolver:
         self.declare()
         if self.score_stmt is not None:
             expr = self.expr(self.score_stmt.expr, None, "score")
-            if expr.shape.kind not in ("rows", "scalar"):
-                self.error("E243", f"the score must give one value per row; it is {expr.shape.describe()}",
-                           self.score_stmt.expr.span, hint="write score s = w . x + b")
-            self.score = tt.ScoreRef(self.score_stmt.name, expr, self.score_stmt.span)
+            if expr.shape.kind not in ("rows", "scalar", "rowclasses"):
+                self.error("E243", f"the score must give one value per row (or, with classes, K values per row); "
+                           f"it is {expr.shape.describe()}", self.score_stmt.expr.span,
+                           hint="write score s = W . x + b" if self.table is not None and self.table.classes
+                           else "write score s = w . x + b")
+            self.score = tt.ScoreRef(self.score_stmt.name, expr, self.score_stmt.span,
+                                     ROW_CLASSES if expr.shape.kind == "rowclasses" else ROWS)
         goals = [s for s in self.tree.statements if isinstance(s, st.GoalStmt)]
         goal: tt.TExpr = tt.Const(0.0, Span(1, 1, 1, 2))
         goal_span = Span(1, 1, 1, 2)
@@ -733,7 +894,7 @@ class _Resolver:
             for extra in goals[1:]:
                 self.error("E245", "a spec has one goal; add terms to it with + instead", extra.span)
             goal_span = goals[0].span
-            goal = self.expr(goals[0].expr)
+            goal = self._normalized_like_rows(self.expr(goals[0].expr))
             if goal.shape.kind != "scalar":
                 self.error("E246", f"the goal must be a single number; it is {goal.shape.describe()}",
                            goals[0].expr.span, hint="wrap per-row losses in mean or sum: mean hinge(y * s)")
@@ -744,6 +905,10 @@ class _Resolver:
         for s in self.tree.statements:
             if isinstance(s, st.KeepStmt):
                 left, right = self.expr(s.left, None, "keep"), self.expr(s.right, None, "keep")
+                for use in _second_moment_uses(left) + _second_moment_uses(right):
+                    self.error("E271", f"{use.entry} is a penalty that reads the training rows; it cannot bound "
+                               "the weights in a `keep` constraint", use.span,
+                               hint="move it into the goal, or bound l2sq(w) instead")
                 constraints.append(tt.Constraint(left, s.op, right, s.span))
         for name, stmt in self.losses.items():  # a loss defined but never used is still checked
             self.expr(stmt.expr, {stmt.param: tt.Const(0.0, stmt.span)}, "loss")
@@ -753,6 +918,33 @@ class _Resolver:
         return tt.ResolvedSpec(self.source.name, self.source.text, self.table, tuple(self.tunables.values()),
                                tuple(self.params.values()), self.score, goal, goal_span, tuple(constraints),
                                tuple(self.losses))
+
+
+def render_name(e: tt.TExpr) -> str:
+    return e.name if isinstance(e, tt.ParamRef) else "W"
+
+
+def _row_aggregates(e: tt.TExpr) -> list[tt.Aggregate]:
+    found = [e] if isinstance(e, tt.Aggregate) and e.over == "rows" else []
+    for child in tt.children(e):
+        found += _row_aggregates(child)
+    return found
+
+
+def _second_moment_uses(e: tt.TExpr) -> list[tt.Apply]:
+    found = [e] if isinstance(e, tt.Apply) and CATALOG[e.entry].reads_second_moments else []
+    for child in tt.children(e):
+        found += _second_moment_uses(child)
+    return found
+
+
+def _label_key(v: str | float) -> tuple[str, str | float]:
+    """A class label compared as the table holds it: text with text, numbers with numbers."""
+    return ("text", v) if isinstance(v, str) else ("number", float(v))
+
+
+def _label_text(v: str | float) -> str:
+    return v if isinstance(v, str) else f"{v:g}"
 
 
 def _softplus_form(name: str, args: tuple[tt.TExpr, ...]) -> tt.TExpr | None:

@@ -59,9 +59,12 @@ class ScoreForm:
 
 def layout(checked: CheckedObjective, input_names: tuple[str, ...]) -> tuple[Slot, ...]:
     slots, start = [], 0
+    k = len(checked.spec.table.classes) if checked.spec.table is not None else 0
     for p in checked.spec.parameters:
         size = len(input_names) if p.vector else 1
-        slots.append(Slot(p.name, p.vector, start, size))
+        if p.by_classes:  # W: inputs x K, b: K (stored as such; flattened here only to be counted)
+            size *= k
+        slots.append(Slot(p.name, p.vector or p.by_classes, start, size))
         start += size
     return tuple(slots)
 
@@ -106,6 +109,8 @@ def score_form(checked: CheckedObjective, input_names: tuple[str, ...]) -> Score
 
     if checked.spec.score is None:
         raise ValueError("the spec has no score")
+    if any(p.by_classes for p in checked.spec.parameters):
+        raise ValueError("a score with classes is W . x + b; see class_scores")
     walk(checked.spec.score.expr, 1.0, None)
     slots = layout(checked, input_names)
     vec_blocks = [b for b in blocks if b.dot]
@@ -118,6 +123,27 @@ def score_form(checked: CheckedObjective, input_names: tuple[str, ...]) -> Score
     return ScoreForm(slots, tuple(input_names), tuple(blocks), tuple(offset), standard,
                      vec_blocks[0].param if standard else None,
                      scalar_blocks[0].param if standard and scalar_blocks else None)
+
+
+@dataclass(frozen=True, eq=False)
+class ClassScoreForm:
+    """The score of a multiclass spec, W . x + b: K scores per row, read by `class_scores`."""
+
+    checked: CheckedObjective
+    input_names: tuple[str, ...]
+    weights_name: str
+    intercept_name: str | None
+
+
+def class_scores(checked: CheckedObjective, params: dict, X: np.ndarray) -> np.ndarray:
+    """The K scores of every row (rows x K) of a multiclass score W . x + b."""
+    from objc.checker import multiclass_form
+    form = multiclass_form(checked.spec)
+    if form is None:
+        raise ValueError("the score is not W . x + b with W and b learned by classes")
+    W = np.asarray(params[form[0]], dtype=np.float64)
+    S = np.asarray(X, dtype=np.float64) @ W
+    return S + np.asarray(params[form[1]], dtype=np.float64) if form[1] else S
 
 
 def data_env(X: np.ndarray, y: np.ndarray, input_names: tuple[str, ...]) -> EvalEnv:

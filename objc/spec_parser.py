@@ -23,7 +23,7 @@ STATEMENT_KEYWORDS = ("table", "target", "inputs", "feature", "rowweight", "clas
                       "holdout", "validate", "missing", "group", "onehot", "powers", "monomials", "pairs", "spline",
                       "fourier", "tune", "learn", "score", "loss", "goal", "keep")
 RESERVED_WORDS = STATEMENT_KEYWORDS + ("from", "like", "all", "except", "seed", "on", "within", "over",
-                                       "mean", "sum", "perrow")
+                                       "mean", "sum", "perrow", "classes", "by")
 
 # Friendly words for lark's terminal names, used in "expected ..." messages.
 _TERMINAL_WORDS = {
@@ -167,6 +167,9 @@ class _ToTree(Transformer):
         labels = tuple(x for x in c[1:] if x is not None)
         return st.TargetClause(c[0][0], labels, _span(meta))
 
+    def target_classes(self, meta, c):
+        return st.TargetClause(c[0][0], (), _span(meta), tuple(c[1:]))
+
     def input_pattern(self, meta, c):
         return st.InputItem("pattern", _unquote(c[0]), _span(meta))
 
@@ -189,6 +192,10 @@ class _ToTree(Transformer):
 
     def class_weight(self, meta, c):
         return st.ClassWeight(c[0], c[1], _span(meta))
+
+    def class_weight_label(self, meta, c):
+        # a class of a `classes` target named by its label (text), e.g. classweight setosa = 2
+        return st.ClassWeight(_unquote(c[0]) if c[0].type == "STRING" else str(c[0]), c[1], _span(meta))
 
     def classweight_clause(self, meta, c):
         return st.ClassWeightClause(tuple(c), _span(meta))
@@ -261,6 +268,12 @@ class _ToTree(Transformer):
 
     def learn_vector(self, meta, c):
         return st.LearnItem(str(c[0]), True, _span(meta))
+
+    def learn_matrix(self, meta, c):
+        return st.LearnItem(str(c[0]), True, _span(meta), True)
+
+    def learn_classes(self, meta, c):
+        return st.LearnItem(str(c[0]), False, _span(meta), True)
 
     def learn_stmt(self, meta, c):
         return st.LearnStmt(tuple(c), _span(meta))

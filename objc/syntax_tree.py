@@ -101,6 +101,8 @@ class TargetClause:
     column: str
     labels: tuple[LabelPair, ...]
     span: Span
+    # `target kind classes a, b, c`: the class labels as the table writes them, in class order
+    classes: tuple[tuple[str | float, Span], ...] = ()
 
 
 @dataclass(frozen=True)
@@ -132,7 +134,7 @@ class RowWeightClause:
 
 @dataclass(frozen=True)
 class ClassWeight:
-    label: float
+    label: float | str  # text only for a class of a `classes` target
     weight: float
     span: Span
 
@@ -210,6 +212,7 @@ class LearnItem:
     name: str
     over_inputs: bool
     span: Span
+    by_classes: bool = False  # one entry (or one weight vector) per class of a `classes` target
 
 
 @dataclass(frozen=True)

@@ -81,7 +81,7 @@ from objc.source_text import NO_SPAN, Span
 from objc.typed_tree import (DerivedFeature, LabelMap, TableBinding, map_exponents, map_knot_name, map_knot_of,
                               map_product_name)
 
-Task = Literal["margin", "residual"]
+Task = Literal["margin", "residual", "multiclass"]
 
 MAX_ROWS_LISTED = 5
 _ROW_NOTE = "rows count data records from 1 (a CSV header line is not counted)"
@@ -129,6 +129,7 @@ class BoundData:
     warnings: tuple[Diagnostic, ...] = ()
     unscaled: tuple[str, ...] = ()  # inputs `standardize` leaves as they are (onehot's 0/1 indicators)
     maps: tuple[dict, ...] = ()  # each feature map's fitted state as plain data (categories, knots, draws)
+    classes: tuple[str | float, ...] = ()  # multiclass: the class labels in order; y holds 0 .. K-1
 
     @property
     def n_rows(self) -> int:
@@ -673,18 +674,19 @@ class _Pick:
 def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name: str = "",
                data_path: Path | None = None, standardization: Standardization | None = None,
                input_names: tuple[str, ...] | None = None, file_span: Span | None = None,
-               need_target: bool = True, both_classes: bool = True, frame: pd.DataFrame | None = None
-               ) -> BoundData:
+               need_target: bool = True, both_classes: bool = True, frame: pd.DataFrame | None = None,
+               fourier_draws: Mapping[str, Mapping[str, object]] | None = None) -> BoundData:
     """Read the binding's table and return checked solver arrays.
 
     `data_path` replaces the spec's path (taken as given, not relative to `spec_dir`); `file_span`
     is the clause that named it (default: the `table` line). `standardization` applies saved stats
     instead of computing them; `input_names` selects exactly those inputs in that order (a saved
-    model's schema). `need_target=False` ignores the target (y is NaN; for predicting on new rows);
+    model's schema), and `fourier_draws` the draws it saved for each `fourier` map by name (else they
+    come from the map's seed). `need_target=False` ignores the target (y is NaN; for predicting on new rows);
     `both_classes=False` accepts a margin target holding one class (evaluating on a slice).
     """
-    if task not in ("margin", "residual"):
-        raise ValueError(f"task must be 'margin' or 'residual', not {task!r}")
+    if task not in ("margin", "residual", "multiclass"):
+        raise ValueError(f"task must be 'margin', 'residual' or 'multiclass', not {task!r}")
     if frame is not None:
         path, shown = Path("<DataFrame>"), "the DataFrame given"
     elif data_path is not None:
@@ -833,6 +835,8 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
             diags.append(where.diag("T134", f"target {_q(target)} is real (residual losses); a label map does "
                                     "not apply", binding.label_map.span, "remove the `: value -> label` part"))
         y = floats[target][keep]
+    elif task == "multiclass":
+        y = _class_target(table[target][keep], rows, target, binding, where, diags)
     else:
         y = _margin_target(table[target][keep], rows, target, binding, where, diags, both_classes)
     weights = np.ones(n)
@@ -847,6 +851,10 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
             diags.append(where.diag("T141", f"every row weight in {_q(binding.row_weight)} of {_q(shown)} is zero",
                                     weight_span))
         weights = weights * rw
+    if binding.class_label_weights and task == "multiclass" and target is not None:
+        index = {_class_key(c): k for k, c in enumerate(binding.classes)}
+        for label, w in binding.class_label_weights:
+            weights = np.where(y == index[_class_key(label)], weights * w, weights)
     if binding.class_weights:
         cw_span = binding.class_weights_span or binding.span
         if task == "residual":
@@ -880,7 +888,7 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
     fitted_maps: list[dict] = []
     if binding.maps:
         picks = _map_inputs(binding, map_plain, picks, values, table, keep, rows, input_names, where, unscaled,
-                            fitted_maps)
+                            fitted_maps, fourier_draws or {})
 
     names = tuple(p.name for p in picks)
     X = np.empty((n, len(names)), dtype=np.float64)
@@ -903,17 +911,19 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
                                                      and binding.label_map.pairs) else None,
                      standardization=standardization, source=path, rows=_frozen(rows), task=task,
                      dropped=n_all - n, file_label=shown, standardization_fitted=fitted, warnings=tuple(warnings),
-                     unscaled=tuple(unscaled), maps=tuple(fitted_maps))
+                     unscaled=tuple(unscaled), maps=tuple(fitted_maps),
+                     classes=tuple(binding.classes) if task == "multiclass" else ())
 
 
 def _map_inputs(binding: TableBinding, map_plain: list[dict], picks: list[_Pick], values: dict[str, np.ndarray],
                 table: Mapping[str, np.ndarray], keep: np.ndarray, rows: np.ndarray,
                 input_names: tuple[str, ...] | None, where: _Where, unscaled: list[str],
-                fitted_maps: list[dict]) -> list[_Pick]:
+                fitted_maps: list[dict], fourier_draws: Mapping[str, Mapping[str, object]]) -> list[_Pick]:
     """Compute every map on the kept rows into `values`; the picks with the maps' inputs (appended,
     or, for a saved schema, those it names). A map's state comes from these rows when fitting, from
-    the saved input names otherwise (categories and knots are written in them; fourier's draws come
-    from its seed)."""
+    the saved input names otherwise (categories and knots are written in them; fourier's draws from
+    `fourier_draws`, which a saved model holds so that no change of NumPy's random streams can alter
+    them, else from the map's seed)."""
     diags: list[Diagnostic] = []
     taken = {p.name for p in picks if not p.mapped}
     made: dict[str, Span] = {}
@@ -941,6 +951,14 @@ def _map_inputs(binding: TableBinding, map_plain: list[dict], picks: list[_Pick]
                     continue
         else:
             state = map_state_from_names(mp, input_names)
+            if m.kind == "fourier" and m.name in fourier_draws:
+                W = np.asarray(fourier_draws[m.name]["W"], dtype=np.float64)
+                b = np.asarray(fourier_draws[m.name]["b"], dtype=np.float64)
+                if W.shape != (m.count, len(m.columns)) or b.shape != (m.count,):
+                    raise SpecError((where.diag("T167", f"the saved draws of `fourier` {m.name} hold {W.shape} and "
+                                                f"{b.shape} numbers, not {m.count} x {len(m.columns)} and {m.count}",
+                                                m.span, "refit the model: its file was edited or damaged"),))
+                state = {"W": W, "b": b}
             for c, bad, cells in map_unseen_rows(mp, state, cols) if m.unseen == "fail" else ():
                 listed = ", ".join(_q(v) for v in cells[:5]) + (", ..." if len(cells) > 5 else "")
                 diags.append(where.diag("T164", f"column {_q(c)} of {_q(where.file)} holds categories not seen in "
@@ -1089,6 +1107,30 @@ def _margin_target(raw: np.ndarray, rows: np.ndarray, target: str, binding: Tabl
             only = "+1" if 1.0 in present else "-1"
             diags.append(where.diag("T132", f"target {_q(target)} in {_q(where.file)} has one class only (every row "
                                     f"is {only}); a margin loss needs both +1 and -1", span))
+    return y
+
+
+def _class_key(v: str | float) -> tuple[str, str | float]:
+    return ("text", v) if isinstance(v, str) else ("number", float(v))
+
+
+def _class_target(raw: np.ndarray, rows: np.ndarray, target: str, binding: TableBinding, where: _Where,
+                  diags: list[Diagnostic]) -> np.ndarray:
+    """Each row's class as 0 .. K-1 (in the order the `classes` clause lists them), as floats."""
+    span = binding.target_span or binding.span
+    y = np.full(len(raw), np.nan)
+    for k, label in enumerate(binding.classes):
+        y[_matches(raw, label)] = float(k)
+    unmatched = np.flatnonzero(np.isnan(y))
+    if len(unmatched):
+        firsts = list(dict.fromkeys(raw[unmatched].tolist()))
+        listed = ", ".join(_value(v) for v in firsts[:5]) + (", ..." if len(firsts) > 5 else "")
+        classes = ", ".join(_spec_literal(c) for c in binding.classes)
+        diags.append(where.diag("T135", f"target {_q(target)} in {_q(where.file)} holds value(s) that are not among "
+                                f"its classes ({classes}): {listed} at {_rows_text(rows[unmatched])}", span,
+                                "add each listed value to the `classes` list (in the order the classes should take), "
+                                "or fix the table; text matches text exactly and numbers match numbers",
+                                rows=True))
     return y
 
 

@@ -19,11 +19,13 @@ from objc.checker import CheckedObjective
 from objc.diagnostics import Diagnostic, SpecError
 from objc.fit_result import FitResult, theta_from_params
 from objc.frontend import check_text
-from objc.score_form import ScoreForm, design, score_form
+from objc.score_form import ClassScoreForm, ScoreForm, class_scores, design, score_form
 from objc.source_text import NO_SPAN
 
 if TYPE_CHECKING:  # pandas is imported by tables at run time; here only for the annotations
     import pandas as pd
+
+    from objc.model_io import SavedModel
 
 Backend = Literal["numpy", "cvxpy"]
 
@@ -102,7 +104,7 @@ def _bind_training(checked: CheckedObjective, spec_dir: Path, data_path: Path | 
 
 def numpy_refusal(checked: CheckedObjective, err) -> SpecError:
     """A spec the NumPy backend cannot train (a `numpy_module.NotSupported`), as a located error."""
-    return SpecError((Diagnostic("E403", f"the NumPy backend cannot train this spec: {err.what}",
+    return SpecError((Diagnostic(err.code, f"the NumPy backend cannot train this spec: {err.what}",
                                  err.span or NO_SPAN, hint="use `--backend cvxpy` (Python: "
                                  "backend=\"cvxpy\")", source_name=checked.source.name),),
                      checked.source)
@@ -178,8 +180,11 @@ def require_finished(checked: CheckedObjective, result: FitResult, max_passes: i
                                 source_name=checked.source.name),), checked.source)
 
 
-def scores(form: ScoreForm, params: dict, X: np.ndarray, y: np.ndarray | None = None) -> np.ndarray:
-    """The score of every row under the learned parameters."""
+def scores(form: ScoreForm | ClassScoreForm, params: dict, X: np.ndarray, y: np.ndarray | None = None
+           ) -> np.ndarray:
+    """The score of every row under the learned parameters (rows x K for a multiclass score)."""
+    if isinstance(form, ClassScoreForm):
+        return class_scores(form.checked, params, X)
     theta = theta_from_params(form, params)
     if form.standard:
         w = theta[form.slot(form.weights_name).start:][:len(form.input_names)]
@@ -230,7 +235,51 @@ def metrics(task: tables.Task, y: np.ndarray, s: np.ndarray, weights: np.ndarray
     trained ones at the settings `tunables` give them). With `losses_for` (sweep keys, see
     `metric_value`) only the figures those keys name are formed (a sweep scores many fits), and the
     0-1 error and accuracy for classification."""
+    if task == "multiclass":
+        return class_metrics(y, s, weights, checked)
     return metrics_of_fits(task, y, np.asarray(s, dtype=float)[:, None], weights, checked, tunables, losses_for)[0]
+
+
+def trains_softmax(checked: CheckedObjective) -> bool:
+    """Whether the goal trains softmax_ce (its scores are then log-odds of class probabilities)."""
+    return any(t.known_loss is not None and t.known_loss[0] == "softmax_ce" for t in checked.terms)
+
+
+def class_metrics(y: np.ndarray, S: np.ndarray, weights: np.ndarray, checked: CheckedObjective) -> dict:
+    """Figures of K scores per row against each row's class (0 .. K-1): the K x K confusion counts
+    (rows the true class, columns the predicted one, the highest score; ties go to the class listed
+    first), per-class precision and recall, the 0-1 error (plain and weighted), the mean of every
+    multiclass loss in the catalog (weighted) and, for a softmax_ce fit, the log loss (plain mean of
+    -log p_y, the probabilities being the softmax of the scores)."""
+    S = np.asarray(S, dtype=float)
+    k = S.shape[1]
+    labels = [c for c in checked.spec.table.classes]
+    true = np.asarray(y).astype(np.int64)
+    pred = np.argmax(S, axis=1)
+    confusion = np.zeros((k, k), dtype=np.int64)
+    np.add.at(confusion, (true, pred), 1)
+    c = np.asarray(weights, dtype=float)
+    wrong = (pred != true).astype(float)
+    per_class = []
+    for j in range(k):
+        called, have = int(confusion[:, j].sum()), int(confusion[j, :].sum())
+        per_class.append({"class": labels[j], "rows": have, "predicted": called,
+                          "precision": float(confusion[j, j] / called) if called else None,
+                          "recall": float(confusion[j, j] / have) if have else None})
+    out: dict = {"rows": int(len(true)), "classes": labels,
+                 "zero_one_error": float(np.mean(wrong)) if len(true) else float("nan"),
+                 "zero_one_error_weighted": float(c @ wrong / np.sum(c)) if np.sum(c) > 0 else float("nan")}
+    out["accuracy"] = 1.0 - out["zero_one_error"]
+    out["class_confusion"] = confusion.tolist()
+    out["per_class"] = per_class
+    losses = {}
+    for name, entry in CATALOG.items():
+        if entry.role == "multiclass":
+            losses[name] = float(c @ entry.value(S, true) / np.sum(c)) if np.sum(c) > 0 else float("nan")
+    out["mean_losses"] = losses
+    if trains_softmax(checked):
+        out["log_loss"] = float(np.mean(CATALOG["softmax_ce"].value(S, true)))
+    return out
 
 
 def metrics_of_fits(task: tables.Task, y: np.ndarray, S: np.ndarray, weights: np.ndarray,
@@ -326,9 +375,11 @@ def model_document(checked: CheckedObjective, spec_path: Path, data: tables.Boun
             "inputs": list(data.input_names),
             "target": data.target,
             "label_map": [[v, l] for v, l in data.label_map.pairs] if data.label_map else None,
+            **({"classes": list(data.classes)} if data.task == "multiclass" else {}),
             "standardization": None if std is None else {"means": list(std.means), "scales": list(std.scales)},
             "training_table": str(data.file_label or data.source),
             "training_table_sha256": _file_hash(data.source),
+            **_fourier_draws(checked, data),
         },
         "tunables": tunables,
         "fit": {
@@ -379,6 +430,24 @@ def checked_from_model(document: dict, model_path: Path) -> CheckedObjective:
     return check_text(document["spec"]["text"], document["spec"]["path"])
 
 
+def checked_for_saved(saved: SavedModel) -> CheckedObjective:
+    """The spec a saved model carries, re-checked, with its arrays held to what that spec learns (a
+    missing or resized array is refused here, not met as a KeyError while scoring)."""
+    from objc.model_io import check_arrays
+    from objc.score_form import layout
+    checked = checked_from_model(saved.document, saved.path)
+    check_arrays(saved, {s.name: s.size for s in layout(checked, saved.input_names)})
+    return checked
+
+
+def _fourier_draws(checked: CheckedObjective, data: tables.BoundData) -> dict:
+    """The random draws of each `fourier` map by name, for the model document: predict rebuilds the map
+    from them, not from the seed (NumPy does not promise the same random stream in every version)."""
+    maps = checked.spec.table.maps if checked.spec.table is not None else ()
+    draws = {m.name: {"W": state["W"], "b": state["b"]} for m, state in zip(maps, data.maps) if m.kind == "fourier"}
+    return {"fourier_draws": draws} if draws else {}
+
+
 def bind_for_model(checked: CheckedObjective, document: dict, table: Path, *, need_target: bool
                    ) -> tables.BoundData:
     """Bind another table by a saved model's schema: same inputs in the same order, stored stats."""
@@ -395,10 +464,15 @@ def bind_for_model(checked: CheckedObjective, document: dict, table: Path, *, ne
     return tables.bind_table(tb, Path("."), document["task"], source_name=str(document["spec"]["path"]),
                              data_path=table,
                              standardization=std, input_names=tuple(schema["inputs"]), need_target=need_target,
-                             both_classes=False)
+                             both_classes=False, fourier_draws=schema.get("fourier_draws"))
 
 
-def form_for(checked: CheckedObjective, input_names: tuple[str, ...]) -> ScoreForm:
+def form_for(checked: CheckedObjective, input_names: tuple[str, ...]) -> ScoreForm | ClassScoreForm:
+    from objc.checker import multiclass_form
+    if checked.task == "multiclass":
+        form = multiclass_form(checked.spec)
+        assert form is not None  # the checker accepts a multiclass spec only with this score
+        return ClassScoreForm(checked, tuple(input_names), form[0], form[1])
     return score_form(checked, input_names)
 
 
@@ -409,7 +483,14 @@ from dataclasses import dataclass  # noqa: E402
 
 def predicted_labels(document: dict, s: np.ndarray) -> np.ndarray:
     """The label of each score (s > 0 is +1) as the table writes it: the first value the spec's label
-    map sends to that label, or +1.0 / -1.0 when the target was already +1/-1."""
+    map sends to that label, or +1.0 / -1.0 when the target was already +1/-1. For K scores per row
+    (a multiclass model) the class of the highest score, as the `classes` clause lists it."""
+    if document["task"] == "multiclass":
+        classes = document["schema"]["classes"]
+        picked = np.argmax(np.asarray(s, dtype=np.float64), axis=1)
+        out = np.empty(len(picked), dtype=object)
+        out[:] = [classes[int(k)] for k in picked]
+        return out.astype(np.float64) if all(not isinstance(c, str) for c in classes) else out
     back: dict[float, object] = {1.0: 1.0, -1.0: -1.0}
     for raw, lab in reversed(document["schema"]["label_map"] or []):
         back[float(lab)] = raw
@@ -461,12 +542,12 @@ class TrainedModel:
         """Labels in the table's own values (through the spec's label map) for a margin loss, the
         prediction itself for a residual loss."""
         s = self.decision_function(X)
-        return predicted_labels(self.document, s) if self.task == "margin" else s
+        return predicted_labels(self.document, s) if self.task in ("margin", "multiclass") else s
 
     def predict_table(self, path: str | Path) -> np.ndarray:
         data = bind_for_model(self.checked, self.document, Path(path), need_target=False)
         s = scores(form_for(self.checked, self.input_names), self.params, data.X)
-        return predicted_labels(self.document, s) if self.task == "margin" else s
+        return predicted_labels(self.document, s) if self.task in ("margin", "multiclass") else s
 
     def save(self, path: str | Path) -> Path:
         from objc.model_io import save_model
@@ -498,7 +579,7 @@ def load_trained(path: str | Path) -> TrainedModel:
     """Read a model that `objc fit` or TrainedModel.save wrote."""
     from objc.model_io import load_model
     saved = load_model(Path(path))
-    return TrainedModel(saved.document, saved.params, checked_from_model(saved.document, saved.path))
+    return TrainedModel(saved.document, saved.params, checked_for_saved(saved))
 
 
 # ---------------------------------------------------------------- sweeps

@@ -14,7 +14,7 @@ from typing import Literal, Mapping, Union
 from objc import syntax_tree as st
 from objc.source_text import Span
 
-ShapeKind = Literal["scalar", "rows", "vector", "matrix"]
+ShapeKind = Literal["scalar", "rows", "vector", "matrix", "classes", "weights", "rowclasses"]
 Depends = Literal["const", "data", "params"]
 
 
@@ -27,11 +27,18 @@ class Shape:
     def describe(self) -> str:
         if self.kind == "vector":
             return "a vector over " + ("all inputs" if self.names is None else ", ".join(self.names))
-        return {"scalar": "a single number", "rows": "one value per row", "matrix": "the input matrix x"}[self.kind]
+        return {"scalar": "a single number", "rows": "one value per row", "matrix": "the input matrix x",
+                "classes": "a vector with one entry per class",
+                "weights": "a matrix with one weight per input and class",
+                "rowclasses": "one value per row and class (K scores per row)"}[self.kind]
 
 
 SCALAR = Shape("scalar")
 ROWS = Shape("rows")
+# a multiclass target's shapes: b by classes, W over inputs by classes, and the score W . x + b
+CLASSES = Shape("classes")
+WEIGHTS = Shape("weights")
+ROW_CLASSES = Shape("rowclasses")
 
 
 # ---------------------------------------------------------------- data bindings
@@ -153,6 +160,10 @@ class TableBinding:
     missing: Literal["fail", "drop"] = "fail"
     groups: tuple[tuple[str, tuple[str, ...]], ...] = ()
     maps: tuple[FeatureMap, ...] = ()
+    # `target kind classes a, b, c`: the class labels as the table writes them, in class order (K >= 3)
+    classes: tuple[str | float, ...] = ()
+    # classweight of a multiclass target: (class label as written, weight)
+    class_label_weights: tuple[tuple[str | float, float], ...] = ()
 
     def explicit_inputs(self) -> tuple[str, ...] | None:
         """Input names when every input is named outright (no pattern, no `all`, no map whose
@@ -202,7 +213,8 @@ class DataRef:
 
 @dataclass(frozen=True)
 class ParamRef:
-    """A learned parameter; `names` narrows a vector parameter to chosen inputs (w[a, b])."""
+    """A learned parameter; `names` narrows a vector parameter to chosen inputs (w[a, b]). A
+    parameter `by classes` has the shape WEIGHTS (over inputs) or CLASSES."""
 
     name: str
     vector: bool
@@ -235,6 +247,9 @@ class Apply:
     shape: Shape = SCALAR
     depends: Depends = "const"
     tuned: tuple[tuple[str, "TunableRef"], ...] = ()
+    # for an entry that reads the rows' second moments (dropridge): the goal's row aggregate ('mean',
+    # 'perrow' or 'sum') they are normalized by, so the penalty is scaled exactly like the loss it averages
+    rows: str | None = None
 
     @property
     def option_dict(self) -> dict[str, float]:
@@ -388,6 +403,7 @@ class Parameter:
     name: str
     vector: bool  # True: one weight per input
     span: Span
+    by_classes: bool = False  # one entry per class (with vector: an inputs x classes matrix)
 
 
 @dataclass(frozen=True)

@@ -221,6 +221,52 @@ def toy_separable() -> str:
     ])
 
 
+def loaves() -> str:
+    """A bakery sorts its loaves into three kinds (rye, spelt, wheat) by crust darkness, weight,
+    height and moisture: each kind has its own typical values, and the kinds overlap."""
+    rng = np.random.default_rng(9)
+    n = 360
+    kinds = np.array(["rye", "spelt", "wheat"])
+    kind = rng.integers(0, 3, size=n)
+    centre = np.array([[7.5, 820.0, 9.0, 41.0],   # rye: dark, heavy, low, moist
+                       [5.5, 700.0, 10.5, 38.0],  # spelt
+                       [4.0, 640.0, 12.0, 36.0]])  # wheat: light, tall, drier
+    spread = np.array([1.1, 60.0, 1.0, 2.2])
+    x = centre[kind] + rng.normal(0.0, 1.0, size=(n, 4)) * spread
+    return _csv([
+        Column("crust_darkness", x[:, 0], "%.2f"),
+        Column("weight_g", x[:, 1], "%.1f"),
+        Column("height_cm", x[:, 2], "%.2f"),
+        Column("moisture_pct", x[:, 3], "%.2f"),
+        Column("kind", kinds[kind], None),
+    ])
+
+
+def proofing() -> str:
+    """A bakery's proofing room: after each batch a baker notes whether the dough came out under-,
+    well- or over-proofed (under, ready, past), with the room's temperature and humidity, the minutes proofed and which of
+    three ovens took the batch. How far a batch proofed grows with minutes and warmth and saturates
+    in damp air (a curved boundary), and each oven adds its own lean."""
+    rng = np.random.default_rng(21)
+    n = 420
+    temp = rng.uniform(20.0, 32.0, n)
+    humidity = rng.uniform(45.0, 90.0, n)
+    minutes = rng.uniform(30.0, 110.0, n)
+    ovens = np.array(["deck", "rack", "stone"])
+    oven = rng.integers(0, 3, size=n)
+    extent = (minutes / 70.0) * np.exp((temp - 26.0) / 8.0) * (1.0 - 0.5 * np.exp(-(humidity - 45.0) / 15.0))
+    extent = extent + np.array([0.0, 0.12, -0.12])[oven] + rng.normal(0.0, 0.12, n)
+    states = np.array(["under", "ready", "past"])
+    state = np.digitize(extent, [0.75, 1.25])
+    return _csv([
+        Column("room_temp_c", temp, "%.1f"),
+        Column("humidity_pct", humidity, "%.1f"),
+        Column("proof_min", minutes, "%.0f"),
+        Column("oven", ovens[oven], None),
+        Column("proof", states[state], None),
+    ])
+
+
 TABLES: dict[str, Callable[[], str]] = {
     "parcels.csv": parcels,
     "croissants.csv": croissants,
@@ -229,6 +275,8 @@ TABLES: dict[str, Callable[[], str]] = {
     "library.csv": library,
     "printshop.csv": printshop,
     "toy_separable.csv": toy_separable,
+    "loaves.csv": loaves,
+    "proofing.csv": proofing,
 }
 
 

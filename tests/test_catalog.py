@@ -37,6 +37,7 @@ EXTRA_OPTIONS: dict[str, list[dict[str, float]]] = {
     "power": [{"p": 3.0}, {"p": 0.5}, {"p": -1.0}, {"p": 1.5}, {"p": 4.0}],
     "below": [{"a": 0.5}, {"a": -1.0}],
     "l0": [{"z": 0.5}, {"z": 0.25}],
+    "dropridge": [{"p": 0.2}, {"p": 0.8}],
 }
 
 
@@ -45,9 +46,17 @@ def _resolve(entry: Entry, setting: dict[str, float]) -> dict[str, float]:
     return entry.resolve_options(tuple(setting[o.name] for o in entry.options))
 
 
+def _class_shaped(e: Entry) -> bool:
+    """An entry of K scores per row or of a matrix learned by classes: its properties are tested on
+    those shapes in tests/test_multiclass.py, not on the real line here."""
+    return e.role == "multiclass" or e.on_class_matrix == "only"
+
+
 def _cases() -> list[Any]:
     out = []
     for e in catalog.ENTRIES:
+        if _class_shaped(e):
+            continue
         out.append(pytest.param(e, e.resolve_options(()), id=e.name))
         for setting in EXTRA_OPTIONS.get(e.name, []):
             opts = _resolve(e, setting)
@@ -505,7 +514,9 @@ def test_every_field_is_filled(entry: Entry) -> None:
     assert entry.summary.strip() and entry.formula.strip()
     assert entry.kind in ("atom", "loss", "norm")
     assert len(catalog.CATALOG) == len(catalog.ENTRIES), "two entries share a name"
-    if entry.kind == "loss":
+    if entry.kind == "loss" and entry.role == "multiclass":
+        assert entry.arity == 2 and entry.convexity_rule, f"{entry.name}: loss(s, y) with its convexity rule"
+    elif entry.kind == "loss":
         assert entry.role in ("margin", "residual"), f"{entry.name}: a loss needs a role"
         assert entry.arity == 1
     else:
@@ -522,7 +533,9 @@ def test_every_field_is_filled(entry: Entry) -> None:
     for o in entry.options:
         assert o.admits(o.default) and o.meaning.strip(), f"{entry.name}.{o.name}"
     if entry.kind in ("loss", "norm") and entry.trainable:
-        assert entry.prox is not None and entry.conjugate is not None, f"{entry.name}: trainable loss/norm lacks prox or conjugate"
+        # a multiclass loss has no prox in closed form; its solver works with the conjugate
+        assert (entry.prox is not None or entry.role == "multiclass") and entry.conjugate is not None, \
+            f"{entry.name}: trainable loss/norm lacks prox or conjugate"
 
 
 _KERNEL_FIELDS = ("value", "derivative", "prox", "conjugate")
@@ -711,7 +724,8 @@ def test_logistic_is_stable_at_extreme_margins() -> None:
     assert der[0] == -1.0 and -1e-300 <= der[-1] <= 0.0
 
 
-@pytest.mark.parametrize("entry", [e for e in catalog.ENTRIES if e.value_and_derivative is not None],
+@pytest.mark.parametrize("entry", [e for e in catalog.ENTRIES if e.value_and_derivative is not None
+                                   and not _class_shaped(e)],
                          ids=lambda e: e.name)
 def test_fused_value_and_derivative_equal_the_separate_kernels(entry):
     # the fused kernel is an optimization only: it must agree with value and derivative everywhere,

@@ -149,6 +149,30 @@ def test_fourier_draws_are_reproducible_from_the_seed_and_stored():
     assert one.input_names[1:] == tuple(f"kern_{j}" for j in range(1, 26))
 
 
+def test_a_saved_model_rebuilds_fourier_features_from_its_stored_draws(tmp_path):
+    # the model keeps the draws themselves: predict must use them, not the seed (NumPy does not promise
+    # the same random stream in every version), and refuse draws of the wrong shape
+    from objc import training
+    _stalls(tmp_path, " unseen zeros")
+    assert _objc("fit", "s.objc", "-o", "m.json", cwd=tmp_path).returncode == 0
+    doc = json.loads((tmp_path / "m.json").read_text())
+    draws = doc["schema"]["fourier_draws"]["warm"]
+    assert np.shape(draws["W"]) == (12, 2) and np.shape(draws["b"]) == (12,)
+    checked = check_text(doc["spec"]["text"], "s.objc")
+    draws["W"] = (2.0 * np.asarray(draws["W"])).tolist()  # as if another NumPy had drawn other numbers
+    data = training.bind_for_model(checked, doc, tmp_path / "new.csv", need_target=False)
+    raw = pd.read_csv(tmp_path / "new.csv")[["temp", "rain"]].to_numpy()
+    want = np.sqrt(2.0 / 12) * np.cos(raw @ np.asarray(draws["W"]).T + np.asarray(draws["b"]))
+    std = doc["schema"]["standardization"]
+    cols = [doc["schema"]["inputs"].index(f"warm_{j}") for j in range(1, 13)]
+    got = data.X[:, cols] * np.asarray(std["scales"])[cols] + np.asarray(std["means"])[cols]
+    np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
+    draws["b"] = draws["b"][:5]
+    with pytest.raises(SpecError) as err:
+        training.bind_for_model(checked, doc, tmp_path / "new.csv", need_target=False)
+    assert err.value.diagnostics[0].code == "T167"
+
+
 # ---------------------------------------------------------------- one map, every path
 
 _SCENARIO = """\

@@ -185,7 +185,9 @@ def test_tunable_settings_resolve_for_every_entry_with_settings() -> None:
             settings = ", ".join(["k"] if k == 0 else [f"{o.default:g}" for o in entry.options[:k]] + ["k"])
             default = min(max(opt.default, low), high)
             text = (f"tune k = {default:g} within {low:g} .. {high:g}\n"
-                    f"goal {'mean ' if entry.kind != 'norm' else ''}{entry.name}({args}, {settings}) + l2sq(w)\n")
+                    f"goal {'mean ' if entry.kind != 'norm' else ''}{entry.name}({args}, {settings}) + l2sq(w)"
+                    # a norm scaled by the rows (dropridge) is normalized like a per-row term, so needs one
+                    + (" + mean logistic(y * s)" if entry.reads_second_moments else "") + "\n")
             goal = check_text(HEADER + text, "ok.objc").spec.goal
             node = next(n for n in _walk(goal) if isinstance(n, tt.Apply) and n.entry == entry.name)
             assert dict(node.tuned)[opt.name].name == "k", entry.name

@@ -79,6 +79,8 @@ def checked(path: Path) -> CheckedObjective:
 
 
 def task_of(c: CheckedObjective) -> str:
+    if c.spec.table.classes:  # `target kind classes a, b, c`
+        return "multiclass"
     return "margin" if c.spec.table.label_map is not None else "residual"
 
 
@@ -295,7 +297,9 @@ def _cvxpy_problem(c: CheckedObjective, data: BoundData, at: dict[str, float] | 
     the typed tree and the catalog's cvxpy constructions (so the curvature is judged by cvxpy).
     An exponent or a catalog setting a tunable gives enters as its number `at` (default: its default)."""
     names_ = list(data.input_names)
-    variables = {p.name: cp.Variable(len(names_), name=p.name) if p.vector else cp.Variable(name=p.name)
+    k = len(c.spec.table.classes)  # learned by classes: W is inputs x K, b has K entries
+    variables = {p.name: cp.Variable(((len(names_), k) if p.vector else k) if p.by_classes else
+                                     len(names_) if p.vector else (), name=p.name)
                  for p in c.spec.parameters}
     tunables = {}
     for t in c.spec.tunables:

@@ -55,7 +55,7 @@ import numpy as np
 
 from objc import catalog as catalog_module
 from objc import typed_tree as tt
-from objc.catalog import CATALOG, Entry
+from objc.catalog import CATALOG, Entry, _k_second_moments
 from objc.checker import CheckedObjective, EvalEnv, analyse, evaluate, render
 from objc.diagnostics import Diagnostic, SpecError
 from objc.fit_result import Certificate, FitResult, objective_terms
@@ -182,6 +182,9 @@ def _solve_ladder(problem, name, ladder, verbose=False, warm_start=False):
                 # an inaccurate end is handled here (the next rung, or objc's own C422 error), so
                 # cvxpy's printed advice would only mislead
                 warnings.filterwarnings("ignore", message="Solution may be inaccurate")
+                # an axis reduction (the multiclass losses' log_sum_exp and max over a row) has no
+                # C++ canonicalization; cvxpy falls back to its SciPy one, which gives the same problem
+                warnings.filterwarnings("ignore", message="The problem includes expressions that don't support CPP")
                 problem.solve(solver=name, verbose=verbose, warm_start=warm_start, **dict(options))
         except Exception:
             if last:
@@ -316,7 +319,10 @@ class _Translator:
         if isinstance(e, tt.ScoreRef):
             return h.score()
         if isinstance(e, tt.Apply):
-            return h.cvx(CATALOG[e.entry], [self.expr(a) for a in e.args], h.options(e), e)
+            entry, options = CATALOG[e.entry], h.options(e)
+            if entry.reads_second_moments:
+                options = dict(options, m2=self.second_moments(e))
+            return h.cvx(entry, [self.expr(a) for a in e.args], options, e)
         if isinstance(e, tt.CustomLoss):
             return self.expr(e.body)
         if isinstance(e, tt.Add):
@@ -340,6 +346,13 @@ class _Translator:
             names = e.operand.shape.names
             return s / (len(names) if names is not None else h.n_inputs)
         raise AssertionError(f"no cvxpy translation for {type(e).__name__}")
+
+    def second_moments(self, e: tt.Apply) -> Any:
+        """The second moments of the inputs `e`'s parameter weighs, from the catalog's kernel (a value
+        for the real host, a recorded call for the emitting one)."""
+        ref = e.args[0]
+        names = ref.entries if isinstance(ref, tt.ParamRef) else None
+        return self.host.second_moments(self.host.matrix(names), e.rows or "mean")
 
     def const(self, e: tt.TExpr) -> Any:
         """A constant: folded to a number without tunables, kept affine in the parameters where DPP
@@ -417,7 +430,10 @@ class _RealHost:
         self.n_inputs = len(input_names)
         self.n_rows = X.shape[0]
         self._index = {n: i for i, n in enumerate(input_names)}
-        self.variables = {p.name: (cp.Variable(len(input_names), name=p.name) if p.vector
+        k = len(checked.spec.table.classes) if checked.spec.table is not None else 0
+        # by classes: W is inputs x K, b has K entries (one column / entry per class, in the listed order)
+        self.variables = {p.name: (cp.Variable((len(input_names), k) if p.vector else k, name=p.name) if p.by_classes
+                                   else cp.Variable(len(input_names), name=p.name) if p.vector
                                    else cp.Variable(name=p.name)) for p in checked.spec.parameters}
         self.parameters: dict[str, Any] = {}
         for t in checked.spec.tunables:
@@ -464,6 +480,9 @@ class _RealHost:
 
     def score(self) -> Any:
         return self._score
+
+    def second_moments(self, X: Any, rows: str) -> Any:
+        return _k_second_moments(X, self.weights, rows)
 
     def cvx(self, entry: Entry, args: list, options: dict, node: tt.TExpr) -> Any:
         out = entry.cvxpy(self.cp, *args, **options)
@@ -657,7 +676,9 @@ def solve_build(built: CvxpyBuild, tunables: Mapping[str, float] | None = None, 
     seconds = time.perf_counter() - started
     _raise_for_status(problem.status, name, checked)
 
-    params = {n: (np.array(v.value, dtype=float).reshape(-1) if n in _vector_names(checked) else float(v.value))
+    by_classes = {p.name for p in checked.spec.parameters if p.by_classes}
+    params = {n: (np.array(v.value, dtype=float) if n in by_classes else
+                  np.array(v.value, dtype=float).reshape(-1) if n in _vector_names(checked) else float(v.value))
               for n, v in built.variables.items()}
     values = {n: float(p.value) for n, p in built.parameters.items()}
     objective, term_values = _term_values(built, params, values)
@@ -708,6 +729,8 @@ def _term_values(built: CvxpyBuild, params: dict, values: dict) -> tuple[float, 
     """Each term at the solution, evaluated from the typed tree (the cvxpy values where the score has
     a form the reference evaluation does not decompose)."""
     checked = built.checked
+    if any(p.by_classes for p in checked.spec.parameters):
+        return objective_terms(checked, None, built.X, built.y, built.weights, params, values)
     try:
         form = score_form(checked, built.input_names)
     except ValueError:
@@ -1076,6 +1099,9 @@ class _EmitHost:
     def score(self) -> _Sym:
         return _name(self.score_ident)
 
+    def second_moments(self, X: _Sym, rows: str) -> _Sym:
+        return _name(self.emitter.copy(_k_second_moments, catalog_module))(X, self.weights, rows)
+
     def cvx(self, entry: Entry, args: list, options: dict, node: tt.TExpr) -> Any:
         try:
             out = entry.cvxpy(self.cp, *args, **options)
@@ -1160,8 +1186,12 @@ def emit_module(checked: CheckedObjective, input_names: Sequence[str] | None = N
         body.append(_assign(idents[("tunable", t.name)],
                             cp.Parameter(name=t.name, value=_name("values")[t.name], **_sign_flags(t.low, t.high))))
     body.extend(host.derived_statements)
+    k = len(spec.table.classes) if spec.table is not None else 0
     for p in spec.parameters:
-        var = cp.Variable(_name("n_inputs"), name=p.name) if p.vector else cp.Variable(name=p.name)
+        if p.by_classes:  # W: inputs x K, b: K, one column / entry per class in the listed order
+            var = cp.Variable((_name("n_inputs"), k) if p.vector else k, name=p.name)
+        else:
+            var = cp.Variable(_name("n_inputs"), name=p.name) if p.vector else cp.Variable(name=p.name)
         body.append(_assign(idents[("param", p.name)], var))
     if score_ident is not None:
         body.append(_assign(score_ident, score_value))

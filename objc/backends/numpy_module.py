@@ -36,6 +36,7 @@ from objc import typed_tree as tt
 from objc.catalog import CATALOG
 from objc.cells import MISSING_CELLS
 from objc.checker import CheckedObjective, Term, render
+from objc.diagnostics import NUMPY_REFUSAL_CODES
 from objc.fit_result import Certificate, FitResult
 from objc.score_form import score_form
 from objc.source_text import Span
@@ -53,11 +54,15 @@ _RUNTIME_KERNELS = ("_k_l1_prox", "_k_l2_prox")
 
 class NotSupported(ValueError):
     """The spec is valid, but this backend cannot solve it: `what` says why, `span` where (the message
-    adds the spec line and column)."""
+    adds the spec line and column), `kind` which refusal it is (its code: `code`)."""
 
-    def __init__(self, what: str, span: Span | None = None):
-        self.what, self.span = what, span
+    def __init__(self, what: str, span: Span | None = None, kind: str = "expression"):
+        self.what, self.span, self.kind = what, span, kind
         super().__init__((f"spec line {span.line}, column {span.column}: " if span is not None else "") + what)
+
+    @property
+    def code(self) -> str:
+        return NUMPY_REFUSAL_CODES[self.kind]
 
 
 # ---------------------------------------------------------------- small ast helpers
@@ -341,7 +346,7 @@ def _penalty_target(t: Term) -> tuple[str, tuple[str, ...] | None, bool]:
     if len(keys) != 1:
         raise NotSupported(f"term {t.index + 1} ('{t.text}') reads "
                            f"{'no' if not keys else 'several'} learned parameter selections; the NumPy backend "
-                           "needs a penalty on one parameter (or one selection of it)", t.span)
+                           "needs a penalty on one parameter (or one selection of it)", t.span, "penalty")
     ref = refs[0]
     return ref.name, ref.entries, ref.vector
 
@@ -366,6 +371,8 @@ def _penalty_form(core: tt.TExpr) -> str | None:
         return isinstance(e, tt.ParamRef)
     if isinstance(core, tt.Apply) and core.entry in ("l1", "l2", "l2sq") and is_param(core.args[0]):
         return core.entry
+    if isinstance(core, tt.Apply) and CATALOG[core.entry].reads_second_moments and is_param(core.args[0]):
+        return "dropout"
     if isinstance(core, tt.Apply) and core.entry == "abs" and is_param(core.args[0]) and \
             core.args[0].shape.kind == "scalar":
         return "l1"
@@ -529,6 +536,15 @@ class _Emitter:
             fields = dict(common, kind=ast.Constant("params"), param=ast.Constant(param),
                           entries=_const(entries), form=ast.Constant(_penalty_form(t.core)),
                           smooth=ast.Constant(bool(t.smooth)), penalty=_name(self.penalty_function(t, param, entries)))
+            if fields["form"].value == "dropout":
+                # a ridge weighted by the rows' second moments, which the runtime takes from its data
+                core = t.core
+                drop = next((ref for k, ref in core.tuned if k == "p"), None) or tt.Const(core.option_dict["p"],
+                                                                                            core.span)
+                fields.update(rows=ast.Constant(core.rows or "mean"), drop=_name(self.value_function(
+                    f"term_{t.index}_drop", ["tun"], f"Term {t.index + 1}: the drop probability.", drop, None)),
+                    factor=_name(self.kernel(catalog._k_dropout_factor)),
+                    moments=_name(self.kernel(catalog._k_second_moments)))
             return ast.Dict([ast.Constant(k) for k in fields], list(fields.values()))
         if t.kind == "constant":
             value = self.value_function(f"term_{t.index}_constant", ["tun"],
@@ -536,7 +552,7 @@ class _Emitter:
             fields = dict(common, kind=ast.Constant("constant"), constant=_name(value))
             return ast.Dict([ast.Constant(k) for k in fields], list(fields.values()))
         raise NotSupported(f"term {t.index + 1} mixes per-row aggregates with other "
-                           "expressions; only the cvxpy backend can solve it", t.span)
+                           "expressions; only the cvxpy backend can solve it", t.span, "aggregate")
 
     def constraint_table(self, k: int) -> ast.expr:
         c = self.checked.spec.constraints[k]
@@ -571,17 +587,17 @@ class _Emitter:
         else:
             raise NotSupported(f"constraint '{info.text}' is not a sign, bound, box, L1 ball "
                                "or L2 ball on a learned parameter; the NumPy backend cannot project on it "
-                               "(the cvxpy backend can)", c.span)
+                               "(the cvxpy backend can)", c.span, "constraint")
         return ast.Dict([ast.Constant(k2) for k2 in fields], list(fields.values()))
 
     def score_table(self) -> ast.expr:
         spec = self.checked.spec
         if spec.score is None:
-            raise NotSupported("the spec has no score")
+            raise NotSupported("the spec has no score", None, "score")
         try:
             form = score_form(self.checked, tuple(spec.table.explicit_inputs() or ()) if spec.table else ())
         except ValueError as err:
-            raise NotSupported(str(err), spec.score.span) from None
+            raise NotSupported(str(err), spec.score.span, "score") from None
         dots, scalars = [], []
         for k, b in enumerate(form.blocks):
             if b.dot:
@@ -669,11 +685,11 @@ class _Emitter:
                 args = [walk(a) for a in e.args[:n_args]]
                 literal = [st.literal_number(a) for a in e.args[n_args:]]
                 if any(v is None for v in literal):
-                    raise NotSupported("options must be literal numbers", e.span)
+                    raise NotSupported("options must be literal numbers", e.span, "feature")
                 opts = entry.resolve_options(tuple(float(v) for v in literal))
                 return _call(self.kernel(entry.value), *args, **{k: _const(v) for k, v in opts.items()})
             raise NotSupported(f"feature {f.name!r} uses an expression the NumPy module "
-                               "cannot compute", f.span)
+                               "cannot compute", f.span, "feature")
         value = walk(f.expr)
         doc = f"Derived input {f.name!r} (spec line {f.span.line}) from the table's columns."
         body.append(ast.Return(_call(_attr("np", "asarray"), value, dtype=_attr("np", "float64"))))
@@ -782,6 +798,9 @@ def unsupported(checked: CheckedObjective) -> NotSupported | None:
     """Why the NumPy backend cannot train an accepted spec, or None: the spec's own tables are built
     (where every refusal is raised) without the runtime's source, so `check` can afford it."""
     try:
+        if checked.task == "multiclass":
+            _mc_plan(checked)
+            return None
         _Emitter(checked).spec_table()
     except NotSupported as err:
         return err
@@ -797,6 +816,8 @@ def emit_module(checked: CheckedObjective) -> str:
     if checked.verdict == "not subdifferentiable":
         raise NotSupported("the objective is not subdifferentiable: the 0-1 loss is for evaluation only, so "
                            "nothing can be trained on it (train a surrogate such as hinge or logistic)")
+    if checked.task == "multiclass":
+        return _emit_multiclass(checked)
     em = _Emitter(checked)
     spec_table = em.spec_table()
     estimator = em.estimator_class()
@@ -955,7 +976,7 @@ def _runtime_digest(cache: dict) -> str:
     """The sha256 of the sources copied into every module, read again only when a file's size or
     modification time changes (reading and hashing them took about a millisecond per fit, paid at
     every point of a path)."""
-    files = [_HERE / f for f in _RUNTIME_FILES] + [Path(catalog.__file__)]
+    files = [_HERE / f for f in _RUNTIME_FILES + (_MULTICLASS_RUNTIME,)] + [Path(catalog.__file__)]
     stamp = tuple((str(f), st.st_mtime_ns, st.st_size) for f in files for st in (f.stat(),))
     kept = cache.get("runtime")
     if kept is None or kept[0] != stamp:
@@ -984,6 +1005,10 @@ def fit(checked: CheckedObjective, X: Any, y: Any, weights: Any, input_names: tu
 
     Raises NotSupported for specs this backend cannot solve and ValueError for unusable data or
     settings (the message says which)."""
+    if checked.task == "multiclass":
+        if certify_only or prepared is not None:
+            raise NotSupported("paths and certificates of a given point are not available for a spec with classes")
+        return _fit_multiclass(checked, X, y, weights, input_names, tunables, tol, max_passes, theta0, param_tol)
     ns = _compiled(checked)
     out = ns["run_solver"](ns["SPEC"], X, y, weights, tuple(input_names) if input_names is not None else None,
                            tunables, tol, max_passes, allow_nonconvex, theta0, progress, use_scipy, param_tol,
@@ -1008,3 +1033,417 @@ def bound_problem(checked: CheckedObjective, X: Any, y: Any, weights: Any, input
     Raises NotSupported or ValueError like `fit`."""
     ns = _compiled(checked)
     return ns, ns["build_problem"](ns["SPEC"], X, y, weights, tuple(input_names), tunables, prepared)
+
+
+# ---------------------------------------------------------------- multiclass modules
+# A spec whose target has classes gets a module of its own: the spec's goal read into one multiclass
+# loss and penalties of W (the `SPEC` table and a generated `_mc_coefficients`), the catalog's kernels,
+# the solver of numpy_multiclass_src.py (copied by source) and `_MC_TAIL` (solve, fit, decision_function,
+# predict, predict_proba). The binary modules stay as they were.
+
+_MULTICLASS_RUNTIME = "numpy_multiclass_src.py"
+_MC_PENALTY_KINDS = ("l2sq", "l1", "inputs_l2")
+
+
+def _mc_plan(checked: CheckedObjective) -> dict[str, Any]:
+    """The multiclass goal as the solver takes it: one loss term (entry, aggregate, coefficient
+    factors) and penalties of W (kind, coefficient factors); NotSupported (with the spec line) for
+    anything else."""
+    from objc.checker import multiclass_form
+    spec = checked.spec
+    form = multiclass_form(spec)
+    if form is None:
+        raise NotSupported("the score of a spec with classes must be W . x + b (or W . x)",
+                           spec.score.span if spec.score is not None else None, "score")
+    if spec.constraints:
+        raise NotSupported("the NumPy multiclass solver takes no `keep` constraints", spec.constraints[0].span,
+                           "constraint")
+    if spec.table is not None and spec.table.maps and spec.table.features:
+        raise NotSupported("a multiclass NumPy module computes feature maps but not `feature` lines beside them",
+                           spec.table.features[0].span, "feature")
+    loss: tuple[str, str, list[tt.TExpr]] | None = None
+    penalties: list[tuple[str, list[tt.TExpr]]] = []
+    for t in checked.terms:
+        factors, negated = _coefficient_factors(t)
+        if negated:
+            raise NotSupported(f"term {t.index + 1} ('{t.text}') has a negative coefficient", t.span)
+        if t.kind == "rows" and isinstance(t.body, tt.Apply) and CATALOG[t.body.entry].role == "multiclass":
+            if loss is not None:
+                raise NotSupported("the NumPy multiclass solver takes one multiclass loss term; this goal has "
+                                   "two or more", t.span)
+            loss = (t.body.entry, t.aggregate or "sum", factors)
+        elif t.kind == "params" and isinstance(t.core, tt.Apply) and t.core.entry in _MC_PENALTY_KINDS and \
+                isinstance(t.core.args[0], tt.ParamRef) and t.core.args[0].name == form[0]:
+            penalties.append((t.core.entry, factors))
+        elif t.kind == "params" and isinstance(t.core, tt.Apply) and CATALOG[t.core.entry].reads_second_moments \
+                and isinstance(t.core.args[0], tt.ParamRef) and t.core.args[0].name == form[0]:
+            # the drop probability (a number or a tunable) goes along; the solve turns it into a ridge
+            drop = next((ref for k, ref in t.core.tuned if k == "p"), None) or tt.Const(t.core.option_dict["p"],
+                                                                                           t.core.span)
+            penalties.append(("dropridge", factors + [drop]))
+        else:
+            raise NotSupported(f"term {t.index + 1} ('{t.text}') is neither a multiclass loss of the score nor "
+                               f"{', '.join(_MC_PENALTY_KINDS)} of {form[0]}", t.span, "penalty")
+        for f in factors:
+            if _contains_data(f):
+                raise NotSupported(f"the coefficient of term {t.index + 1} reads data", t.span)
+    if loss is None:
+        raise NotSupported("the goal has no multiclass loss term (softmax_ce, cs_hinge or ww_hinge under mean, sum "
+                           "or perrow)", spec.goal_span)
+    kinds = {k for k, _f in penalties}
+    if "dropridge" in kinds and kinds & {"l1", "inputs_l2"}:
+        t = next(t for t in checked.terms if isinstance(t.core, tt.Apply) and t.core.entry in ("l1", "inputs_l2"))
+        raise NotSupported("the NumPy multiclass solver takes dropridge beside l2sq only (it solves the weighted "
+                           "ridge by scaling the inputs, which would change l1 and inputs_l2)", t.span, "penalty")
+    if loss[0] != "softmax_ce" and kinds & {"l1", "inputs_l2"}:
+        t = next(t for t in checked.terms if isinstance(t.core, tt.Apply) and t.core.entry in ("l1", "inputs_l2"))
+        raise NotSupported(f"the NumPy multiclass solver trains {loss[0]} with an l2sq penalty alone (its dual "
+                           "method); this goal adds l1 or inputs_l2", t.span, "penalty")
+    if not kinds & {"l2sq", "dropridge"} and (loss[0] != "softmax_ce" or not kinds):
+        raise NotSupported(f"the NumPy multiclass solver needs a penalty of W for {loss[0]} (l2sq"
+                           + (", l1 or inputs_l2" if loss[0] == "softmax_ce" else "") + ")", spec.goal_span,
+                           "penalty")
+    return {"weights": form[0], "intercept": form[1], "loss": loss, "penalties": penalties}
+
+
+def _contains_data(e: tt.TExpr) -> bool:
+    return isinstance(e, tt.DataRef) or any(_contains_data(c) for c in _children(e))
+
+
+def _mc_factor_ast(e: tt.TExpr) -> ast.expr:
+    """A constant coefficient factor as Python, tunables read from the dict `T` by their spec names
+    (string constants: no spec text becomes code)."""
+    if isinstance(e, tt.Const):
+        return _const(float(e.value))
+    if isinstance(e, tt.TunableRef):
+        return ast.Subscript(_name("T"), ast.Constant(e.name), ast.Load())
+    if isinstance(e, tt.Neg):
+        return ast.UnaryOp(ast.USub(), _mc_factor_ast(e.operand))
+    if isinstance(e, tt.Add):
+        return _binop(_mc_factor_ast(e.left), ast.Add(), _mc_factor_ast(e.right))
+    if isinstance(e, tt.Mul):
+        return _binop(_mc_factor_ast(e.left), ast.Mult(), _mc_factor_ast(e.right))
+    if isinstance(e, tt.Div):
+        return _binop(_mc_factor_ast(e.left), ast.Div(), _mc_factor_ast(e.right))
+    if isinstance(e, tt.Apply) and e.entry == "power" and not e.tuned:
+        return _binop(_mc_factor_ast(e.args[0]), ast.Pow(), _const(float(e.option_dict["p"])))
+    raise NotSupported(f"the coefficient '{render(e)}' is not a number, a tunable or a product of them", e.span)
+
+
+def _mc_product(factors: list[tt.TExpr]) -> ast.expr:
+    out: ast.expr = _const(1.0)
+    for f in factors:
+        out = _binop(out, ast.Mult(), _mc_factor_ast(f))
+    return out
+
+
+def _mc_penalty_coefficient(kind: str, factors: list[tt.TExpr]) -> ast.expr:
+    if kind != "dropridge":
+        return _mc_product(factors)
+    # dropridge's last factor is its drop probability p: the coefficient of sum_j m2_j ||W_j||^2 is p / (2 (1 - p))
+    ratio = ast.Call(_name("_k_dropout_factor"), [_mc_factor_ast(factors[-1])], [])
+    return ratio if not factors[:-1] else _binop(_mc_product(factors[:-1]), ast.Mult(), ratio)
+
+
+def _mc_coefficients_def(plan: dict[str, Any]) -> ast.FunctionDef:
+    pens = ast.List([ast.Tuple([ast.Constant(kind), _mc_penalty_coefficient(kind, f)], ast.Load())
+                     for kind, f in plan["penalties"]], ast.Load())
+    body = [ast.Return(ast.Tuple([_mc_product(plan["loss"][2]), pens], ast.Load()))]
+    return _function("_mc_coefficients", ["T"], "(the loss term's coefficient, [(penalty, coefficient)]) at the "
+                     "tunable values T, as the spec's goal writes them", body)
+
+
+def _mc_spec_table(checked: CheckedObjective, plan: dict[str, Any]) -> ast.expr:
+    spec = checked.spec
+    tb = spec.table
+    inputs = tb.explicit_inputs()
+    table = {
+        "name": spec.source_name, "sha256": checked.spec_hash, "verdict": checked.verdict, "task": "multiclass",
+        "loss": plan["loss"][0], "aggregate": plan["loss"][1], "classes": tuple(tb.classes), "K": len(tb.classes),
+        "weights": plan["weights"], "intercept": plan["intercept"],
+        "inputs": tuple(inputs) if inputs is not None else None, "target": tb.target,
+        "standardize": bool(tb.standardize), "class_weights": tuple(tuple(p) for p in tb.class_label_weights),
+        "maps": tuple(m.plain() for m in tb.maps),
+        # the named columns the maps' inputs follow (the module computes the maps, not `feature` lines)
+        "columns": tuple(i.text for i in tb.inputs if i.text not in {e.text for e in tb.excluded})
+        if tb.maps and all(i.kind == "column" for i in tb.inputs) else None,
+        "tunables": {t.name: float(t.default) for t in spec.tunables},
+        "tunable_ranges": {t.name: (float(t.low), float(t.high)) for t in spec.tunables},
+    }
+    return _const(table)
+
+
+def _mc_method(plan: dict[str, Any]) -> str:
+    if plan["loss"][0] != "softmax_ce":
+        return "dual coordinate ascent on the multiclass hinge with an l2sq penalty; certified by the duality gap"
+    if {k for k, _f in plan["penalties"]} & {"l1", "inputs_l2"}:
+        return "accelerated proximal gradient (FISTA with restarts) for l1 / inputs_l2; certified by the duality gap"
+    return "L-BFGS on softmax cross-entropy with an l2sq penalty; certified by the duality gap"
+
+
+def _mc_runtime_defs() -> list[ast.stmt]:
+    tree = ast.parse((_HERE / _MULTICLASS_RUNTIME).read_text(encoding="utf-8"))
+    return [node for node in tree.body if isinstance(node, (ast.FunctionDef, ast.ClassDef, ast.Assign))]
+
+
+def _mc_kernels() -> set[str]:
+    tree = ast.parse((_HERE / _MULTICLASS_RUNTIME).read_text(encoding="utf-8"))
+    names = {n.id for n in ast.walk(tree) if isinstance(n, ast.Name) and n.id.startswith("_k_")}
+    return names | {"_k_mc_softmax_ce", "_k_mc_probabilities", "_k_dropout_factor", "_k_second_moments"}
+
+
+def _mc_map_defs() -> list[ast.stmt]:
+    """The feature maps' math and the estimator's way of applying them, copied by source (one home:
+    objc's own functions, as the binary modules copy them)."""
+    from objc import tables
+    from objc.backends import numpy_estimator_src as estimator_src
+    fns = (tt.map_exponents, tt.map_product_name, tt.map_knot_name, tt.map_knot_of, tables.map_category_text,
+           tables.map_sorted_categories, tables.map_fourier_draws, tables.map_fit, tables.map_state_from_names,
+           tables.map_outputs, tables.map_unseen_rows, estimator_src._map_unscaled, estimator_src._apply_maps)
+    return [ast.parse(textwrap.dedent(inspect.getsource(fn))).body[0] for fn in fns]
+
+
+def _emit_multiclass(checked: CheckedObjective) -> str:
+    plan = _mc_plan(checked)
+    method = _mc_method(plan)
+    header = _header(checked).replace(f"method: {_METHOD_TEXT[plan_method(checked)]}", f"method: {method}")
+    header = header.replace("Use: `from <this module> import Model` (fit / predict / decision_function), "
+                            "`solve(X, y, ...)`,\nor as a script: `python <this file> TABLE.csv -o model.json`.",
+                            "Use: `fit(X, labels)` (raw inputs, labels as the table writes them) returns a model;\n"
+                            "`predict(model, X)`, `decision_function(model, X)`, `predict_proba(model, X)` "
+                            "(softmax_ce);\n`solve(X, y, weights)` trains on prepared rows (classes 0 .. K-1).")
+    body: list[ast.stmt] = [ast.Expr(ast.Constant(header))]
+    body += ast.parse("import math\nimport sys\nimport numpy as np\n"
+                      "try:  # optional: SciPy's NNLS balances a hinge's dual point\n"
+                      "    import scipy.optimize as _scipy_optimize\n"
+                      "except ImportError:  # pragma: no cover\n"
+                      "    _scipy_optimize = None\n").body
+    body.append(ast.Assign([ast.Name("SPEC_TEXT", ast.Store())], ast.Constant(checked.spec.text)))
+    body.append(ast.Assign([ast.Name("SPEC_SHA256", ast.Store())], ast.Constant(checked.spec_hash)))
+    body.append(ast.Assign([ast.Name("VERDICT", ast.Store())], ast.Constant(checked.verdict)))
+    body.append(ast.Assign([ast.Name("METHOD", ast.Store())], ast.Constant(method)))
+    body += _kernel_defs(_mc_kernels())
+    body.append(_mc_coefficients_def(plan))
+    body.append(ast.Assign([ast.Name("SPEC", ast.Store())], _mc_spec_table(checked, plan)))
+    body += _mc_runtime_defs()
+    if checked.spec.table.maps:
+        body += _mc_map_defs()
+    body += ast.parse(_MC_TAIL).body
+    module = ast.Module(body=body, type_ignores=[])
+    ast.fix_missing_locations(module)
+    return _add_section_comments(ast.unparse(module))
+
+
+_MC_TAIL = '''
+def _mc_tunables(tunables):
+    T = dict(SPEC["tunables"])
+    for name, value in (tunables or {}).items():
+        if name not in T:
+            raise ValueError(f"the spec has no tunable {name!r} (tunables: {', '.join(T) or 'none'})")
+        low, high = SPEC["tunable_ranges"][name]
+        if not low <= float(value) <= high:
+            raise ValueError(f"{name} = {float(value)!r} lies outside its declared range {low!r} .. {high!r}")
+        T[name] = float(value)
+    return T
+
+
+def solve(X, y, weights=None, tunables=None, tol=1e-08, max_passes=None, theta0=None):
+    """Train on prepared rows: X (rows x inputs, standardized as the spec says), y the class of each
+    row (0 .. K-1, in the order of SPEC["classes"]), weights each row's row x class weight c_i.
+    Returns the solver's dict (W, b, objective, gap, distance, mu, passes, status, method)."""
+    X = np.asarray(X, dtype=np.float64)
+    n = X.shape[0] if X.ndim == 2 else 0
+    c = np.ones(n) if weights is None else np.asarray(weights, dtype=np.float64).reshape(-1)
+    if c.shape != (n,) or not np.all(np.isfinite(c)) or np.any(c < 0):
+        raise ValueError(f"weights must hold one finite value >= 0 per row of X ({n})")
+    loss_coef, penalties = _mc_coefficients(_mc_tunables(tunables))
+    # the per-row factor rho_i: the loss term's coefficient times c_i, over sum c (mean) or n (perrow)
+    scale = {"mean": float(np.sum(c)), "perrow": float(n), "sum": 1.0}[SPEC["aggregate"]]
+    if not scale > 0:
+        raise ValueError("every row weight is zero")
+    rho = loss_coef * c / scale
+    penalties, s = _mc_dropout_as_ridge(X, c, penalties)
+    if s is None:
+        return solve_multiclass(X, y, SPEC["K"], rho, SPEC["loss"], penalties, SPEC["intercept"] is not None,
+                                tol=tol, max_passes=max_passes, theta0=theta0)
+    if theta0 is not None:
+        W0, b0 = (theta0["W"], theta0.get("b")) if isinstance(theta0, dict) else theta0
+        theta0 = {"W": np.asarray(W0, dtype=np.float64) * s[:, None], "b": b0}
+    out = solve_multiclass(X / s, y, SPEC["K"], rho, SPEC["loss"], penalties, SPEC["intercept"] is not None,
+                           tol=tol, max_passes=max_passes, theta0=theta0)
+    # back from V = s W: the objective and its gap are the same numbers; a distance in V bounds one in
+    # (W, b) after the largest 1 / s_j, a curvature in V one in (W, b) after the smallest s_j^2
+    out = dict(out, W=np.asarray(out["W"]) / s[:, None])
+    if out.get("distance") is not None:
+        out["distance"] = float(out["distance"]) * max(1.0, float(np.max(1.0 / s)))
+    if out.get("mu") is not None:
+        out["mu"] = float(out["mu"]) * min(1.0, float(np.min(s * s)))
+    return out
+
+
+def _mc_dropout_as_ridge(X, c, penalties):
+    """dropridge is the ridge sum_j d_j ||W_j||^2 with d_j its coefficient times m2_j, the second moment of
+    input j on these rows (normalized like the loss). With l2sq it makes one weight e_j per input, which
+    scaling input j by 1 / s_j, s_j = sqrt(e_j / mean e), turns into the plain ridge (mean e) ||V||_F^2
+    in V_j = s_j W_j. Returns (the solver's penalties, s) or (penalties, None) without dropridge."""
+    drops = [coef for kind, coef in penalties if kind == "dropridge"]
+    if not drops:
+        return penalties, None
+    ridge = sum(coef for kind, coef in penalties if kind == "l2sq")
+    e = ridge + sum(drops) * _k_second_moments(X, c, SPEC["aggregate"])
+    if not np.all(e > 0):
+        j = int(np.flatnonzero(~(e > 0))[0])
+        raise ValueError(f"input {SPEC['inputs'][j] if SPEC['inputs'] else j + 1} is zero on every training row, so "
+                         "dropridge gives its weights no penalty; leave it out of the inputs or add l2sq(W)")
+    level = float(np.mean(e))
+    return [("l2sq", level)], np.sqrt(e / level)
+
+
+def _mc_same(cell, label):
+    if isinstance(label, str):
+        return isinstance(cell, str) and cell == label
+    try:
+        return not isinstance(cell, (str, bool)) and float(cell) == float(label)
+    except (TypeError, ValueError):
+        return False
+
+
+def class_numbers(labels):
+    """Each label's class 0 .. K-1 (text matches text, numbers numbers); ValueError naming the rows
+    whose label is not among SPEC["classes"]."""
+    out = np.full(len(labels), -1, dtype=np.int64)
+    for i, cell in enumerate(labels):
+        for k, label in enumerate(SPEC["classes"]):
+            if _mc_same(cell, label):
+                out[i] = k
+                break
+    bad = np.flatnonzero(out < 0)
+    if len(bad):
+        shown = ", ".join(str(int(r) + 1) for r in bad[:5]) + (f" and {len(bad) - 5} more" if len(bad) > 5 else "")
+        raise ValueError(f"labels at rows {shown} (counting from 1) are not among the classes "
+                         f"{', '.join(str(c) for c in SPEC['classes'])}: {labels[bad[0]]!r}")
+    return out
+
+
+def _mc_matrix(X, state=None):
+    """(rows x inputs, the inputs' names, the feature maps' state). Without feature maps X is that
+    matrix already (columns in the order of SPEC["inputs"]); with them X holds the table's columns by
+    name (a pandas DataFrame or a dict of columns), and the spec's inputs come first, then each map's
+    inputs as objc makes them (the maps fitted on these rows when `state` is None)."""
+    if not SPEC["maps"]:
+        X = np.asarray(X, dtype=np.float64)
+        if X.ndim != 2:
+            raise ValueError("X must be a 2-D array (rows x inputs)")
+        return X, list(SPEC["inputs"] or ()), None
+    if not hasattr(X, "keys"):
+        raise ValueError("this spec has feature maps, which read columns by name: pass X as a pandas DataFrame "
+                         "or a dict of columns")
+
+    def column(name):
+        if name not in X.keys():
+            raise ValueError(f"X has no column {name!r}, which the spec reads")
+        return X[name]
+
+    def fail(message):
+        raise ValueError(f"X: {message}")
+    if SPEC["columns"] is None:
+        raise ValueError("this spec names its inputs by a pattern or `all`; the module applies its feature maps "
+                         "only to inputs named outright")
+    chosen = list(SPEC["columns"])
+    data = {c: np.asarray(column(c), dtype=np.float64) for c in chosen}
+    state = _apply_maps({"maps": SPEC["maps"]}, lambda c: list(np.asarray(column(c), dtype=object)),
+                        lambda c: data[c] if c in data else np.asarray(column(c), dtype=np.float64), data, chosen,
+                        state, fail)
+    return np.column_stack([data[c] for c in chosen]), chosen, state
+
+
+def fit(X, labels, weights=None, tunables=None, tol=1e-08, max_passes=None):
+    """Train on raw rows: X (rows x inputs, in the order of SPEC["inputs"]; by column name when the
+    spec has feature maps, see `_mc_matrix`), labels as the table writes them. Applies the maps,
+    standardizes as the spec says (mean and population standard deviation of these rows; a onehot
+    indicator stays 0/1), applies the class weights, solves. Returns the model: W, b, means, scales,
+    the inputs, the maps' state and the solver's report."""
+    X, names, state = _mc_matrix(X)
+    y = class_numbers(list(labels))
+    means, scales = np.zeros(X.shape[1]), np.ones(X.shape[1])
+    if SPEC["standardize"]:
+        keep = np.array([n in _map_unscaled({"maps": SPEC["maps"]}, state) for n in names], dtype=bool) \
+            if state is not None else np.zeros(X.shape[1], dtype=bool)
+        means, scales = np.where(keep, 0.0, X.mean(axis=0)), np.where(keep, 1.0, X.std(axis=0))
+        if np.any(~(scales > 0)):
+            raise ValueError(f"input {int(np.flatnonzero(~(scales > 0))[0]) + 1} is constant: standardizing "
+                             "would divide by zero")
+    c = np.ones(len(y)) if weights is None else np.asarray(weights, dtype=np.float64).reshape(-1)
+    for label, w in SPEC["class_weights"]:
+        c = np.where(y == class_numbers([label])[0], c * w, c)
+    out = solve((X - means) / scales, y, c, tunables, tol, max_passes)
+    return dict(out, means=means, scales=scales, classes=list(SPEC["classes"]), inputs=names, maps=state)
+
+
+def decision_function(model, X):
+    """The K scores of each row (rows x K), s = W^T x + b on the standardized inputs (the feature
+    maps applied with the state `fit` found)."""
+    X = (_mc_matrix(X, model.get("maps"))[0] - model["means"]) / model["scales"]
+    return multiclass_scores(model["W"], model["b"], X)
+
+
+def predict(model, X):
+    """The class of the highest score of each row, as SPEC["classes"] writes it."""
+    picked = np.argmax(decision_function(model, X), axis=1)
+    return [SPEC["classes"][int(k)] for k in picked]
+
+
+def predict_proba(model, X):
+    """The class probabilities of a softmax_ce model: the softmax of each row's scores."""
+    if SPEC["loss"] != "softmax_ce":
+        raise ValueError(f"{SPEC['loss']} models no probabilities; only softmax_ce does")
+    return softmax_probabilities(decision_function(model, X))
+'''
+
+
+# the relative gap a multiclass fit runs to when a parameter tolerance is asked for: the weights are read,
+# not only the objective, and a gap of 1e-6 leaves them off in the fourth digit (measured on iris and wine,
+# softmax_ce + l2sq: W within 1e-6 of scikit-learn's at 1e-14, 2.3e-6 off at 1e-12); about 1.7x the passes
+_MC_PARAM_GAP = 1e-14
+
+
+def _fit_multiclass(checked: CheckedObjective, X: Any, y: Any, weights: Any, input_names, tunables, tol: float,
+                    max_passes: int | None, theta0: Any, param_tol: float | None = None) -> FitResult:
+    from objc.fit_result import objective_terms
+    ns = _compiled(checked)
+    values = dict(ns["SPEC"]["tunables"], **(tunables or {}))
+    # only L-BFGS (softmax_ce with l2sq alone) converges fast enough for that gap; the hinges' dual
+    # coordinate ascent and FISTA for l1 / inputs_l2 stop at --tol
+    lbfgs = ns["SPEC"]["loss"] == "softmax_ce" and not {k for k, _f in _mc_plan(checked)["penalties"]} & {"l1", "inputs_l2"}
+    run_tol = tol if param_tol is None or not lbfgs else min(tol, _MC_PARAM_GAP)
+    out = ns["solve"](X, y, weights, values, run_tol, max_passes, theta0)
+    params = {ns["SPEC"]["weights"]: np.asarray(out["W"], dtype=np.float64)}
+    if ns["SPEC"]["intercept"] is not None:
+        params[ns["SPEC"]["intercept"]] = np.asarray(out["b"], dtype=np.float64)
+    objective, term_values = objective_terms(checked, None, np.asarray(X, dtype=np.float64), np.asarray(y),
+                                             np.ones(len(y)) if weights is None else np.asarray(weights),
+                                             params, values)
+    gap = float(out["gap"])
+    if not math.isfinite(gap):
+        raise NotSupported(f"the multiclass solver returned no finite duality gap (its status: {out['status']}), so "
+                           "its answer is not certified", checked.spec.goal_span)
+    status = out["status"]
+    if status != "optimal":  # B's solver says why it stopped; a budget that ran out is refused by `fit`
+        status = "max passes" if "budget" in status else status
+    absolute = gap * max(1.0, abs(float(out["objective"])))
+    distance = out["distance"]
+    note = (f"||params - optimum|| <= sqrt(2 (P - D) / mu), mu = {out['mu']:.3g} (twice the least ridge weight of "
+            "an input's weights, from l2sq and dropridge: the objective is mu-strongly convex in W)"
+            if distance is not None else
+            "none proved: the intercept is free (the losses do not change when one number is added to every "
+            "class's score), so the objective is not strongly convex in it" if ns["SPEC"]["intercept"] is not None
+            else "none proved: no l2sq penalty makes the objective strongly convex")
+    cert = Certificate("duality gap", absolute, gap, run_tol, "Fenchel duality gap of the multiclass solver"
+                       + ("" if status == out["status"] else f"; {out['status']}")
+                       + ("" if run_tol == tol else f"; run to a relative gap of {run_tol:g} rather than --tol "
+                          f"{tol:g} because --param-tol asks for the weights (an uncertified estimate where no "
+                          "distance is proved)"),
+                       distance=distance, curvature=out["mu"], distance_note=note)
+    return FitResult(params=params, objective=objective, term_values=term_values, status=status,
+                     backend="numpy", method=out["method"], certificate=cert, iterations=0,
+                     passes=int(out["passes"]), extra={})
