@@ -209,7 +209,8 @@ def lasso_case(n: int, p: int, points: int, repeats: int) -> None:
           f"all; {facts['screened']} input-fits screened out (Gap Safe) |")
     print(f"| objc selection.evaluate_grid (what `sweep --folds` runs) + refit | {chosen_seconds:.2f} | "
           f"{chosen_seconds / theirs:.2f} | {chosen['chosen']:.4g} | {spread(sel_runs)}; fold copies included; worst "
-          f"relative gap {chosen['worst_gap']:.1e}; {chosen['passes']} passes in all ({chosen['warm_start']}) |")
+          f"relative gap {chosen['worst_gap']:.1e}; {chosen['passes']} passes by the grid's fits "
+          f"({chosen['warm_start']}; the held parts' sums, one read of the table, and the refit are not counted) |")
     print(f"| sklearn LassoCV(tol={tol:g}) | {theirs:.2f} |  | {peer.alpha_:.4g} | {spread(peer_runs)}; worst relative "
           f"gap of a lasso_path on fold 1 at this tol, by objc's evaluator: {gap:.1e} |")
     final_gap = certify(checked, data, peer.alpha_, peer.coef_, float(peer.intercept_))[0]
