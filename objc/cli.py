@@ -9,6 +9,7 @@ from __future__ import annotations
 import argparse
 import contextlib
 import json
+import math
 import sys
 from dataclasses import replace
 from pathlib import Path
@@ -683,9 +684,11 @@ def cmd_plot(args) -> int:
         from objc import training
         model = training.load_trained(args.source)
         history = model.document["fit"].get("history") or []
-        if len(history) < 2:
-            raise SpecError((Diagnostic("P601", "this model holds no convergence history (the cvxpy backend "
-                                        "records none)", NO_SPAN, hint="fit with the numpy backend",
+        usable = [h for h in history if (h.get("gap") or 0) > 0 or (h.get("objective") is not None
+                                                                     and math.isfinite(h["objective"]))]
+        if len(history) < 2 or len(usable) < 2:
+            raise SpecError((Diagnostic("P601", "this model holds no usable convergence history (the cvxpy "
+                                        "backend records none; a null objective is not plotted)", NO_SPAN, hint="fit with the numpy backend",
                                         source_name=str(args.source)),))
         written = plots.convergence_curve(history, out, f"convergence of {Path(args.source).name}: "
                                           f"{model.document['fit']['method']}")

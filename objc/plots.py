@@ -138,9 +138,13 @@ def convergence_curve(history: list[dict], out: Path, title: str) -> Path:
                     label="certificate (relative)")
         ax.set_ylabel("relative gap or residual")
     else:
-        best = min(objs)
-        ax.semilogy(passes, [o - best + 1e-16 for o in objs], color=_PALETTE[1], linewidth=2.0,
-                    label="objective above the last value")
+        # a non-finite objective is stored as null: it has no place on the curve
+        kept = [(k, o) for k, o in zip(passes, objs) if o is not None and np.isfinite(o)]
+        if len(kept) < 2:
+            raise ValueError("the history holds fewer than two finite objectives and no certificate")
+        best = min(o for _k, o in kept)
+        ax.semilogy([k for k, _o in kept], [o - best + 1e-16 for _k, o in kept], color=_PALETTE[1], linewidth=2.0,
+                    label="objective above the least value")
     ax.set_xlabel("passes over the data")
     ax.legend(frameon=False, fontsize=8)
     return _save(fig, plt, out)

@@ -452,3 +452,13 @@ def test_document_keys_cover_every_key_the_loaders_read(which, models, capsys, m
     if which == "multiclass":
         assert "schema.classes" in seen
     assert sorted(p for p in seen if not _covered(p)) == []
+
+
+def test_a_history_of_null_objectives_has_no_curve_and_says_so(model_copy, tmp_path, capsys):
+    # a non-finite objective is stored as null: `plot convergence` refuses such a history (P601), no traceback
+    def nulls(doc):
+        doc["fit"]["history"] = [{"passes": k, "objective": None} for k in range(1, 4)]
+    _rewrite(model_copy, nulls)
+    rc, doc, _err = _run(capsys, ["plot", "convergence", str(model_copy), "-o", str(tmp_path / "c.png"), "--json"])
+    assert rc != 0 and doc["errors"][0]["code"] == "P601"
+    assert not (tmp_path / "c.png").exists()
