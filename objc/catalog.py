@@ -829,8 +829,8 @@ def _cp_dropridge(cp, w, p=0.5, m2=1.0):
     # sqrt(m2) scales each input's weights: a sum of squares of a linear map of w, convex
     root = np.sqrt(np.asarray(m2, dtype=float))
     if root.ndim == 1 and len(w.shape) == 2:  # one row of weights per input: scale the rows
-        return (p / (2.0 * (1.0 - p))) * cp.sum_squares(cp.multiply(np.outer(root, np.ones(w.shape[1])), w))
-    return (p / (2.0 * (1.0 - p))) * cp.sum_squares(cp.multiply(root, w))
+        return _k_dropout_factor(p) * cp.sum_squares(cp.multiply(np.outer(root, np.ones(w.shape[1])), w))
+    return _k_dropout_factor(p) * cp.sum_squares(cp.multiply(root, w))
 
 
 def _cp_hypot(cp, a, b):

@@ -21,7 +21,7 @@ from typing import Literal
 import numpy as np
 
 from objc import typed_tree as tt
-from objc.catalog import CATALOG, _k_second_moments
+from objc.catalog import CATALOG, _k_dropout_factor, _k_second_moments
 from objc.curvature import (ArgumentFault, Curvature, Monotonicity, Sign, compose, curvature_add,
                             curvature_scale, sign_add, sign_mul)
 from objc.diagnostics import Diagnostic
@@ -1406,9 +1406,9 @@ def _dropout_lines(spec: tt.ResolvedSpec, terms: list[Term]) -> list[str]:
     for u in uses:
         weights = render(u.args[0])
         norm = {"mean": "(1 / sum_i c_i) * sum_i c_i", "perrow": "(1 / n) * sum_i c_i"}.get(u.rows or "", "sum_i c_i")
-        p_text = next((ref.name for k, ref in u.tuned if k == "p"), None)
-        p = u.option_dict["p"]
-        factor = f"{p_text} / (2 (1 - {p_text}))" if p_text else f"{p / (2 * (1 - p)):.6g}"
+        drop = u.setting("p")
+        factor = f"{drop.name} / (2 (1 - {drop.name}))" if isinstance(drop, tt.TunableRef) else \
+            f"{_k_dropout_factor(drop.value):.6g}"
         squares = f"sum_j m2_j sum_k {weights}_jk^2" if u.args[0].shape.kind == "weights" else \
             f"sum_j m2_j {weights}_j^2"
         out.append(f"  {render(u)} = {factor} * {squares}, m2_j = {norm} * x_ij^2 over the inputs {weights} weighs "

@@ -255,6 +255,10 @@ class Apply:
     def option_dict(self) -> dict[str, float]:
         return dict(self.options)
 
+    def setting(self, key: str) -> "TExpr":
+        """One option as an expression: the tunable that sets it, or its number."""
+        return dict(self.tuned).get(key) or Const(float(self.option_dict[key]), self.span)
+
     def option_values(self, tunables: Mapping[str, float] | None = None) -> dict[str, float]:
         """The options at these tunable values (a tunable not given stands at its default)."""
         out = dict(self.options)

@@ -539,8 +539,7 @@ class _Emitter:
             if fields["form"].value == "dropout":
                 # a ridge weighted by the rows' second moments, which the runtime takes from its data
                 core = t.core
-                drop = next((ref for k, ref in core.tuned if k == "p"), None) or tt.Const(core.option_dict["p"],
-                                                                                            core.span)
+                drop = core.setting("p")
                 fields.update(rows=ast.Constant(core.rows or "mean"), drop=_name(self.value_function(
                     f"term_{t.index}_drop", ["tun"], f"Term {t.index + 1}: the drop probability.", drop, None)),
                     factor=_name(self.kernel(catalog._k_dropout_factor)),
@@ -654,13 +653,8 @@ class _Emitter:
         return ast.Dict([ast.Constant(k) for k in fields], list(fields.values()))
 
     def map_functions(self) -> None:
-        """The feature maps' math, copied by source from objc (typed_tree's names, tables' values),
-        so the module computes every map as objc does."""
-        from objc import tables
-        for fn in (tt.map_exponents, tt.map_product_name, tt.map_knot_name, tt.map_knot_of,
-                   tables.map_category_text, tables.map_sorted_categories, tables.map_fourier_draws,
-                   tables.map_fit, tables.map_state_from_names, tables.map_outputs, tables.map_unseen_rows):
-            self.defs.append(ast.parse(textwrap.dedent(inspect.getsource(fn))).body[0])
+        """The feature maps' math, copied by source from objc, so the module computes every map as objc does."""
+        self.defs += _map_defs()
 
     def feature_function(self, fname: str, f: tt.DerivedFeature) -> None:
         from objc import syntax_tree as st
@@ -1078,8 +1072,7 @@ def _mc_plan(checked: CheckedObjective) -> dict[str, Any]:
         elif t.kind == "params" and isinstance(t.core, tt.Apply) and CATALOG[t.core.entry].reads_second_moments \
                 and isinstance(t.core.args[0], tt.ParamRef) and t.core.args[0].name == form[0]:
             # the drop probability (a number or a tunable) goes along; the solve turns it into a ridge
-            drop = next((ref for k, ref in t.core.tuned if k == "p"), None) or tt.Const(t.core.option_dict["p"],
-                                                                                           t.core.span)
+            drop = t.core.setting("p")
             penalties.append(("dropridge", factors + [drop]))
         else:
             raise NotSupported(f"term {t.index + 1} ('{t.text}') is neither a multiclass loss of the score nor "
@@ -1192,15 +1185,20 @@ def _mc_kernels() -> set[str]:
     return names | {"_k_mc_softmax_ce", "_k_mc_probabilities", "_k_dropout_factor", "_k_second_moments"}
 
 
-def _mc_map_defs() -> list[ast.stmt]:
-    """The feature maps' math and the estimator's way of applying them, copied by source (one home:
-    objc's own functions, as the binary modules copy them)."""
+def _map_defs() -> list[ast.stmt]:
+    """The feature maps' math (typed_tree's names, tables' values), copied by source from objc."""
     from objc import tables
-    from objc.backends import numpy_estimator_src as estimator_src
     fns = (tt.map_exponents, tt.map_product_name, tt.map_knot_name, tt.map_knot_of, tables.map_category_text,
            tables.map_sorted_categories, tables.map_fourier_draws, tables.map_fit, tables.map_state_from_names,
-           tables.map_outputs, tables.map_unseen_rows, estimator_src._map_unscaled, estimator_src._apply_maps)
+           tables.map_outputs, tables.map_unseen_rows)
     return [ast.parse(textwrap.dedent(inspect.getsource(fn))).body[0] for fn in fns]
+
+
+def _mc_map_defs() -> list[ast.stmt]:
+    """The maps' math and the estimator's way of applying them (the binary modules' own, copied by source)."""
+    from objc.backends import numpy_estimator_src as estimator_src
+    return _map_defs() + [ast.parse(textwrap.dedent(inspect.getsource(fn))).body[0]
+                          for fn in (estimator_src._map_unscaled, estimator_src._apply_maps)]
 
 
 def _emit_multiclass(checked: CheckedObjective) -> str:
