@@ -18,6 +18,7 @@ matrix (X @ v or X.T @ u).
 """
 
 import math
+import sys
 
 import numpy as np
 
@@ -234,20 +235,42 @@ def _theta_indices(pb, param, entries):
     return start + _indices_of(entries, pb.input_names, f"the spec's {param}[...]")
 
 
+def tunable_refusal(name, value, declared):
+    """Why `value` cannot be given to the tunable `name`, as (what is wrong, what to do), or None when
+    it can. `declared` maps each tunable of the spec to (default, low, high). The one wording of this
+    rule: objc's own stages (a `tune` line's E402) and every generated module (NumPy, multiclass, cvxpy)
+    call it, so a value is refused in the same words wherever it is given."""
+    if name not in declared:
+        return (f"the spec has no tunable {name!r} (it declares: {', '.join(declared) or 'none'})",
+                "give only the tunables the spec's `tune` lines declare")
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        return f"tunable {name} must be a number, got {value!r}", "give a number inside its declared range"
+    _default, low, high = declared[name]
+    if not (low <= number <= high):  # NaN is refused here too
+        # the convexity verdict was proved for the declared range only
+        return (f"tunable {name} = {number:g} lies outside its declared range {low:g} .. {high:g}",
+                f"pick a value inside {low:g} .. {high:g}, or widen the range on the spec's `tune {name}` line")
+    return None
+
+
+def settled_tunables(declared, given, error):
+    """Each declared tunable's value: its default unless `given` names it. A value `tunable_refusal`
+    refuses is raised as `error("what is wrong: what to do")`."""
+    values = {name: float(default) for name, (default, _low, _high) in declared.items()}
+    for name, value in (given or {}).items():
+        refusal = tunable_refusal(name, value, declared)
+        if refusal is not None:
+            raise error(f"{refusal[0]}: {refusal[1]}")
+        values[name] = float(value)
+    return values
+
+
 def resolve_tunables(spec, tunables):
     """Tunable values: the spec's defaults, overridden by `tunables`, each within its declared range."""
-    tun = dict(spec["tunables"])
-    for name, value in (tunables or {}).items():
-        if name not in tun:
-            known = ", ".join(sorted(tun)) or "none"
-            raise SolverInputError(f"unknown tunable {name!r} (the spec declares: {known})")
-        value = float(value)
-        low, high = spec["tunable_ranges"][name]
-        if not (low <= value <= high):
-            # the convexity verdict holds for the declared range only
-            raise SolverInputError(f"tunable {name} = {value:g} lies outside its declared range {low:g} .. {high:g}")
-        tun[name] = value
-    return tun
+    declared = {name: (default, *spec["tunable_ranges"][name]) for name, default in spec["tunables"].items()}
+    return settled_tunables(declared, tunables, SolverInputError)
 
 
 def _bind_score(pb, spec):
@@ -1128,29 +1151,35 @@ def _modulus(pb, frame, d):
 # checked (the one-point floor is l'' itself) and L-BFGS hands over to Newton steps with it (`method_lbfgs`).
 # Dense tables only: a sparse table's rows would be densified.
 
+def _blas_controller(memo={}):
+    """threadpoolctl's view of the loaded BLAS/OpenMP libraries, scanned once per set of imported modules.
+    A scan reads the process's whole map of shared objects (measured: about 2 ms a scan with SciPy and
+    scikit-learn loaded, three scans a fit, a sixth of a 1e4 x 100 logistic fit), and a new library comes
+    only with a new import, so the count of imported modules keys the one kept scan. None without
+    threadpoolctl or when the scan fails: a thread cap is an optimisation only, never a reason to fail."""
+    if _threadpoolctl is None:
+        return None
+    key = len(sys.modules)
+    if memo.get("key") != key:
+        try:
+            memo["controller"] = _threadpoolctl.ThreadpoolController()
+        except Exception:
+            memo["controller"] = None
+        memo["key"] = key
+    return memo["controller"]
+
+
 class _OneBlasThread:
     """NumPy's BLAS at one thread inside the block (restored after): for many small products, whose
     thread hand-offs dominate. Measured on the 2-core benchmark machine, 12 rank-1300 updates of a 100 x 100
     matrix took 11-12 ms on one thread and 12-57 ms on two, up to 400 ms while another process held a core
     (an idle core is needed at every hand-off); one thread was as fast as two when the machine was idle."""
 
-    def __init__(self, pb=None):
-        # a path's cache keeps the scan of the loaded libraries (a ThreadpoolController): a fresh cap re-reads
-        # them, a few ms with SciPy and scikit-learn loaded, at each of a path's many entries
-        self._prepared = getattr(pb, "prepared", None)
-
     def __enter__(self):
-        try:  # a thread cap is an optimisation only, never a reason to fail
-            if _threadpoolctl is None:
-                self._cap = None
-            elif self._prepared is None:
-                self._cap = _threadpoolctl.threadpool_limits(limits=1, user_api="blas")
-            else:
-                controller = self._prepared.get("blas controller")
-                if controller is None:
-                    controller = self._prepared["blas controller"] = _threadpoolctl.ThreadpoolController()
-                self._cap = controller.limit(limits=1, user_api="blas")
-        except Exception:
+        controller = _blas_controller()
+        try:
+            self._cap = None if controller is None else controller.limit(limits=1, user_api="blas")
+        except Exception:  # a thread cap is an optimisation only, never a reason to fail
             self._cap = None
         return self
 
@@ -1173,7 +1202,7 @@ def _sample_hessian(pb, rows, d):
     root = np.sqrt(d)
     chunk = max(1, (1 << 20) // (8 * pb.p))
     buf = np.empty((min(chunk, k), pb.p))
-    with _OneBlasThread(pb):
+    with _OneBlasThread():
         for first in range(0, k, chunk):
             last = min(first + chunk, k)
             block = buf[:last - first]
@@ -1223,7 +1252,7 @@ def _sampled_curvature(pb, s):
     gamma = (k + 8) * unit / (1.0 - (k + 8) * unit)  # k products, each entry of S off by at most 3u
     allowance = gamma * float(np.dot(d0, norms2)) * (1.0 + 1e-10) + \
         10.0 * size * unit * float(np.sqrt(np.sum(H * H)))
-    with _OneBlasThread(pb):  # a small eigenproblem: the same hand-offs
+    with _OneBlasThread():  # a small eigenproblem: the same hand-offs
         least = float(np.linalg.eigvalsh(H)[0]) - allowance
     if not least > 0.0:
         return None
@@ -2802,9 +2831,9 @@ class _ThreadLimits:
 
     def __enter__(self):
         self._limiter = None
-        if _threadpoolctl is not None:
+        controller = _blas_controller()
+        if controller is not None:
             try:
-                controller = _threadpoolctl.ThreadpoolController()
                 others = [lib.filepath for lib in controller.lib_controllers if "numpy" not in str(lib.filepath)]
                 if others:
                     self._limiter = controller.select(filepath=others).limit(limits=1)
