@@ -751,10 +751,14 @@ def _penalty_conjugate(pb, z):
 
 def dual_adjoint_inputs(pb, derivs):
     """u = sum over row terms of rho * d: the vector whose adjoint is the gradient (and the dual point)."""
-    u = np.zeros(pb.n)
+    u = None
     for term, d in zip(pb.row_terms, derivs):
-        u += term.rho * d
-    return u
+        part = term.rho * d
+        if u is None and np.shape(part) == (pb.n,):
+            u = np.asarray(part, dtype=np.float64)  # a fresh product: one pass, no zeros to add into
+        else:
+            u = (np.zeros(pb.n) if u is None else u) + part
+    return np.zeros(pb.n) if u is None else u
 
 
 # at most this share of the rows may be touched to balance the dual point without a pass
