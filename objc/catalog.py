@@ -624,7 +624,7 @@ def _k_inputs_l2_d(W):
 # practice, no source).
 
 def _k_mc_onehot(y, K):
-    E = np.zeros((len(y), K))
+    E = np.zeros((len(y), K), order="F")  # column-major like the solver's scores (see _MCData.scores)
     E[np.arange(len(y)), np.asarray(y).astype(np.int64)] = 1.0
     return E
 
@@ -645,13 +645,16 @@ def _k_softmax_ce_vd(S, y):
 
 
 def _k_softmax_ce_conj(V, y):
-    # with q = v + e_y in the simplex: sum_k q_k log q_k (the negative entropy; 0 log 0 = 0)
-    Q = np.asarray(V, dtype=float) + _k_mc_onehot(y, np.shape(V)[1])
+    # with q = v + e_y in the simplex: sum_k q_k log q_k (the negative entropy; 0 log 0 = 0); the copy keeps
+    # V's memory layout, so a column-major V is reduced over its classes column by column
+    Q = np.array(V, dtype=float)
+    Q[np.arange(Q.shape[0]), np.asarray(y).astype(np.int64)] += 1.0
     inside = (np.min(Q, axis=1) >= -1e-9) & (np.abs(np.sum(Q, axis=1) - 1.0) <= 1e-9)
-    Qp = np.maximum(Q, 0.0)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ent = np.sum(np.where(Qp > 0.0, Qp * np.log(np.where(Qp > 0.0, Qp, 1.0)), 0.0), axis=1)
-    return np.where(inside, ent, np.inf)
+    np.maximum(Q, 0.0, out=Q)
+    logs = np.zeros_like(Q)
+    np.log(Q, out=logs, where=Q > 0.0)
+    Q *= logs
+    return np.where(inside, np.sum(Q, axis=1), np.inf)
 
 
 def _k_cs_hinge_d(S, y):

@@ -80,19 +80,31 @@ class _MCData:
         self.passes = 0
 
     def scores(self, W, c):
-        """(X - 1 m^T) W + 1 c^T: one pass."""
+        """(X - 1 m^T) W + 1 c^T: one pass. The n x K result is column-major (each class's scores contiguous):
+        the per-row reductions over the K classes (max, sum) are then elementwise operations over whole columns,
+        several times faster in NumPy than reducing rows of length K (measured at K = 10)."""
+        if not np.any(W):  # a cold start: the scores are the intercepts, no pass over the table is needed
+            S = np.empty((self.n, self.K), order="F")
+            S[:] = c if self.m is not None else 0.0
+            return S
         self.passes += 1
-        S = np.asarray(self.X @ W, dtype=np.float64)
+        if self.sparse:
+            S = np.asfortranarray(self.X @ W, dtype=np.float64)
+        else:
+            S = (np.asarray(W, dtype=np.float64).T @ self.X.T).T
         if self.m is not None:
-            S = S + (c - self.m @ W)
+            S += c - self.m @ W
         return S
 
     def back(self, U):
         """(X - 1 m^T)^T U: one pass."""
         self.passes += 1
-        g = np.asarray(self.X.T @ U, dtype=np.float64)
+        if self.sparse:
+            g = np.asarray(self.X.T @ U, dtype=np.float64)
+        else:
+            g = np.ascontiguousarray((U.T @ self.X).T)
         if self.m is not None:
-            g = g - np.outer(self.m, np.sum(U, axis=0))
+            g -= np.outer(self.m, np.sum(U, axis=0))
         return g
 
     def user_intercept(self, W, c):
@@ -428,7 +440,7 @@ def _mc_lbfgs(d, coef, W, c, tol, budget, memory_size=10):
         for _ in range(50):
             f_t, V_t = _mc_loss_vd(loss, S + t * dS, d.y)
             val = float(d.rho @ f_t) + c2 * float(np.sum((W + t * DW) ** 2))
-            der = float(np.sum((d.rho[:, None] * V_t) * dS)) + 2.0 * c2 * (WD + t * DD)
+            der = float(d.rho @ np.sum(V_t * dS, axis=1)) + 2.0 * c2 * (WD + t * DD)
             if not (math.isfinite(val) and val <= P + 1e-4 * t * slope):
                 hi = t
             elif der < 0.9 * slope:
