@@ -180,6 +180,9 @@ def cmd_check(args) -> int:
 # ---------------------------------------------------------------- build
 
 def cmd_build(args) -> int:
+    if args.lean and args.backend != "numpy":
+        raise UsageError("--lean applies to the numpy backend (a cvxpy module imports cvxpy, not objc); "
+                         "leave it out or use --backend numpy")
     from objc.frontend import check_file
     from objc import training
     checked = check_file(args.spec)
@@ -190,7 +193,7 @@ def cmd_build(args) -> int:
     else:
         from objc.backends import numpy_module
         try:
-            text = numpy_module.emit_module(checked)
+            text = numpy_module.emit_module(checked, "import" if args.lean else "inline")
         except numpy_module.NotSupported as err:
             raise training.numpy_refusal(checked, err) from None
     out = Path(args.output)
@@ -198,9 +201,11 @@ def cmd_build(args) -> int:
     _atomic_write(out, text.encode("utf-8"))
     if args.json:
         _emit_json({"command": "build", "ok": True, "spec": args.spec, "backend": args.backend, "output": str(out),
-                    "bytes": len(text.encode("utf-8")), "sha256_spec": checked.spec_hash})
+                    "bytes": len(text.encode("utf-8")), "sha256_spec": checked.spec_hash,
+                    "runtime": "imported from objc" if args.lean else "standalone"})
     else:
-        print(f"wrote {out} ({args.backend} backend, {len(text.splitlines())} lines) from {args.spec}")
+        kind = ", imports objc's solver code" if args.lean else ""
+        print(f"wrote {out} ({args.backend} backend{kind}, {len(text.splitlines())} lines) from {args.spec}")
     return EXIT_OK
 
 
@@ -743,6 +748,9 @@ def _parser() -> argparse.ArgumentParser:
     b.add_argument("spec")
     b.add_argument("--backend", choices=["numpy", "cvxpy"], default="numpy")
     b.add_argument("-o", "--output", required=True, help="the .py file to write")
+    b.add_argument("--lean", action="store_true",
+                   help="numpy backend: write a small module that imports objc's kernels and solver code from the "
+                        "installed objc instead of carrying them (default: a standalone module needing only NumPy)")
     b.add_argument("--local-ok", action="store_true", help=argparse.SUPPRESS)
     common(b)
     f = sub.add_parser("fit", help="train on the spec's table and save a model")

@@ -167,12 +167,6 @@ def _paths_module():
     return paths
 
 
-def _out_of_range(checked: CheckedObjective, t: tt.Tunable, what: str) -> SpecError:
-    return SpecError((Diagnostic("E402", f"{what} leaves {t.name}'s declared range {t.low:g} .. {t.high:g}",
-                                 t.span, hint="sweep inside the declared range, or widen it in the spec",
-                                 source_name=checked.source.name),), checked.source)
-
-
 def resolve_axis(checked: CheckedObjective, request: AxisText, *, data: tables.BoundData | None = None,
                  base: dict[str, float] | None = None, default_steps: int = DEFAULT_STEPS,
                  default_linear: bool = False) -> Axis:
@@ -182,20 +176,24 @@ def resolve_axis(checked: CheckedObjective, request: AxisText, *, data: tables.B
     range lies above zero). An unknown tunable is
     a ValueError; a value outside the declared range is E402 at the `tune` line."""
     known = {t.name: t for t in checked.spec.tunables}
-    if request.name not in known:
-        raise ValueError(f"the spec has no tunable '{request.name}' (tunables: {', '.join(known) or 'none'})")
+    # a listed value or a span's end is refused as a value given to `fit` is (one rule, one wording)
+    if request.values is not None:
+        given = tuple(request.values)
+    elif request.low is not None:
+        given = (request.low, request.high)
+    else:  # nothing given: any number, so an unknown name is refused in the same words
+        given = () if request.name in known else (0.0,)
+    for value in given:
+        err = training.tunable_diagnostic(checked, request.name, value)
+        if err is not None:
+            raise err
     t = known[request.name]
     if request.values is not None:
-        outside = [v for v in request.values if not (t.low <= v <= t.high)]
-        if outside:
-            raise _out_of_range(checked, t, f"the value {outside[0]:g}")
         return Axis(t.name, tuple(sorted(set(request.values))), "listed", "listed")
     steps = request.steps or default_steps
     linear = request.spacing == "lin" or (request.spacing is None and default_linear)
     if request.low is not None:
         low, high, origin = request.low, request.high, "given"
-        if not (t.low <= low and high <= t.high):
-            raise _out_of_range(checked, t, f"the span {low:g} .. {high:g}")
     else:
         low, high, origin = t.low, t.high, "the declared range"
         paths = _paths_module()

@@ -45,20 +45,35 @@ def require_trainable(checked: CheckedObjective, allow_nonconvex: bool = False) 
                         checked.source)
 
 
+def declared_tunables(checked: CheckedObjective) -> dict[str, tuple[float, float, float]]:
+    """Each tunable's (default, low, high), the shape `tunable_refusal` reads."""
+    return {t.name: (t.default, t.low, t.high) for t in checked.spec.tunables}
+
+
+def tunable_diagnostic(checked: CheckedObjective, name: str, value: object) -> SpecError | ValueError | None:
+    """The refusal of one given value in objc's own terms: an unknown name is a ValueError (a usage
+    mistake); a value outside the declared range is E402 at the `tune` line, since the convexity
+    verdict was proved for that range only. The words are `tunable_refusal`'s, the generated modules' own."""
+    # imported here: the runtime module imports SciPy's optimizers (a quarter second), which `check` never needs
+    from objc.backends.numpy_solvers_src import tunable_refusal
+    declared = declared_tunables(checked)
+    refusal = tunable_refusal(name, value, declared)
+    if refusal is None:
+        return None
+    if name not in declared:
+        return ValueError(f"{refusal[0]}: {refusal[1]}")
+    t = next(t for t in checked.spec.tunables if t.name == name)
+    return SpecError((Diagnostic("E402", refusal[0], t.span, hint=refusal[1], source_name=checked.source.name),),
+                     checked.source)
+
+
 def tunable_values(checked: CheckedObjective, given: dict[str, float] | None = None) -> dict[str, float]:
-    """Every tunable's value: its default unless given. An unknown name is a ValueError (a usage
-    mistake); a value outside the declared range is a SpecError pointing at the `tune` line, since
-    the convexity verdict was proved for that range only."""
-    known = {t.name: t for t in checked.spec.tunables}
-    values = {name: t.default for name, t in known.items()}
+    """Every tunable's value: its default unless given (refusals as `tunable_diagnostic` says)."""
+    values = {name: float(default) for name, (default, _low, _high) in declared_tunables(checked).items()}
     for name, v in (given or {}).items():
-        if name not in known:
-            raise ValueError(f"the spec has no tunable '{name}' (tunables: {', '.join(known) or 'none'})")
-        t = known[name]
-        if not (t.low <= float(v) <= t.high):
-            raise SpecError((Diagnostic("E402", f"{name} = {float(v):g} lies outside its declared range {t.low:g} .. "
-                                        f"{t.high:g}", t.span, hint="widen the range in the spec, or pick a value "
-                                        "inside it", source_name=checked.source.name),), checked.source)
+        err = tunable_diagnostic(checked, name, v)
+        if err is not None:
+            raise err
         values[name] = float(v)
     return values
 

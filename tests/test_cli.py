@@ -319,7 +319,7 @@ def test_sweep_over_two_tunables_in_the_grid_syntax(tmp_path, capsys):
     (["lam:0.1"], 2, "LOW..HIGH"),
     (["lam:0.1..1:x"], 2, "not a whole number"),
     (["lam:0.0001..1:3"], 1, "sw.objc:5:1: error [E402]"),  # a spec-range error, located at `tune`, as fit --set
-    (["lam=0.5,20"], 1, "[E402] the value 20 leaves lam's declared range"),
+    (["lam=0.5,20"], 1, "[E402] tunable lam = 20 lies outside its declared range"),
     (["mu"], 2, "no tunable 'mu'"),
     (["lam", "lam:0.1..1"], 2, "given twice"),
     (["lam", "--choose", "one-se"], 2, "--folds"),

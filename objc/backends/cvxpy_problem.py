@@ -55,6 +55,7 @@ import numpy as np
 
 from objc import catalog as catalog_module
 from objc import typed_tree as tt
+from objc.backends import numpy_solvers_src as solvers_src
 from objc.catalog import CATALOG, Entry, _k_second_moments
 from objc.checker import CheckedObjective, EvalEnv, analyse, evaluate, render
 from objc.diagnostics import Diagnostic, SpecError
@@ -136,25 +137,6 @@ def _prepare_arrays(X, y, weights, input_names):
     if weight_total <= 0:
         raise ValueError("every row weight is zero")
     return X, y, weights, weight_total
-
-
-def _tunable_values(given, declared):
-    """Tunable values from the defaults and the given ones, each checked against its declared range."""
-    unknown = [name for name in given if name not in declared]
-    if unknown:
-        raise ValueError("unknown tunable(s) " + ", ".join(repr(n) for n in unknown) + "; the spec declares "
-                         + (", ".join(repr(n) for n in declared) or "none"))
-    values = {}
-    for name, (default, low, high) in declared.items():
-        value = given.get(name, default)
-        try:
-            value = float(value)
-        except (TypeError, ValueError):
-            raise ValueError("tunable %r must be a number, got %r" % (name, value)) from None
-        if not (low <= value <= high):
-            raise ValueError("tunable %r = %g lies outside its declared range %g .. %g" % (name, value, low, high))
-        values[name] = value
-    return values
 
 
 def _choose_solver(problem, installed):
@@ -572,13 +554,15 @@ def _compare(left: Any, op: str, right: Any) -> Any:
 
 
 def _checked_tunables(checked: CheckedObjective, given: Mapping[str, float] | None) -> dict[str, float]:
+    """The tunables' values, a refused one (`tunable_refusal`: the words of every other stage) as C401 at
+    its `tune` line."""
     declared = {t.name: (t.default, t.low, t.high) for t in checked.spec.tunables}
-    try:
-        return _tunable_values(dict(given or {}), declared)
-    except ValueError as err:
-        span = next((t.span for t in checked.spec.tunables if repr(t.name) in str(err)), NO_SPAN)
-        raise _error("C401", str(err), span, "pass values for declared tunables, inside their `within` range",
-                     checked) from None
+    for name, value in (given or {}).items():
+        refusal = solvers_src.tunable_refusal(name, value, declared)
+        if refusal is not None:
+            span = next((t.span for t in checked.spec.tunables if t.name == name), NO_SPAN)
+            raise _error("C401", refusal[0], span, refusal[1], checked)
+    return solvers_src.settled_tunables(declared, given, ValueError)
 
 
 def set_tunables(built: CvxpyBuild, tunables: Mapping[str, float]) -> None:
@@ -1180,7 +1164,8 @@ def emit_module(checked: CheckedObjective, input_names: Sequence[str] | None = N
                    _to_ast(_name(emitter.copy(_prepare_arrays, _this_module()))(
                        _name("X"), _name("y"), _name("weights"), _name("INPUT_NAMES")))),
         _assign("n_inputs", _name("X").shape[1]),
-        _assign("values", _name(emitter.copy(_tunable_values, _this_module()))(_name("tunables"), _name("TUNABLES"))),
+        _assign("values", _name(emitter.copy(solvers_src.settled_tunables, solvers_src))(_name("TUNABLES"), _name("tunables"),
+                                                                              _name("ValueError"))),
     ]
     for t in spec.tunables:
         body.append(_assign(idents[("tunable", t.name)],

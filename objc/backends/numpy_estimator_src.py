@@ -11,6 +11,13 @@ import sys
 
 import numpy as np
 
+# imported here so the file runs as a module of objc; a generated module drops every import of this file
+# and has these names itself (the solver code, the maps' math and the missing-cell spellings, pasted in)
+from objc.backends.numpy_solvers_src import (_default_input_names, _is_sparse, as_data_matrix, decision_values,
+                                             resolve_tunables, run_solver)
+from objc.cells import MISSING_CELLS as _MISSING_CELLS
+from objc.tables import map_category_text, map_fit, map_outputs, map_unseen_rows
+
 
 # ---------------------------------------------------------------- the estimator
 

@@ -23,16 +23,19 @@ import ast
 import functools
 import hashlib
 import inspect
-import math
 import keyword
+import linecache
+import math
 import textwrap
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Literal
 
 import numpy as np
 
 from objc import catalog
 from objc import typed_tree as tt
+from objc.backends import numpy_solvers_src as _solvers_src
 from objc.catalog import CATALOG
 from objc.cells import MISSING_CELLS
 from objc.checker import CheckedObjective, Term, render
@@ -153,10 +156,10 @@ def _kernel_name(fn: Callable) -> str:
     return name
 
 
-def _kernel_defs(names: set[str]) -> list[ast.stmt]:
+def _kernel_copies(names: set[str]) -> list[_Copied]:
     """The kernels by source (and the kernels they call), in the catalog's own order."""
     wanted, todo = set(), list(names)
-    parsed: dict[str, ast.FunctionDef] = {}
+    copies: dict[str, _Copied] = {}
     while todo:
         name = todo.pop()
         if name in wanted:
@@ -164,27 +167,135 @@ def _kernel_defs(names: set[str]) -> list[ast.stmt]:
         fn = getattr(catalog, name, None)
         if fn is None or not name.startswith("_k_"):
             raise NotSupported(f"no catalog kernel named {name}")
-        tree = ast.parse(textwrap.dedent(inspect.getsource(fn)))
-        node = tree.body[0]
-        assert isinstance(node, ast.FunctionDef)
-        parsed[name] = node
+        copies[name] = _definition_copy(fn)
         wanted.add(name)
-        for sub in ast.walk(node):
+        for sub in ast.walk(ast.parse(copies[name].text)):
             if isinstance(sub, ast.Name) and sub.id.startswith("_k_") and sub.id not in wanted:
                 todo.append(sub.id)
-    order = [n for n in vars(catalog) if n in wanted]
-    return [parsed[n] for n in order]
+    return [copies[n] for n in vars(catalog) if n in wanted]
 
 
-def _runtime_defs() -> list[ast.stmt]:
-    """Every function and class of the runtime sources (their imports are the module header's)."""
-    out: list[ast.stmt] = []
-    for file in _RUNTIME_FILES:
-        tree = ast.parse((_HERE / file).read_text(encoding="utf-8"))
-        for node in tree.body:
-            if isinstance(node, (ast.FunctionDef, ast.ClassDef, ast.Assign)):
-                out.append(node)
+# ---------------------------------------------------------------- objc's own source, copied with its comments
+
+@dataclass(frozen=True)
+class _Copied:
+    """One top-level definition of objc's source as its file writes it (the comments above it, its
+    docstrings, its inner comments): a standalone module carries this text, a lean one imports `name`
+    from `module`."""
+
+    module: str  # the dotted name it has in objc, e.g. "objc.catalog"
+    name: str
+    text: str
+
+    @property
+    def origin(self) -> str:
+        return self.module.replace(".", "/") + ".py"
+
+
+def _definition_copy(fn: Callable) -> _Copied:
+    """A function of objc with the comment block right above it."""
+    text = textwrap.dedent((inspect.getcomments(fn) or "") + inspect.getsource(fn))
+    return _Copied(fn.__module__, fn.__name__, _trimmed(text.split("\n")))
+
+
+def _trimmed(lines: list[str]) -> str:
+    while lines and not lines[0].strip():
+        lines = lines[1:]
+    while lines and not lines[-1].strip():
+        lines = lines[:-1]
+    return "\n".join(line.rstrip() for line in lines)
+
+
+def _file_copies(file: str) -> list[_Copied]:
+    """Every function, class and assignment of a runtime file, in its order, each with the text since the
+    statement before it (so the comment blocks and section rules above it come along). The file's
+    docstring and imports are left out with the comments above them: a module has its own imports, and
+    objc's names that a runtime file imports (the catalog's kernels, ...) are pasted in beside it."""
+    text = (_HERE / file).read_text(encoding="utf-8")
+    lines = text.split("\n")
+    out: list[_Copied] = []
+    previous_end = 0
+    for node in ast.parse(text).body:
+        start, previous_end = previous_end, node.end_lineno or node.lineno
+        if isinstance(node, (ast.FunctionDef, ast.ClassDef)):
+            name = node.name
+        elif isinstance(node, ast.Assign) and isinstance(node.targets[0], ast.Name):
+            name = node.targets[0].id
+        else:
+            continue
+        out.append(_Copied(f"objc.backends.{file.removesuffix('.py')}", name, _trimmed(lines[start:previous_end])))
     return out
+
+
+def _copied_text(copies: list[_Copied], what: str) -> str:
+    """The definitions as text, under a marker line for each source file they come from."""
+    blocks: list[str] = []
+    for k, c in enumerate(copies):
+        if k == 0 or copies[k - 1].origin != c.origin:
+            blocks.append(f"# ---- {what}, as {c.origin} writes it (edit it there)\n\n" + c.text)
+        else:
+            blocks.append(c.text)
+    return "\n\n\n".join(blocks)
+
+
+def _names_read(nodes: list[ast.stmt]) -> set[str]:
+    return {n.id for node in nodes for n in ast.walk(node) if isinstance(n, ast.Name)}
+
+
+_LEAN_OPTION = "--lean"
+
+
+def _import_text(groups: list[list[_Copied]], used: set[str]) -> str:
+    """The imports of a lean module: from each copied source, the names the module's own code reads
+    (what they call in turn resolves inside objc)."""
+    modules: dict[str, set[str]] = {}
+    for copies in groups:
+        for c in copies:
+            if c.name in used:
+                modules.setdefault(c.module, set()).add(c.name)
+    lines = [f"try:  # the solver code is objc's own (a module written by `objc build {_LEAN_OPTION}`)"]
+    for module, names in modules.items():
+        head = f"    from {module} import ("
+        row, rows = "", []
+        for name in sorted(names):
+            if row and len(head) + len(row) + len(name) + 2 > 110:
+                rows.append(row.rstrip())
+                row = ""
+            row += name + ", "
+        rows.append(row.rstrip(", ") + ")")
+        lines.append(head + ("\n" + " " * len(head)).join(rows))
+    lines += ["except ImportError as _missing:",
+              f"    raise ImportError(\"this module runs objc's solver code (it was written by `objc build {_LEAN_OPTION}`): \"",
+              "                      \"install objc, or write a standalone module with `objc build` alone\") from _missing"]
+    return "\n".join(lines)
+
+
+class _Assembly:
+    """A module's text, section by section, and the syntax tree it must parse to (checked in `text`)."""
+
+    def __init__(self) -> None:
+        self.parts: list[str] = []
+        self.tree: list[ast.stmt] = []
+
+    def nodes(self, nodes: list[ast.stmt], comment: str | None = None) -> None:
+        if nodes:
+            module = ast.fix_missing_locations(ast.Module(body=list(nodes), type_ignores=[]))
+            self._add(ast.unparse(module), nodes, comment)
+
+    def source(self, text: str, comment: str | None = None, nodes: list[ast.stmt] | None = None) -> None:
+        if text:
+            self._add(text, ast.parse(text).body if nodes is None else nodes, comment)
+
+    def _add(self, text: str, nodes: list[ast.stmt], comment: str | None) -> None:
+        self.parts.append((comment + "\n" if comment else "") + text.strip("\n"))
+        self.tree += nodes
+
+    def text(self) -> str:
+        source = "\n\n\n".join(self.parts) + "\n"
+        # the joins and the layout only add comments and line breaks: the tree must be the one assembled
+        if ast.dump(ast.parse(source)) != ast.dump(ast.Module(body=self.tree, type_ignores=[])):
+            raise AssertionError("the assembled module differs from its syntax tree")
+        return source
 
 
 # ---------------------------------------------------------------- straight-line code from the typed tree
@@ -452,6 +563,7 @@ class _Emitter:
         self.checked = checked
         self.kernels: set[str] = set(_RUNTIME_KERNELS)
         self.defs: list[ast.stmt] = []
+        self.maps = False
 
     def kernel(self, fn: Callable) -> str:
         name = _kernel_name(fn)
@@ -653,8 +765,8 @@ class _Emitter:
         return ast.Dict([ast.Constant(k) for k in fields], list(fields.values()))
 
     def map_functions(self) -> None:
-        """The feature maps' math, copied by source from objc, so the module computes every map as objc does."""
-        self.defs += _map_defs()
+        """The feature maps' math, objc's own (`_map_copies`), so the module computes every map as objc does."""
+        self.maps = True
 
     def feature_function(self, fname: str, f: tt.DerivedFeature) -> None:
         from objc import syntax_tree as st
@@ -801,46 +913,66 @@ def unsupported(checked: CheckedObjective) -> NotSupported | None:
     return None
 
 
-def emit_module(checked: CheckedObjective) -> str:
-    """The standalone NumPy module for a checked objective (byte-identical for the same spec).
+Runtime = Literal["inline", "import"]
+
+
+def emit_module(checked: CheckedObjective, runtime: Runtime = "inline") -> str:
+    """The NumPy module for a checked objective (byte-identical for the same spec and `runtime`).
+
+    runtime "inline" (the default) writes a standalone module: objc's kernels, solver and estimator
+    code are in it as their files write them, comments included, each block under a line naming its
+    file. "import" writes a lean module that imports them from the installed objc (the estimator code,
+    which reads the module's own `SPEC`, stays in it); both predict alike.
 
     Raises NotSupported when the spec holds something this backend cannot solve (a constraint it
     cannot project on, a term mixing rows and other expressions), with the spec line.
     """
+    if runtime not in ("inline", "import"):
+        raise ValueError(f"runtime must be 'inline' or 'import', not {runtime!r}")
     if checked.verdict == "not subdifferentiable":
         raise NotSupported("the objective is not subdifferentiable: the 0-1 loss is for evaluation only, so "
                            "nothing can be trained on it (train a surrogate such as hinge or logistic)")
     if checked.task == "multiclass":
-        return _emit_multiclass(checked)
+        return _emit_multiclass(checked, runtime)
     em = _Emitter(checked)
     spec_table = em.spec_table()
     estimator = em.estimator_class()
-    body: list[ast.stmt] = [ast.Expr(ast.Constant(_header(checked)))]
-    body += ast.parse(_IMPORTS).body
-    body.append(ast.Assign([ast.Name("_MISSING_CELLS", ast.Store())], _const(MISSING_CELLS)))
-    body.append(ast.Assign([ast.Name("SPEC_TEXT", ast.Store())], ast.Constant(checked.spec.text)))
-    body.append(ast.Assign([ast.Name("SPEC_SHA256", ast.Store())], ast.Constant(checked.spec_hash)))
-    body.append(ast.Assign([ast.Name("VERDICT", ast.Store())], ast.Constant(checked.verdict)))
-    body.append(ast.Assign([ast.Name("METHOD", ast.Store())], ast.Constant(_METHOD_TEXT[plan_method(checked)])))
-    body += _kernel_defs(em.kernels)
-    body += em.defs
-    body.append(ast.Assign([ast.Name("SPEC", ast.Store())], spec_table))
-    body += _runtime_defs()
-    body.append(estimator)
-    body += ast.parse(_TAIL).body
-    module = ast.Module(body=body, type_ignores=[])
-    ast.fix_missing_locations(module)
-    source = _add_section_comments(ast.unparse(module))
-    source = source.replace(ast.unparse(body[[i for i, b in enumerate(body) if _assigns(b, "SPEC")][0]]),
-                            "SPEC = " + _layout(spec_table, 0), 1)
-    # the layout only adds line breaks: the tree must be the very one built above
-    if ast.dump(ast.parse(source)) != ast.dump(module):
-        raise AssertionError("the laid-out module differs from its syntax tree")
-    return source
+    spec_node = ast.Assign([ast.Name("SPEC", ast.Store())], spec_table)
+    tail = ast.parse(_TAIL).body
+    solvers, estimator_code = _file_copies("numpy_solvers_src.py"), _file_copies("numpy_estimator_src.py")
+    kernels = _kernel_copies(em.kernels)
+    maps = _map_copies() if em.maps else []
+    header = _header(checked) if runtime == "inline" else _header(checked).replace(_STANDALONE_NEEDS, _LEAN_NEEDS)
+    out = _Assembly()
+    out.nodes([ast.Expr(ast.Constant(header))] + ast.parse(_IMPORTS).body
+              + [ast.Assign([ast.Name("_MISSING_CELLS", ast.Store())], _const(MISSING_CELLS))])
+    out.nodes([ast.Assign([ast.Name("SPEC_TEXT", ast.Store())], ast.Constant(checked.spec.text)),
+               ast.Assign([ast.Name("SPEC_SHA256", ast.Store())], ast.Constant(checked.spec_hash)),
+               ast.Assign([ast.Name("VERDICT", ast.Store())], ast.Constant(checked.verdict)),
+               ast.Assign([ast.Name("METHOD", ast.Store())], ast.Constant(_METHOD_TEXT[plan_method(checked)]))],
+              "# ---- the spec, verbatim (its sha256 and verdict follow)")
+    if runtime == "inline":
+        out.source(_copied_text(kernels, "catalog kernels"))
+    else:
+        estimator_nodes = [node for c in estimator_code for node in ast.parse(c.text).body]
+        used = _names_read(em.defs + [spec_node, estimator] + tail + estimator_nodes)
+        out.source(_import_text([kernels, maps, solvers], used),
+                   "# ---- objc's kernels, maps and solver code, imported from the installed objc")
+    out.nodes(em.defs, "# ---- generated from the spec's typed tree (each docstring names its spec line)")
+    if runtime == "inline":
+        out.source(_copied_text(maps, "feature maps"))
+    out.source("SPEC = " + _layout(spec_table, 0), "# ---- the spec as a table the solver reads", [spec_node])
+    if runtime == "inline":
+        out.source(_copied_text(solvers, "generic solver code"))
+    out.source(_copied_text(estimator_code, "estimator and command line"))
+    out.nodes([estimator], "# ---- the estimator for this spec")
+    out.source(_TAIL, "# ---- functions for use without the estimator", tail)
+    return out.text()
 
 
-def _assigns(node: ast.stmt, name: str) -> bool:
-    return isinstance(node, ast.Assign) and isinstance(node.targets[0], ast.Name) and node.targets[0].id == name
+_STANDALONE_NEEDS = ("Needs only NumPy\n(SciPy's L-BFGS-B, linprog and threadpoolctl are used when importable).")
+_LEAN_NEEDS = (f"Needs objc\ninstalled: it imports objc's solver code (written by `objc build {_LEAN_OPTION}`; "
+               "`objc build` alone writes\na standalone module).")
 
 
 def _layout(node: ast.expr, depth: int, width: int = 100) -> str:
@@ -898,39 +1030,23 @@ if __name__ == "__main__":
 '''
 
 
-def _add_section_comments(source: str) -> str:
-    """Comment lines before each generated section (ast drops comments; these are inserted after
-    unparsing, at fixed anchors, so the output stays deterministic)."""
-    anchors = [
-        ("SPEC_TEXT = ", "# ---- the spec, verbatim (its sha256 and verdict follow)"),
-        ("def _k_", "# ---- catalog kernels, copied by source from objc/catalog.py"),
-        ("def term_", "# ---- generated from the spec's typed tree (each docstring names its spec line)"),
-        ("SPEC = {", "# ---- the spec as a table the solver reads"),
-        ("class SolverInputError", "# ---- generic solver code, copied by source from objc/backends/"),
-        ("class Model(", "# ---- the estimator for this spec"),
-        ("def solve(", "# ---- functions for use without the estimator"),
-    ]
-    lines = source.split("\n")
-    out: list[str] = []
-    done: set[str] = set()
-    for line in lines:
-        for anchor, comment in anchors:
-            if anchor not in done and line.startswith(anchor):
-                done.add(anchor)
-                if out and out[-1] != "":
-                    out.append("")
-                out.append(comment)
-        out.append(line)
-    return "\n".join(out) + ("\n" if not source.endswith("\n") else "")
-
-
 # ---------------------------------------------------------------- in-process training
 
 def load_module(source: str, name: str = "objc_generated") -> dict[str, Any]:
-    """Compile and execute generated source in a fresh namespace (what `python module.py` would run)."""
+    """Compile and execute generated source in a fresh namespace (what `python module.py` would run).
+
+    The code's file name is `<NAME SHA>` (SHA the start of the source's sha256, so two modules never
+    share one), and the source is registered with linecache under it: a traceback from inside the
+    module shows the offending line, as one from a file would."""
+    filename = _module_filename(name, hashlib.sha256(source.encode("utf-8")).hexdigest())
+    linecache.cache[filename] = (len(source), None, source.splitlines(keepends=True), filename)
     namespace: dict[str, Any] = {"__name__": name}
-    exec(compile(source, f"<{name}>", "exec"), namespace)  # noqa: S102 - our own generated source
+    exec(compile(source, filename, "exec"), namespace)  # noqa: S102 - our own generated source
     return namespace
+
+
+def _module_filename(name: str, digest: str) -> str:
+    return f"<{name} {digest[:16]}>"
 
 
 @functools.lru_cache(maxsize=1)
@@ -962,7 +1078,9 @@ def _compiled(checked: CheckedObjective) -> dict[str, Any]:
     namespace = cache["namespace"].get(digest)
     if namespace is None:
         namespace = load_module(source, "objc_fit")
-        _remember(cache["namespace"], digest, namespace)
+        dropped = _remember(cache["namespace"], digest, namespace)
+        if dropped is not None:  # its lines go with it (a long run emits many modules of 200 kB)
+            linecache.cache.pop(_module_filename("objc_fit", dropped), None)
     return namespace
 
 
@@ -979,10 +1097,14 @@ def _runtime_digest(cache: dict) -> str:
     return kept[1]
 
 
-def _remember(store: dict, key: Any, value: Any) -> None:
+def _remember(store: dict, key: Any, value: Any) -> Any:
+    """Keep key: value, dropping the oldest entry when the store is full; returns the dropped key or None."""
+    dropped = None
     if len(store) >= _CACHE_ENTRIES:
-        store.pop(next(iter(store)))  # the oldest entry (dicts keep insertion order)
+        dropped = next(iter(store))  # the oldest entry (dicts keep insertion order)
+        store.pop(dropped)
     store[key] = value
+    return dropped
 
 
 def fit(checked: CheckedObjective, X: Any, y: Any, weights: Any, input_names: tuple[str, ...] | list[str],
@@ -1174,34 +1296,28 @@ def _mc_method(plan: dict[str, Any]) -> str:
     return "L-BFGS on softmax cross-entropy with an l2sq penalty; certified by the duality gap"
 
 
-def _mc_runtime_defs() -> list[ast.stmt]:
-    tree = ast.parse((_HERE / _MULTICLASS_RUNTIME).read_text(encoding="utf-8"))
-    return [node for node in tree.body if isinstance(node, (ast.FunctionDef, ast.ClassDef, ast.Assign))]
-
-
 def _mc_kernels() -> set[str]:
     tree = ast.parse((_HERE / _MULTICLASS_RUNTIME).read_text(encoding="utf-8"))
     names = {n.id for n in ast.walk(tree) if isinstance(n, ast.Name) and n.id.startswith("_k_")}
     return names | {"_k_mc_softmax_ce", "_k_mc_probabilities", "_k_dropout_factor", "_k_second_moments"}
 
 
-def _map_defs() -> list[ast.stmt]:
-    """The feature maps' math (typed_tree's names, tables' values), copied by source from objc."""
+def _map_copies() -> list[_Copied]:
+    """The feature maps' math (typed_tree's names, tables' values), objc's own functions."""
     from objc import tables
     fns = (tt.map_exponents, tt.map_product_name, tt.map_knot_name, tt.map_knot_of, tables.map_category_text,
            tables.map_sorted_categories, tables.map_fourier_draws, tables.map_fit, tables.map_state_from_names,
            tables.map_outputs, tables.map_unseen_rows)
-    return [ast.parse(textwrap.dedent(inspect.getsource(fn))).body[0] for fn in fns]
+    return [_definition_copy(fn) for fn in fns]
 
 
-def _mc_map_defs() -> list[ast.stmt]:
-    """The maps' math and the estimator's way of applying them (the binary modules' own, copied by source)."""
+def _mc_map_copies() -> list[_Copied]:
+    """The maps' math and the estimator's way of applying them (the binary modules' own)."""
     from objc.backends import numpy_estimator_src as estimator_src
-    return _map_defs() + [ast.parse(textwrap.dedent(inspect.getsource(fn))).body[0]
-                          for fn in (estimator_src._map_unscaled, estimator_src._apply_maps)]
+    return _map_copies() + [_definition_copy(fn) for fn in (estimator_src._map_unscaled, estimator_src._apply_maps)]
 
 
-def _emit_multiclass(checked: CheckedObjective) -> str:
+def _emit_multiclass(checked: CheckedObjective, runtime: Runtime = "inline") -> str:
     plan = _mc_plan(checked)
     method = _mc_method(plan)
     header = _header(checked).replace(f"method: {_METHOD_TEXT[plan_method(checked)]}", f"method: {method}")
@@ -1210,39 +1326,45 @@ def _emit_multiclass(checked: CheckedObjective) -> str:
                             "Use: `fit(X, labels)` (raw inputs, labels as the table writes them) returns a model;\n"
                             "`predict(model, X)`, `decision_function(model, X)`, `predict_proba(model, X)` "
                             "(softmax_ce);\n`solve(X, y, weights)` trains on prepared rows (classes 0 .. K-1).")
-    body: list[ast.stmt] = [ast.Expr(ast.Constant(header))]
-    body += ast.parse("import math\nimport sys\nimport numpy as np\n"
-                      "try:  # optional: SciPy's NNLS balances a hinge's dual point\n"
-                      "    import scipy.optimize as _scipy_optimize\n"
-                      "except ImportError:  # pragma: no cover\n"
-                      "    _scipy_optimize = None\n").body
-    body.append(ast.Assign([ast.Name("SPEC_TEXT", ast.Store())], ast.Constant(checked.spec.text)))
-    body.append(ast.Assign([ast.Name("SPEC_SHA256", ast.Store())], ast.Constant(checked.spec_hash)))
-    body.append(ast.Assign([ast.Name("VERDICT", ast.Store())], ast.Constant(checked.verdict)))
-    body.append(ast.Assign([ast.Name("METHOD", ast.Store())], ast.Constant(method)))
-    body += _kernel_defs(_mc_kernels())
-    body.append(_mc_coefficients_def(plan))
-    body.append(ast.Assign([ast.Name("SPEC", ast.Store())], _mc_spec_table(checked, plan)))
-    body += _mc_runtime_defs()
-    if checked.spec.table.maps:
-        body += _mc_map_defs()
-    body += ast.parse(_MC_TAIL).body
-    module = ast.Module(body=body, type_ignores=[])
-    ast.fix_missing_locations(module)
-    return _add_section_comments(ast.unparse(module))
+    if runtime == "import":
+        header = header.replace(_STANDALONE_NEEDS, _LEAN_NEEDS)
+    coefficients = _mc_coefficients_def(plan)
+    spec_node = ast.Assign([ast.Name("SPEC", ast.Store())], _mc_spec_table(checked, plan))
+    kernels, solver = _kernel_copies(_mc_kernels()), _file_copies(_MULTICLASS_RUNTIME)
+    maps = _mc_map_copies() if checked.spec.table.maps else []
+    out = _Assembly()
+    out.nodes([ast.Expr(ast.Constant(header))] + ast.parse(
+        "import math\nimport sys\nimport numpy as np\n"
+        "try:  # optional: SciPy's NNLS balances a hinge's dual point\n"
+        "    import scipy.optimize as _scipy_optimize\n"
+        "except ImportError:  # pragma: no cover\n"
+        "    _scipy_optimize = None\n").body)
+    out.nodes([ast.Assign([ast.Name("SPEC_TEXT", ast.Store())], ast.Constant(checked.spec.text)),
+               ast.Assign([ast.Name("SPEC_SHA256", ast.Store())], ast.Constant(checked.spec_hash)),
+               ast.Assign([ast.Name("VERDICT", ast.Store())], ast.Constant(checked.verdict)),
+               ast.Assign([ast.Name("METHOD", ast.Store())], ast.Constant(method))],
+              "# ---- the spec, verbatim (its sha256 and verdict follow)")
+    if runtime == "inline":
+        out.source(_copied_text(kernels, "catalog kernels"))
+    else:
+        used = _names_read([coefficients, spec_node] + ast.parse(_MC_TAIL).body)
+        out.source(_import_text([kernels, solver, maps], used),
+                   "# ---- objc's kernels, multiclass solver and maps, imported from the installed objc")
+    out.nodes([coefficients], "# ---- generated from the spec's goal")
+    out.nodes([spec_node], "# ---- the spec as a table the solver reads")
+    if runtime == "inline":
+        out.source(_copied_text(solver, "multiclass solver"))
+        out.source(_copied_text(maps, "feature maps"))
+    out.source(_MC_TAIL, "# ---- functions for use: fit, predict, decision_function, predict_proba, solve")
+    return out.text()
 
 
-_MC_TAIL = '''
+# the tail's tunable rule is the binary modules' own (numpy_solvers_src.py), copied by source
+_MC_TAIL = '\n\n'.join(inspect.getsource(fn) for fn in (_solvers_src.tunable_refusal,
+                                                        _solvers_src.settled_tunables)) + '''
 def _mc_tunables(tunables):
-    T = dict(SPEC["tunables"])
-    for name, value in (tunables or {}).items():
-        if name not in T:
-            raise ValueError(f"the spec has no tunable {name!r} (tunables: {', '.join(T) or 'none'})")
-        low, high = SPEC["tunable_ranges"][name]
-        if not low <= float(value) <= high:
-            raise ValueError(f"{name} = {float(value)!r} lies outside its declared range {low!r} .. {high!r}")
-        T[name] = float(value)
-    return T
+    declared = {name: (default, *SPEC["tunable_ranges"][name]) for name, default in SPEC["tunables"].items()}
+    return settled_tunables(declared, tunables, ValueError)
 
 
 def solve(X, y, weights=None, tunables=None, tol=1e-08, max_passes=None, theta0=None):

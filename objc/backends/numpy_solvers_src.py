@@ -31,6 +31,10 @@ try:  # optional: keeps BLAS thread pools from fighting over the cores
 except ImportError:  # pragma: no cover
     _threadpoolctl = None
 
+# imported here so the file runs as a module of objc; a generated module drops every import of this file
+# and carries the catalog's kernels themselves (numpy_module.py pastes them)
+from objc.catalog import _k_l1_prox, _k_l2_prox
+
 
 # ---------------------------------------------------------------- data
 
@@ -708,10 +712,13 @@ def _box_free(pb):
 def _dual_scale(pb, z):
     """The largest t <= 1 with R*(t z) finite (the rescaling of Kim et al. 2007)."""
     t = 1.0
+    # alpha / |z| and then t z are each rounded: held a few units of rounding below the ratio, t |z| stays
+    # within alpha (at an exact answer several |z_j| meet alpha_j, and one rounded above made R*(t z) infinite)
+    below = 1.0 - 8.0 * 2.0 ** -53
     if not pb.groups and _box_free(pb):  # the two tests below with hi = +inf and lo = -inf everywhere
         over = (pb.beta == 0) & ((z > pb.alpha) | (z < -pb.alpha))
         if np.any(over):
-            t = min(t, float(np.min(pb.alpha[over] / np.abs(z[over]))))
+            t = min(t, float(np.min(pb.alpha[over] / np.abs(z[over]))) * below)
         return t
     lin = pb.beta == 0
     for idx, _ in pb.groups:  # a group's coordinates are priced by its norm below
@@ -720,7 +727,7 @@ def _dual_scale(pb, z):
     down = lin & np.isneginf(pb.lo) & (z < -pb.alpha)
     for mask in (up, down):
         if np.any(mask):
-            t = min(t, float(np.min(pb.alpha[mask] / np.abs(z[mask]))))
+            t = min(t, float(np.min(pb.alpha[mask] / np.abs(z[mask]))) * below)
     for idx, lam in pb.groups:
         if pb.beta[idx[0]] == 0:
             norm = float(np.sqrt(np.sum(z[idx] ** 2)))
@@ -2271,12 +2278,68 @@ def gram_gap(pb, theta, P, Ht):
     return gap if np.isfinite(gap) else math.inf
 
 
+def _active_set_ready(pb):
+    """Whether the Gram path may try sign-pattern solves: a quadratic with L1 and ridge weights only (no
+    bound, group norm, ball or other penalty), where a fixed sign pattern makes the optimum one linear solve."""
+    return bool(pb.use_gap and np.any(pb.alpha > 0) and not pb.groups and not pb.l1_balls and not pb.l2_balls
+                and not pb.other_nonsmooth and not pb.other_smooth and _box_free(pb))
+
+
+def _active_set_candidate(pb, x, g, tried):
+    """The minimizer of the quadratic with a sign pattern held, or None (a pattern tried before, a singular
+    system, or an answer whose signs disagree with the pattern).
+
+    On a fixed pattern s of the nonzero penalized weights (and the unpenalized coordinates free), the
+    optimality condition is linear: (H + diag(beta))_FF theta_F = q_F - alpha_F s_F, the rest zero; the
+    Lasso's answer is piecewise linear in its weight, with one such system per piece (the homotopy of
+    Osborne, Presnell & Turlach 2000, "A new approach to variable selection in least squares problems";
+    recalled from memory). The pattern is that of x, with the zero weights whose gradient exceeds their
+    L1 weight added at the sign that lowers the objective (the weights a warm start from a larger value
+    is about to admit). A candidate proves nothing by itself: the caller certifies it like any iterate."""
+    signs = np.sign(x)
+    enter = (x == 0.0) & (pb.alpha > 0) & (np.abs(g) > pb.alpha)
+    signs[enter] = -np.sign(g[enter])
+    free = (pb.alpha == 0.0) | (signs != 0.0)
+    key = (signs * free + 2.0 * (pb.alpha == 0.0)).astype(np.int8).tobytes()
+    if key in tried:
+        return None
+    tried.add(key)
+    F = np.flatnonzero(free)
+    G = pb.gram
+    A = G["H"][np.ix_(F, F)] + np.diag(pb.beta[F])
+    try:
+        theta_F = np.linalg.solve(A, G["q"][F] - pb.alpha[F] * signs[F])
+    except np.linalg.LinAlgError:
+        return None
+    if not np.all(np.isfinite(theta_F)):
+        return None
+    held = pb.alpha[F] > 0
+    if np.any(np.sign(theta_F[held]) != signs[F][held]):
+        return None
+    out = np.zeros(pb.size)
+    out[F] = theta_F
+    return out
+
+
 def method_fista_gram(run, theta0):
-    """FISTA with restart on the quadratic of a squared loss: each iteration costs O(size^2), no pass."""
+    """FISTA with restart on the quadratic of a squared loss: each iteration costs O(size^2), no pass.
+    Where the nonsmooth part is L1 alone, each new sign pattern of the iterates is also solved exactly
+    (`_active_set_candidate`) and the answer certified like an iterate: on a path, neighbouring points
+    mostly share a pattern, so a warm-started point is often certified by its first solve."""
     pb = run.pb
     build_gram(pb)
     x = prox(pb, np.asarray(theta0, dtype=np.float64), 1.0)
     y, t = x, 1.0
+    patterns = set() if _active_set_ready(pb) else None
+
+    def try_pattern(x_at, g_at):
+        """(converged, candidate or None): the sign-pattern solve at x_at, certified."""
+        cand = _active_set_candidate(pb, x_at, g_at, patterns)
+        if cand is None:
+            return False, None
+        f_c, g_c, Ht_c = _gram_smooth(pb, cand)
+        P_c = f_c + nonsmooth_penalties(pb, cand)
+        return run.record(cand, P_c, "duality gap", gram_gap(pb, cand, P_c, Ht_c), grad=g_c), (cand, P_c)
     L = _gram_cached(pb, "largest", lambda: _largest_eigenvalue(pb.gram["H"])) + float(np.max(pb.beta, initial=0.0)) \
         + 1e-300
     mu = _gram_modulus(pb)
@@ -2285,6 +2348,14 @@ def method_fista_gram(run, theta0):
         # & Candes 2015, Adaptive restart for accelerated gradient schemes, sec. 3), so on an ill-conditioned
         # Gram matrix twenty checks can pass without a tenth's progress while the run still converges
         run.window = max(run.window, int(math.ceil(10.0 * math.sqrt(L / mu))))
+    if patterns is not None:
+        # the warm start's own pattern first (not its prox, which would drop its smallest weights)
+        start = np.asarray(theta0, dtype=np.float64)
+        done, cand = try_pattern(start, _gram_smooth(pb, start)[1])
+        if done:
+            return "converged"
+        if cand is not None:
+            x = y = cand[0]
     iterations = 0
     while True:
         f_y, g_y, _ = _gram_smooth(pb, y)
@@ -2303,6 +2374,14 @@ def method_fista_gram(run, theta0):
         if run.record(x_new, P_new, kind, absolute, grad=g_new):
             return "converged"
         iterations += 1
+        if patterns is not None:
+            done, cand = try_pattern(x_new, g_new)
+            if done:
+                return "converged"
+            if cand is not None and cand[1] < P_new:  # a better point: restart the momentum from it
+                x = y = cand[0]
+                t = 1.0
+                continue
         if iterations >= 20 * max(run.max_passes, 1):
             return "max iterations"
         if iterations % 1000 == 0 and _stalled(run, iterations):

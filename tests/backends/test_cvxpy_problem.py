@@ -444,7 +444,7 @@ def test_emitted_module_rebuilds_the_same_optimum(iris_pair, tmp_path):
     assert module.SPEC_SHA256 == checked.spec_hash and module.VERDICT == "convex"
     with pytest.raises(ValueError, match="outside its declared range"):
         module.build(X, y, None, C=1e6)
-    with pytest.raises(ValueError, match="unknown tunable"):
+    with pytest.raises(ValueError, match="the spec has no tunable 'K'"):
         module.build(X, y, None, K=1.0)
 
 
