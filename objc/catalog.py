@@ -815,6 +815,13 @@ class Entry:
     # the entry's value reads the training rows' second moments of the inputs its argument weighs
     # (`m2=`, from `_k_second_moments`, normalized like the goal's row aggregate): a data-scaled norm
     reads_second_moments: bool = field(default=False, kw_only=True)
+    # what to write instead when an argument breaks the entry's composition rule (checker's hint), and
+    # instead when the rule fails because the argument's sign is unknown (the entry is not monotone then)
+    rule_hint: str = field(default="", kw_only=True)
+    sign_hint: str = field(default="", kw_only=True)
+    # the set `keep f(w) <= r` makes when f is this entry of a parameter: "box" (|w_j| <= r, entry by entry),
+    # "l1 ball" or "l2 ball"; the backends project onto these exactly
+    constraint_set: Literal["box", "l1 ball", "l2 ball", ""] = field(default="", kw_only=True)
 
     def resolve_options(self, given: tuple[float, ...]) -> dict[str, float]:
         """Options from positional values; raise ValueError (caught by the resolver) when wrong."""
@@ -1063,7 +1070,7 @@ ENTRIES: tuple[Entry, ...] = (
                          + _SCORE_AFFINE),
     # ---- scalar atoms (elementwise on vectors)
     Entry("abs", "atom", "absolute value", "|x|", _const(CONVEX), _even_mono, _nonneg, _k_abs, _k_abs_d,
-          lambda cp, x: cp.abs(x), lipschitz=_k(1.0)),
+          lambda cp, x: cp.abs(x), lipschitz=_k(1.0), constraint_set="box"),
     Entry("exp", "atom", "exponential", "e^x", _const(CONVEX), _fixed_mono(INC), _nonneg, _k_exp, _k_exp,
           lambda cp, x: cp.exp(x), smooth=_yes, test_points=(-3.0, 3.0)),
     Entry("log", "atom", "natural logarithm", "log(x), x > 0", _const(CONCAVE), _fixed_mono(INC), _unknown,
@@ -1076,7 +1083,9 @@ ENTRIES: tuple[Entry, ...] = (
           grad_lipschitz=_k(0.25)),
     Entry("sqrt", "atom", "square root", "sqrt(x), x >= 0", _const(CONCAVE), _fixed_mono(INC), _nonneg,
           _k_sqrt, _k_sqrt_d, lambda cp, x: cp.sqrt(x), smooth=_yes, domain=(0.0, np.inf),
-          test_points=(0.05, 6.0)),
+          test_points=(0.05, 6.0),
+          rule_hint="sqrt is concave: it proves convexity of nothing but affine or concave arguments; for the "
+                    "length of a vector, sqrt(a^2 + m^2), write hypot(a, m), which the rules can prove convex"),
     Entry("pos", "atom", "positive part", "max(x, 0)", _const(CONVEX), _fixed_mono(INC), _nonneg, _k_pos,
           _k_pos_d, lambda cp, x: cp.pos(x), lipschitz=_k(1.0), kink_at_zero_value=True),
     Entry("neg", "atom", "negative part", "max(-x, 0)", _const(CONVEX), _fixed_mono(DEC), _nonneg, _k_neg,
@@ -1098,7 +1107,8 @@ ENTRIES: tuple[Entry, ...] = (
           _power_curvature, _power_mono, _power_sign, _k_power, _k_power_d, _cp_power,
           options=(Option("p", 2.0, -np.inf, np.inf, meaning="the exponent, a number or a tunable"),), smooth=_yes,
           infix="^", needs_nonneg_argument=lambda o: _power_needs_nonneg(o["p"]),
-          smooths_zero_kink=lambda o: o["p"] >= 2),
+          smooths_zero_kink=lambda o: o["p"] >= 2,
+          sign_hint="write abs(...) ^ p, or square a nonnegative expression such as pos(...) ^ 2"),
     Entry("max", "atom", "largest of its arguments", "max(a, b, ...)", _const(CONVEX), _fixed_mono(INC),
           _max_sign, _k_max, _k_max_d, lambda cp, *xs: cp.maximum(*xs), arity=0),
     Entry("min", "atom", "smallest of its arguments", "min(a, b, ...)", _const(CONCAVE), _fixed_mono(INC),
@@ -1117,10 +1127,11 @@ ENTRIES: tuple[Entry, ...] = (
     # on a matrix learned by classes, l1 is entrywise (cvxpy's norm1 of a matrix sums every |W_jk|, measured
     # with cvxpy 1.9; its norm(W, 1) would be the induced norm) and l2sq the squared Frobenius norm
     Entry("l1", "norm", "L1 norm", "sum_j |w_j|", _const(CONVEX), _even_mono, _nonneg, _k_l1, _k_l1_d,
-          lambda cp, w: cp.norm1(w), prox=_k_l1_prox, conjugate=_k_l1_conj, on_class_matrix=True),
+          lambda cp, w: cp.norm1(w), prox=_k_l1_prox, conjugate=_k_l1_conj, on_class_matrix=True,
+          constraint_set="l1 ball"),
     Entry("l2", "norm", "L2 (Euclidean) norm", "sqrt(sum_j w_j^2)", _const(CONVEX), _even_mono, _nonneg,
           _k_l2, _k_l2_d, lambda cp, w: cp.norm2(w), prox=_k_l2_prox, conjugate=_k_l2_conj,
-          on_class_matrix=True),
+          on_class_matrix=True, constraint_set="l2 ball"),
     Entry("l2sq", "norm", "squared L2 norm (no half)", "sum_j w_j^2", _const(CONVEX), _even_mono, _nonneg,
           _k_l2sq, _k_l2sq_d, lambda cp, w: cp.sum_squares(w), smooth=_yes, prox=_k_l2sq_prox,
           conjugate=_k_l2sq_conj, on_class_matrix=True),

@@ -445,10 +445,10 @@ def _apply_fault(e: tt.Apply, entry, atom_curv: Curvature, faults: tuple[Argumen
         rule = f"{name} is {atom_curv.value} and {mono} here, so its argument must be {need} (or affine)"
     msg = f"'{render(e)}': {rule}; '{render(arg)}' is {f.arg_curvature.value}"
     hint = ""
-    if entry.name == "sqrt" and _is_sum_with_square(arg):
-        hint = "sqrt(a^2 + m^2) is the Euclidean length of (a, m): write hypot(a, m), which the rules can prove convex"
-    elif entry.name == "power" and f.monotonicity == Monotonicity.NONE:
-        hint = "write abs(...) ^ p, or square a nonnegative expression such as pos(...) ^ 2"
+    if f.monotonicity == Monotonicity.NONE and entry.sign_hint:
+        hint = entry.sign_hint
+    elif entry.rule_hint:
+        hint = entry.rule_hint
     elif atom_curv == Curvature.CONCAVE:
         hint = "a concave atom can only take concave or affine arguments; rewrite the expression or use a convex atom"
     else:
@@ -464,12 +464,6 @@ def _kink_at_zero_only(e: tt.TExpr) -> bool:
         other = [a for a in e.args if not (isinstance(a, tt.Const) and a.value == 0)]
         return len(zero) == 1 and len(other) == 1 and analyse(other[0]).smooth
     return False
-
-
-def _is_sum_with_square(e: tt.TExpr) -> bool:
-    if isinstance(e, tt.Add):
-        return _is_sum_with_square(e.left) or _is_sum_with_square(e.right)
-    return tt.is_square(e)
 
 
 # ---------------------------------------------------------------- numerical evaluation (witnesses)
@@ -1015,10 +1009,11 @@ def _classify_constraint(c: tt.Constraint) -> str:
     if isinstance(params_side, tt.ParamRef) and (right if params_side is left else left).depends == "const":
         return "sign" if isinstance(right if params_side is left else left, tt.Const) and \
             (right if params_side is left else left).value == 0 else "bound"
-    if isinstance(params_side, tt.Apply) and params_side.entry == "abs" and isinstance(params_side.args[0], tt.ParamRef):
+    shape = CATALOG[params_side.entry].constraint_set if isinstance(params_side, tt.Apply) else ""
+    if shape == "box" and isinstance(params_side.args[0], tt.ParamRef):
         return "box"
-    if isinstance(params_side, tt.Apply) and params_side.entry in ("l1", "l2"):
-        return f"{params_side.entry} ball"
+    if shape.endswith("ball"):
+        return shape
     return "general"
 
 

@@ -1179,7 +1179,12 @@ def _modulus(pb, frame, d):
 # checked (the one-point floor is l'' itself) and L-BFGS hands over to Newton steps with it (`method_lbfgs`).
 # Dense tables only: a sparse table's rows would be densified.
 
-def _blas_controller(memo={}):
+# The runtime's one process-wide value, on purpose: which shared libraries are loaded is a fact of the
+# process, not of a fit or a problem, so no argument could carry it better (see `_blas_controller`).
+_LOADED_LIBRARIES = {"key": None, "controller": None}
+
+
+def _blas_controller():
     """threadpoolctl's view of the loaded BLAS/OpenMP libraries, scanned once per set of imported modules.
     A scan reads the process's whole map of shared objects (measured: about 2 ms a scan with SciPy and
     scikit-learn loaded, three scans a fit, a sixth of a 1e4 x 100 logistic fit), and a new library comes
@@ -1188,13 +1193,13 @@ def _blas_controller(memo={}):
     if _threadpoolctl is None:
         return None
     key = len(sys.modules)
-    if memo.get("key") != key:
+    if _LOADED_LIBRARIES["key"] != key:
         try:
-            memo["controller"] = _threadpoolctl.ThreadpoolController()
+            _LOADED_LIBRARIES["controller"] = _threadpoolctl.ThreadpoolController()
         except Exception:
-            memo["controller"] = None
-        memo["key"] = key
-    return memo["controller"]
+            _LOADED_LIBRARIES["controller"] = None
+        _LOADED_LIBRARIES["key"] = key
+    return _LOADED_LIBRARIES["controller"]
 
 
 class _OneBlasThread:
