@@ -12,6 +12,7 @@ from objc import syntax_tree as st
 from objc import typed_tree as tt
 from objc.catalog import CATALOG, GROUP_NORM
 from objc.diagnostics import Diagnostic, SpecError
+from objc.feature_formula import check_formula
 from objc.source_text import SourceText, Span
 from objc.typed_tree import CLASSES, ROW_CLASSES, ROWS, SCALAR, WEIGHTS, Shape
 
@@ -366,42 +367,19 @@ class _Resolver:
         return tt.FeatureMap(s.kind, s.columns, s.span, **fields)
 
     def _feature_columns(self, expr: st.Expr) -> tuple[str, ...]:
-        """Check a feature expression holds only columns, numbers and catalog atoms; list its columns."""
-        found: list[str] = []
-
-        def walk(e: st.Expr) -> None:
-            if isinstance(e, st.Name):
-                # learn and tune usually come after the table block, so look at the whole spec
-                later = {i.name for s in self.tree.statements if isinstance(s, st.LearnStmt) for i in s.items} | {
-                    s.name for s in self.tree.statements if isinstance(s, (st.TuneStmt, st.ScoreStmt))}
-                if e.id in self.params or e.id in self.tunables or e.id in later or e.id == BUILTIN_TARGET:
-                    self.error("E217", f"a feature is computed from table columns only; '{e.id}' is not a column",
-                               e.span, hint="features are fixed transformations of the data")
-                elif e.id not in found:
-                    found.append(e.id)
-            elif isinstance(e, st.Call):
-                entry = CATALOG.get(e.func)
-                if entry is None or entry.kind != "atom":
-                    atoms = [n for n, en in CATALOG.items() if en.kind == "atom"]
-                    self.error("E218", f"'{e.func}' is not an atom usable in a feature", e.func_span,
-                               hint=self.suggest(e.func, atoms) or "atoms: " + ", ".join(sorted(atoms)))
-                for a in e.args:
-                    walk(a)
-            elif isinstance(e, (st.Binary,)):
-                walk(e.left)
-                walk(e.right)
-            elif isinstance(e, st.Negate):
-                walk(e.operand)
-            elif isinstance(e, st.Power):
-                walk(e.base)
-                if st.literal_number(e.exponent) is None:
-                    self.error("E219", "an exponent in a feature must be a literal number", e.exponent.span,
-                               hint="features are fixed transformations of the data; a tunable exponent belongs "
-                                    "in the goal or a loss")
-            elif isinstance(e, (st.Aggregate, st.Select)):
-                self.error("E217", "a feature is a per-row transformation of columns; this is not", e.span)
-        walk(expr)
-        return tuple(found)
+        """Report what in a feature formula breaks its rules (objc/feature_formula.py); list its columns."""
+        # learn and tune usually come after the table block, so look at the whole spec
+        not_columns = {BUILTIN_TARGET: "the target", BUILTIN_INPUTS: "the input matrix"}
+        for s in self.tree.statements:
+            if isinstance(s, st.LearnStmt):
+                not_columns.update((i.name, "a learned parameter") for i in s.items)
+            elif isinstance(s, st.TuneStmt):
+                not_columns[s.name] = "a tunable"
+            elif isinstance(s, st.ScoreStmt):
+                not_columns[s.name] = "the score"
+        checked = check_formula(expr, not_columns)
+        self.errors.extend(replace(d, source_name=self.source.name) for d in checked.diagnostics)
+        return checked.columns
 
     # ------------------------------------------------------------ expressions
     def expr(self, e: st.Expr, loss_env: dict[str, tt.TExpr] | None = None, where: str = "goal") -> tt.TExpr:

@@ -47,7 +47,7 @@ stage is reported together.
 | T142 | class weights that cannot apply (real target, label other than +1/-1, weight negative or not finite) |
 | T150 | a constant input column under `standardize` |
 | T151 | saved standardization stats lack an input, or hold an unusable scale |
-| T160 | a derived feature uses something a row-by-row formula cannot (unknown function, a norm, a non-literal exponent or setting, `mean`/`sum`, a selection, a dot product) |
+| (E217-E239) | a derived feature built outside a spec (the Python API) breaks the formula rules: the resolver's codes, from objc/feature_formula.py |
 | T161 | a derived feature, or an input a feature map makes, is NaN or infinite on some rows (log of 0, division by 0, an overflowing power) |
 | T163 | a `onehot` column holds one category only on the training rows |
 | T164 | a `onehot` column holds a category not seen in training (under `unseen fail`, the default) |
@@ -73,10 +73,9 @@ from typing import Literal, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from objc import syntax_tree as st
-from objc.catalog import CATALOG
 from objc.cells import MISSING_CELLS
 from objc.diagnostics import Diagnostic, SpecError
+from objc.feature_formula import check_formula, evaluate
 from objc.source_text import NO_SPAN, Span
 from objc.typed_tree import (DerivedFeature, LabelMap, TableBinding, map_exponents, map_knot_name, map_knot_of,
                               map_product_name)
@@ -447,106 +446,10 @@ def _missing_mask(a: np.ndarray) -> np.ndarray:
 
 # ---------------------------------------------------------------- derived features
 
-def _expr_names(e: st.Expr) -> list[st.Name]:
-    if isinstance(e, st.Name):
-        return [e]
-    children: tuple = ()
-    if isinstance(e, st.Call):
-        children = e.args
-    elif isinstance(e, st.Negate):
-        children = (e.operand,)
-    elif isinstance(e, (st.Binary,)):
-        children = (e.left, e.right)
-    elif isinstance(e, st.Power):
-        children = (e.base, e.exponent)
-    elif isinstance(e, st.Aggregate):
-        children = (e.operand,)
-    elif isinstance(e, st.Select):
-        children = (e.base,)
-    return [n for c in children for n in _expr_names(c)]
-
-
-def _check_expr(e: st.Expr, feature: DerivedFeature, where: _Where) -> list[Diagnostic]:
-    """Static checks of a feature formula: only row-by-row arithmetic and catalog atoms."""
-    def bad(msg: str, span: Span, hint: str = "") -> list[Diagnostic]:
-        return [where.diag("T160", f"feature {_q(feature.name)}: {msg}", span, hint)]
-
-    if isinstance(e, (st.Number, st.Name)):
-        return []
-    if isinstance(e, st.Negate):
-        return _check_expr(e.operand, feature, where)
-    if isinstance(e, st.Binary):
-        if e.op == ".":
-            return bad("a dot product is not a row-by-row formula", e.span)
-        return _check_expr(e.left, feature, where) + _check_expr(e.right, feature, where)
-    if isinstance(e, st.Power):
-        p = st.literal_number(e.exponent)
-        if p is None:
-            return bad("the exponent after ^ must be a number", e.exponent.span)
-        return _check_options("power", (p,), feature, e.span, where) + _check_expr(e.base, feature, where)
-    if isinstance(e, st.Aggregate):
-        return bad(f"`{e.kind}` adds over rows; a feature is computed row by row", e.span)
-    if isinstance(e, st.Select):
-        return bad("selecting entries is not a row-by-row formula", e.span)
-    if isinstance(e, st.Call):
-        entry = CATALOG.get(e.func)
-        if entry is None:
-            row_fns = sorted(n for n, en in CATALOG.items() if en.kind != "norm")
-            close = difflib.get_close_matches(e.func, row_fns, n=2)
-            hint = ("did you mean " + " or ".join(close) + "?") if close else "known functions: " + ", ".join(row_fns)
-            return bad(f"unknown function {_q(e.func)}", e.func_span, hint)
-        if entry.kind == "norm":
-            return bad(f"{e.func} is a norm of a parameter vector, not a function of one row", e.func_span)
-        if entry.arity == 0:
-            if len(e.args) < 2:
-                return bad(f"{e.func} takes two or more arguments", e.span)
-            return [d for a in e.args for d in _check_expr(a, feature, where)]
-        if len(e.args) < entry.arity:
-            return bad(f"{e.func} takes {entry.arity} argument(s)", e.span)
-        settings = []
-        for a in e.args[entry.arity:]:
-            v = st.literal_number(a)
-            if v is None:
-                return bad(f"the settings of {e.func} after its argument must be numbers", a.span)
-            settings.append(v)
-        return (_check_options(e.func, tuple(settings), feature, e.span, where)
-                + [d for a in e.args[:entry.arity] for d in _check_expr(a, feature, where)])
-    return bad("this expression cannot be computed from a row", getattr(e, "span", feature.span))
-
-
-def _check_options(func: str, given: tuple[float, ...], feature: DerivedFeature, span: Span,
-                   where: _Where) -> list[Diagnostic]:
-    try:
-        CATALOG[func].resolve_options(given)
-    except ValueError as exc:
-        return [where.diag("T160", f"feature {_q(feature.name)}: {exc}", span)]
-    return []
-
-
-def _eval_expr(e: st.Expr, values: Mapping[str, np.ndarray], n: int) -> np.ndarray:
-    """The formula on every row; each atom's math comes from its catalog entry."""
-    with np.errstate(all="ignore"):
-        if isinstance(e, st.Number):
-            return np.full(n, float(e.value))
-        if isinstance(e, st.Name):
-            return values[e.id]
-        if isinstance(e, st.Negate):
-            return -_eval_expr(e.operand, values, n)
-        if isinstance(e, st.Binary):
-            a, b = _eval_expr(e.left, values, n), _eval_expr(e.right, values, n)
-            return {"+": np.add, "-": np.subtract, "*": np.multiply, "/": np.divide}[e.op](a, b)
-        if isinstance(e, st.Power):
-            entry = CATALOG["power"]
-            opts = entry.resolve_options((st.literal_number(e.exponent),))
-            return np.asarray(entry.value(_eval_expr(e.base, values, n), **opts), dtype=np.float64)
-        if isinstance(e, st.Call):
-            entry = CATALOG[e.func]
-            if entry.arity == 0:
-                return np.asarray(entry.value(*[_eval_expr(a, values, n) for a in e.args]), dtype=np.float64)
-            args = [_eval_expr(a, values, n) for a in e.args[:entry.arity]]
-            opts = entry.resolve_options(tuple(st.literal_number(a) for a in e.args[entry.arity:]))
-            return np.asarray(entry.value(*args, **opts), dtype=np.float64)
-    raise AssertionError(f"unchecked feature expression {e!r}")  # _check_expr rejects everything else
+def _formula_rules(feature: DerivedFeature, where: _Where) -> list[Diagnostic]:
+    """A feature built outside the resolver (the Python API) meets the resolver's rules and codes."""
+    return [replace(d, message=f"feature {_q(feature.name)}: {d.message}", source_name=where.source_name)
+            for d in check_formula(feature.expr).diagnostics]
 
 
 # ---------------------------------------------------------------- feature maps
@@ -724,8 +627,8 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
                                     f.span, "give the feature a name of its own"))
         elif f.name in feature_names[:i]:
             diags.append(where.diag("T114", f"feature {_q(f.name)} is defined twice", f.span))
-        diags.extend(_check_expr(f.expr, f, where))
-        for nm in _expr_names(f.expr):
+        diags.extend(_formula_rules(f, where))
+        for nm in check_formula(f.expr).reads:
             if nm.id not in table and nm.id not in feature_names[:i]:
                 diags.append(where.diag("T110", f"feature {_q(f.name)} reads column {_q(nm.id)}, which is not "
                                         f"in {_q(shown)}", nm.span, _did_you_mean(nm.id, columns + feature_names[:i])))
@@ -786,7 +689,7 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
             else:
                 numeric(c, f"column read by `{m.kind}`,", m.span)
     for f in binding.features:
-        for nm in _expr_names(f.expr):
+        for nm in check_formula(f.expr).reads:
             if nm.id in table:
                 numeric(nm.id, f"column read by feature {_q(f.name)},", nm.span)
     if binding.row_weight is not None:
@@ -874,7 +777,7 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
     # ---- stage 5: derived features, on the kept rows
     values: dict[str, np.ndarray] = {name: v[keep] for name, v in floats.items()}
     for f in binding.features:
-        v = np.broadcast_to(_eval_expr(f.expr, values, n), (n,)).astype(np.float64)
+        v = evaluate(f.expr, values, n)
         bad = np.flatnonzero(~np.isfinite(v))
         if len(bad):
             diags.append(where.diag("T161", f"feature {_q(f.name)} is NaN or infinite at {_rows_text(rows[bad])} "
@@ -1149,29 +1052,44 @@ def _matches(raw: np.ndarray, value: str | float) -> np.ndarray:
                      and float(c) == float(value) for c in raw], dtype=bool)
 
 
-def _fit_stats(X: np.ndarray, names: tuple[str, ...], spans: Sequence[Span], where: _Where, rows_label: str = "",
-               hint: str = "leave it out of the inputs", unscaled: frozenset[str] = frozenset()) -> Standardization:
-    """Mean and population standard deviation of each column: the one rule for what `standardize`
-    fits and for when a column is too constant to scale (also on a fold's or a holdout's rows).
-    Columns in `unscaled` (onehot indicators) keep mean 0 and scale 1: they stay 0/1, and a
-    category absent from a fold's rows is no constant column to refuse."""
+def standard_scales(X, unscaled=None):
+    """(means, scales, problems) of `standardize` on the rows X: each column's mean and population
+    standard deviation (ddof 0, as scikit-learn's StandardScaler), and the columns it cannot scale as
+    (column index, "overflow" or "constant", largest |value|). "overflow": values near the float limit,
+    whose spread overflows (dividing by inf would zero the column); "constant": zero spread or only
+    rounding noise (std <= 1e-12 max |x|). Columns flagged in `unscaled` (onehot indicators) keep mean 0
+    and scale 1: they stay 0/1, and a category absent from a fold's rows is no constant column.
+    The one rule for objc and every generated module, which copies this function by source."""
+    X = np.asarray(X, dtype=np.float64)
     with np.errstate(over="ignore", invalid="ignore"):
-        means = X.mean(axis=0)
-        scales = X.std(axis=0)  # population standard deviation (ddof 0), as scikit-learn's StandardScaler
-    on = f" on {rows_label}" if rows_label else ""
-    diags = []
-    for j, name in enumerate(names):
-        if name in unscaled:
+        means, scales = X.mean(axis=0), X.std(axis=0)
+    problems = []
+    for j in range(X.shape[1]):
+        if unscaled is not None and unscaled[j]:
             means[j], scales[j] = 0.0, 1.0
             continue
-        top = np.max(np.abs(X[:, j])) if len(X) else 0.0
+        top = float(np.max(np.abs(X[:, j]))) if len(X) else 0.0
         if not (np.isfinite(scales[j]) and np.isfinite(means[j])):
-            # values near the float limit: the spread overflows, and dividing by inf would zero the column
-            diags.append(where.diag("T150", f"input {_q(name)} of {_q(where.file)} holds values too large to "
+            problems.append((j, "overflow", top))
+        elif not scales[j] > 1e-12 * top:
+            problems.append((j, "constant", top))
+    return means, scales, problems
+
+
+def _fit_stats(X: np.ndarray, names: tuple[str, ...], spans: Sequence[Span], where: _Where, rows_label: str = "",
+               hint: str = "leave it out of the inputs", unscaled: frozenset[str] = frozenset()) -> Standardization:
+    """What `standardize` fits on these rows (`standard_scales`), also on a fold's or a holdout's rows;
+    a column it cannot scale is T150 at its span."""
+    means, scales, problems = standard_scales(X, [name in unscaled for name in names])
+    on = f" on {rows_label}" if rows_label else ""
+    diags = []
+    for j, why, top in problems:
+        if why == "overflow":
+            diags.append(where.diag("T150", f"input {_q(names[j])} of {_q(where.file)} holds values too large to "
                                     f"standardize (up to {_value(top)}; their spread overflows)", spans[j],
                                     "rescale the column (e.g. a feature dividing it by a power of ten)"))
-        elif not scales[j] > 1e-12 * top:  # zero spread, or only rounding noise
-            diags.append(where.diag("T150", f"input {_q(name)} of {_q(where.file)} is constant{on} "
+        else:
+            diags.append(where.diag("T150", f"input {_q(names[j])} of {_q(where.file)} is constant{on} "
                                     f"(every value is {_value(X[0, j])}); `standardize` would divide by "
                                     "zero", spans[j], hint))
     _raise_all(diags)

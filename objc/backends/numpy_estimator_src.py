@@ -16,7 +16,7 @@ import numpy as np
 from objc.backends.numpy_solvers_src import (_default_input_names, _is_sparse, as_data_matrix, decision_values,
                                              resolve_tunables, run_solver)
 from objc.cells import MISSING_CELLS as _MISSING_CELLS
-from objc.tables import map_category_text, map_fit, map_outputs, map_unseen_rows
+from objc.tables import map_category_text, map_fit, map_outputs, map_unseen_rows, standard_scales
 
 
 # ---------------------------------------------------------------- the estimator
@@ -112,15 +112,13 @@ class EstimatorBase:
         if _is_sparse(X):
             raise ValueError("the spec standardizes its inputs, which would densify a sparse X; pass a dense array")
         if fitting:
-            self.input_mean_ = X.mean(axis=0)
-            scale = X.std(axis=0)
-            self.input_scale_ = np.where(scale > 0, scale, 1.0)  # a constant input stays as it is
-            unscaled = _map_unscaled(table, getattr(self, "map_state_", None))
-            if unscaled:  # onehot indicators stay 0/1, as objc leaves them
-                names = list(getattr(self, "feature_names_in_", ()))
-                for j, name in enumerate(names):
-                    if name in unscaled:
-                        self.input_mean_[j], self.input_scale_[j] = 0.0, 1.0
+            names = list(getattr(self, "feature_names_in_", ()))
+            unscaled = _map_unscaled(table, getattr(self, "map_state_", None))  # onehot indicators stay 0/1
+            means, scales, problems = standard_scales(X, [j < len(names) and names[j] in unscaled
+                                                          for j in range(X.shape[1])])
+            if problems:
+                raise ValueError(_scaling_refusal(problems, names))
+            self.input_mean_, self.input_scale_ = means, scales
         return (X - self.input_mean_) / self.input_scale_
 
     def _check_fitted(self):
@@ -244,6 +242,17 @@ def _frame_column(frame, name):
         return np.asarray(frame[key], dtype=np.float64)
     except (TypeError, ValueError):
         raise ValueError(f"column {name!r} of X is not numeric") from None
+
+
+def _scaling_refusal(problems, names):
+    """Why `standardize` cannot scale these rows (the problems `standard_scales` found), in objc's words."""
+    j, why, top = problems[0]
+    name = repr(names[j]) if j < len(names) else f"{j + 1} (counting from 1)"
+    more = f" (and {len(problems) - 1} more)" if len(problems) > 1 else ""
+    if why == "overflow":
+        return (f"input {name}{more} holds values too large to standardize (up to {top:.6g}; their spread "
+                "overflows): rescale the column")
+    return f"input {name}{more} is constant on these rows: `standardize` would divide by zero; leave it out"
 
 
 def _map_unscaled(table, state):
@@ -409,7 +418,7 @@ class TableError(Exception):
 def _read_csv(path):
     import csv
     try:
-        with open(path, newline="", encoding="utf-8") as handle:
+        with open(path, newline="", encoding="utf-8-sig") as handle:  # a byte-order mark is no part of a name
             rows = list(csv.reader(handle))
     except OSError as err:
         raise TableError(f"{path}: cannot read the table: {err.strerror or err}") from None
@@ -420,13 +429,16 @@ def _read_csv(path):
     if not rows:
         raise TableError(f"{path}: the file is empty")
     header = [h.strip() for h in rows[0]]
+    if "" in header:
+        raise TableError(f"{path}: line 1: column {header.index('') + 1} has no name (a trailing comma makes one)")
     if len(set(header)) != len(header):
         raise TableError(f"{path}: line 1: a column name appears twice")
     body = [r for r in rows[1:] if any(cell.strip() for cell in r)]
     for k, r in enumerate(rows[1:], start=2):
         if any(cell.strip() for cell in r) and len(r) != len(header):
             raise TableError(f"{path}: line {k}: {len(r)} fields, the header has {len(header)}")
-    columns = {name: [r[j].strip() for r in body] for j, name in enumerate(header)}
+    # cells as written: " yes" is not the label "yes" (objc reads them so); float() allows the blanks of " 1"
+    columns = {name: [r[j] for r in body] for j, name in enumerate(header)}
     return header, columns, len(body)
 
 
@@ -570,6 +582,13 @@ def load_table(path):
         X, y, c = X[~bad], y[~bad], c[~bad]
     if np.any(c < 0):
         raise TableError(f"{path}: data row {int(np.flatnonzero(c < 0)[0]) + 1}: a negative row weight")
+    if len(y) == 0:
+        raise TableError(f"{path}: no data row is left once the rows with a missing value are dropped")
+    if not np.any(c > 0):
+        raise TableError(f"{path}: every row weight is zero: there is nothing to train on")
+    if SPEC["task"] == "margin" and SPEC["needs_target"] and len(np.unique(y)) < 2:
+        raise TableError(f"{path}: the target column {table['target']!r} holds one class only; a margin loss "
+                         "needs rows of both classes")
     for label, weight in table["class_weights"]:
         c = np.where(y == label, c * weight, c)
     if table["holdout"] is not None:
@@ -580,13 +599,10 @@ def load_table(path):
         X, y, c = X[keep], y[keep], c[keep]
     stats = None
     if table["standardize"]:
-        mean, scale = X.mean(axis=0), X.std(axis=0)
-        unscaled = _map_unscaled(table, map_state)
-        for j, name in enumerate(inputs):
-            if name in unscaled:  # onehot indicators stay 0/1, as objc leaves them
-                mean[j], scale[j] = 0.0, 1.0
-            if not scale[j] > 0:
-                raise TableError(f"{path}: input {name!r} is constant; `standardize` would divide by zero")
+        unscaled = _map_unscaled(table, map_state)  # onehot indicators stay 0/1, as objc leaves them
+        mean, scale, problems = standard_scales(X, [name in unscaled for name in inputs])
+        if problems:
+            raise TableError(f"{path}: {_scaling_refusal(problems, list(inputs))}")
         X = (X - mean) / scale
         stats = {"names": list(inputs), "means": mean.tolist(), "scales": scale.tolist()}
     if map_state is not None:

@@ -29,7 +29,7 @@ import math
 import textwrap
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable, Literal
+from typing import Any, Callable, Literal, Mapping, Sequence
 
 import numpy as np
 
@@ -40,6 +40,7 @@ from objc.catalog import CATALOG
 from objc.cells import MISSING_CELLS
 from objc.checker import CheckedObjective, Term, render
 from objc.diagnostics import NUMPY_REFUSAL_CODES
+from objc.feature_formula import fold
 from objc.fit_result import Certificate, FitResult
 from objc.score_form import score_form
 from objc.source_text import Span
@@ -400,7 +401,7 @@ class _Code:
         args = [self.walk(a) for a in e.args]
         tuned = dict(e.tuned)  # a setting or exponent a tunable gives is read from `tun` at run time
         opts = {k: (ast.Subscript(_name("tun"), ast.Constant(tuned[k].name), ast.Load()) if k in tuned
-                    else ast.Constant(float(v))) for k, v in e.options}
+                    else _const(float(v))) for k, v in e.options}
         value_fn = self.emitter.kernel(entry.value)
         values = [a for a, _ in args]
         value = _call(value_fn, *values, **opts)
@@ -421,6 +422,30 @@ class _Code:
             if da is not None:
                 d = _add(d, _mul(ast.Subscript(parts, ast.Constant(i), ast.Load()), da))
         return self._store(value, d)
+
+
+class _FeatureSyntax:
+    """A feature formula's forms (objc/feature_formula.py) as Python syntax over the module's `cols`."""
+
+    _OPS = {"+": ast.Add, "-": ast.Sub, "*": ast.Mult, "/": ast.Div}
+
+    def __init__(self, emitter: "_Emitter") -> None:
+        self.emitter = emitter
+
+    def number(self, value: float) -> ast.expr:
+        return _const(value)
+
+    def column(self, name: str) -> ast.expr:
+        return ast.Subscript(_name("cols"), ast.Constant(name), ast.Load())
+
+    def negate(self, operand: ast.expr) -> ast.expr:
+        return ast.UnaryOp(ast.USub(), operand)
+
+    def arithmetic(self, op: str, left: ast.expr, right: ast.expr) -> ast.expr:
+        return _binop(left, self._OPS[op](), right)
+
+    def atom(self, entry: catalog.Entry, args: Sequence[ast.expr], settings: Mapping[str, float]) -> ast.expr:
+        return _call(self.emitter.kernel(entry.value), *args, **{k: _const(v) for k, v in settings.items()})
 
 
 # ---------------------------------------------------------------- the emitter
@@ -769,36 +794,14 @@ class _Emitter:
         self.maps = True
 
     def feature_function(self, fname: str, f: tt.DerivedFeature) -> None:
-        from objc import syntax_tree as st
-        body: list[ast.stmt] = []
-
-        def walk(e) -> ast.expr:
-            if isinstance(e, st.Number):
-                return _const(float(e.value))
-            if isinstance(e, st.Name):
-                return ast.Subscript(_name("cols"), ast.Constant(e.id), ast.Load())
-            if isinstance(e, st.Negate):
-                return ast.UnaryOp(ast.USub(), walk(e.operand))
-            if isinstance(e, st.Binary) and e.op in "+-*/":
-                op = {"+": ast.Add(), "-": ast.Sub(), "*": ast.Mult(), "/": ast.Div()}[e.op]
-                return _binop(walk(e.left), op, walk(e.right))
-            if isinstance(e, st.Power) and st.literal_number(e.exponent) is not None:
-                return _call(self.kernel(CATALOG["power"].value), walk(e.base),
-                             p=_const(st.literal_number(e.exponent)))
-            if isinstance(e, st.Call) and e.func in CATALOG:
-                entry = CATALOG[e.func]
-                n_args = len(e.args) if entry.arity == 0 else entry.arity
-                args = [walk(a) for a in e.args[:n_args]]
-                literal = [st.literal_number(a) for a in e.args[n_args:]]
-                if any(v is None for v in literal):
-                    raise NotSupported("options must be literal numbers", e.span, "feature")
-                opts = entry.resolve_options(tuple(float(v) for v in literal))
-                return _call(self.kernel(entry.value), *args, **{k: _const(v) for k, v in opts.items()})
-            raise NotSupported(f"feature {f.name!r} uses an expression the NumPy module "
-                               "cannot compute", f.span, "feature")
-        value = walk(f.expr)
+        # the formula rules' own walk (objc/feature_formula.py) with Python syntax as its algebra, so the
+        # module computes exactly the forms objc's table binder does
+        folded = fold(f.expr, _FeatureSyntax(self))
+        if folded.diagnostics:
+            first = folded.diagnostics[0]
+            raise NotSupported(f"feature {f.name!r}: {first.message}", first.span, "feature")
         doc = f"Derived input {f.name!r} (spec line {f.span.line}) from the table's columns."
-        body.append(ast.Return(_call(_attr("np", "asarray"), value, dtype=_attr("np", "float64"))))
+        body = [ast.Return(_call(_attr("np", "asarray"), folded.value, dtype=_attr("np", "float64")))]
         self.defs.append(_function(fname, ["cols"], doc, body))
 
     # ---- the module
@@ -941,7 +944,7 @@ def emit_module(checked: CheckedObjective, runtime: Runtime = "inline") -> str:
     tail = ast.parse(_TAIL).body
     solvers, estimator_code = _file_copies("numpy_solvers_src.py"), _file_copies("numpy_estimator_src.py")
     kernels = _kernel_copies(em.kernels)
-    maps = _map_copies() if em.maps else []
+    maps = (_map_copies() if em.maps else []) + _scaling_copies()
     header = _header(checked) if runtime == "inline" else _header(checked).replace(_STANDALONE_NEEDS, _LEAN_NEEDS)
     out = _Assembly()
     out.nodes([ast.Expr(ast.Constant(header))] + ast.parse(_IMPORTS).body
@@ -960,7 +963,7 @@ def emit_module(checked: CheckedObjective, runtime: Runtime = "inline") -> str:
                    "# ---- objc's kernels, maps and solver code, imported from the installed objc")
     out.nodes(em.defs, "# ---- generated from the spec's typed tree (each docstring names its spec line)")
     if runtime == "inline":
-        out.source(_copied_text(maps, "feature maps"))
+        out.source(_copied_text(maps, "feature maps and standardization"))
     out.source("SPEC = " + _layout(spec_table, 0), "# ---- the spec as a table the solver reads", [spec_node])
     if runtime == "inline":
         out.source(_copied_text(solvers, "generic solver code"))
@@ -1311,6 +1314,15 @@ def _map_copies() -> list[_Copied]:
     return [_definition_copy(fn) for fn in fns]
 
 
+def _scaling_copies(multiclass: bool = False) -> list[_Copied]:
+    """`standardize`'s one rule (tables.standard_scales), and for a multiclass module the estimator's
+    wording of a refusal (a binary module has the whole estimator file already)."""
+    from objc import tables
+    from objc.backends import numpy_estimator_src as estimator_src
+    return [_definition_copy(tables.standard_scales)] + (
+        [_definition_copy(estimator_src._scaling_refusal)] if multiclass else [])
+
+
 def _mc_map_copies() -> list[_Copied]:
     """The maps' math and the estimator's way of applying them (the binary modules' own)."""
     from objc.backends import numpy_estimator_src as estimator_src
@@ -1331,7 +1343,7 @@ def _emit_multiclass(checked: CheckedObjective, runtime: Runtime = "inline") -> 
     coefficients = _mc_coefficients_def(plan)
     spec_node = ast.Assign([ast.Name("SPEC", ast.Store())], _mc_spec_table(checked, plan))
     kernels, solver = _kernel_copies(_mc_kernels()), _file_copies(_MULTICLASS_RUNTIME)
-    maps = _mc_map_copies() if checked.spec.table.maps else []
+    maps = (_mc_map_copies() if checked.spec.table.maps else []) + _scaling_copies(multiclass=True)
     out = _Assembly()
     out.nodes([ast.Expr(ast.Constant(header))] + ast.parse(
         "import math\nimport sys\nimport numpy as np\n"
@@ -1354,7 +1366,7 @@ def _emit_multiclass(checked: CheckedObjective, runtime: Runtime = "inline") -> 
     out.nodes([spec_node], "# ---- the spec as a table the solver reads")
     if runtime == "inline":
         out.source(_copied_text(solver, "multiclass solver"))
-        out.source(_copied_text(maps, "feature maps"))
+        out.source(_copied_text(maps, "feature maps and standardization"))
     out.source(_MC_TAIL, "# ---- functions for use: fit, predict, decision_function, predict_proba, solve")
     return out.text()
 
@@ -1489,10 +1501,9 @@ def fit(X, labels, weights=None, tunables=None, tol=1e-08, max_passes=None):
     if SPEC["standardize"]:
         keep = np.array([n in _map_unscaled({"maps": SPEC["maps"]}, state) for n in names], dtype=bool) \
             if state is not None else np.zeros(X.shape[1], dtype=bool)
-        means, scales = np.where(keep, 0.0, X.mean(axis=0)), np.where(keep, 1.0, X.std(axis=0))
-        if np.any(~(scales > 0)):
-            raise ValueError(f"input {int(np.flatnonzero(~(scales > 0))[0]) + 1} is constant: standardizing "
-                             "would divide by zero")
+        means, scales, problems = standard_scales(X, keep)
+        if problems:
+            raise ValueError(_scaling_refusal(problems, names))
     c = np.ones(len(y)) if weights is None else np.asarray(weights, dtype=np.float64).reshape(-1)
     for label, w in SPEC["class_weights"]:
         c = np.where(y == class_numbers([label])[0], c * w, c)

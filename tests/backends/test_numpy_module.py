@@ -993,3 +993,20 @@ def test_a_fit_that_runs_out_of_passes_says_so(cancer):
     ref = LogisticRegression(C=1 / (2 * len(y) * 1e-4), solver="newton-cg", tol=1e-14, max_iter=10000).fit(X, y)
     assert full.status == "optimal"
     np.testing.assert_allclose(full.params["w"], ref.coef_[0], atol=1e-5)
+
+
+def test_a_goal_with_a_negative_literal_power_of_data_fits_like_cvxpy():
+    # regression: a literal setting written into the module as Constant(-1.0) while its printed source
+    # parses to -(1.0) made every module of such a goal fail its own syntax-tree check (an internal
+    # error on `objc fit` and `objc build`); the spec is specs/late_parcels.objc with a data-only term
+    from objc import training
+    text = (ROOT / "specs" / "late_parcels.objc").read_text().replace(
+        "goal C * mean hinge(y * s) + 0.5 * l2sq(w)",
+        "goal C * mean hinge(y * s) + 0.5 * l2sq(w) + mean((rain_mm + 1) ^ -1)")
+    assert "^ -1" in text
+    checked = objc.check_text(text, str(ROOT / "specs" / "late_parcels_power.objc"))
+    assert "p=-1.0" in nm.emit_module(checked).replace(" ", "")  # the module is written and parses to its tree
+    train, _, _ = training.bind_training(checked, ROOT / "specs")
+    ours = training.run_backend(checked, train, "numpy")
+    reference = training.run_backend(checked, train, "cvxpy")  # cvxpy + Clarabel on the same rows
+    assert ours.objective == pytest.approx(reference.objective, rel=1e-6)
