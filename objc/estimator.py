@@ -85,10 +85,6 @@ def _checked(text: str, name: str) -> CheckedObjective:
         training.require_trainable(checked)
     except SpecError as err:
         raise _as_input_error(err) from None
-    if checked.task == "multiclass":
-        raise _error("E467", "the estimator class trains specs with a +1/-1 or a real target; this spec's target "
-                     f"has {len(checked.spec.table.classes)} classes", name,
-                     hint="train it with `objc fit` or objc.fit_spec (both take a target with classes)")
     return checked
 
 
@@ -266,6 +262,8 @@ class SpecEstimator(BaseEstimator):
             y = y.ravel()
         if y.ndim != 1 or y.shape[0] != n:
             raise _error("E465", f"y must hold one value per row of X ({n}), got shape {y.shape}", name)
+        if self._task == "multiclass":
+            return self._class_target(y, checked)
         if self._task != "margin":
             try:
                 return y.astype(np.float64)
@@ -347,7 +345,12 @@ class SpecEstimator(BaseEstimator):
         self.fit_result_ = result
         self.n_iter_ = result.iterations
         form = training.form_for(checked, data.input_names)
-        if form.standard:
+        if checked.task == "multiclass":  # scikit-learn's layout: one row of coef_ per class
+            W_name, b_name = form.weights_name, form.intercept_name
+            self.coef_ = np.asarray(self.params_[W_name], dtype=np.float64).T
+            self.intercept_ = (np.asarray(self.params_[b_name], dtype=np.float64) if b_name
+                               else np.zeros(len(self.classes_)))
+        elif form.standard:
             self.coef_ = np.asarray(self.params_[form.weights_name], dtype=np.float64)
             self.intercept_ = float(self.params_[form.intercept_name]) if form.intercept_name else 0.0
         return self
@@ -362,11 +365,15 @@ class SpecEstimator(BaseEstimator):
 def _has_probability(estimator: SpecEstimator) -> bool:
     try:
         if hasattr(estimator, "fitted_spec_"):
-            return _probability_loss(_checked(*estimator.fitted_spec_), estimator.tunables_) is not None
-        checked = estimator._checked_spec()
-        return _probability_loss(checked, estimator._tunables(checked)) is not None
+            checked, tunables = _checked(*estimator.fitted_spec_), estimator.tunables_
+        else:
+            checked = estimator._checked_spec()
+            tunables = estimator._tunables(checked)
     except SpecError:
         return False
+    if checked.task == "multiclass":  # softmax_ce's scores are the classes' log-odds
+        return training.trains_softmax(checked)
+    return _probability_loss(checked, tunables) is not None
 
 
 class SpecClassifier(ClassifierMixin, SpecEstimator):
@@ -398,6 +405,35 @@ class SpecClassifier(ClassifierMixin, SpecEstimator):
         return class_probabilities(entry.derivative(s, **options), -entry.derivative(-s, **options))
 
 
+class SpecMulticlassClassifier(ClassifierMixin, SpecEstimator):
+    """A spec whose target has K >= 3 classes (`target ... classes a, b, c`): K scores per row, the label
+    of the highest (classes_ is the classes clause, in its order, as the table writes the labels)."""
+
+    _task = "multiclass"
+
+    def _class_target(self, y: np.ndarray, checked: CheckedObjective) -> np.ndarray:
+        """y as the table's target column; every label must be one of the spec's classes (bind_table
+        says which rows are not)."""
+        classes = list(checked.spec.table.classes)
+        numeric = y.dtype.kind in "biuf" and all(not isinstance(c, str) for c in classes)
+        self.classes_ = np.asarray(classes, dtype=y.dtype if numeric else object)
+        return y if numeric else np.asarray([str(v) for v in y], dtype=object)
+
+    def decision_function(self, X: Any) -> np.ndarray:
+        """The K scores of each row (rows x K, columns in the order of classes_)."""
+        return self._scores(X)
+
+    def predict(self, X: Any) -> np.ndarray:
+        """The class of the highest score (ties go to the class listed first)."""
+        return self.classes_[np.argmax(self._scores(X), axis=1)]
+
+    @available_if(_has_probability)
+    def predict_proba(self, X: Any) -> np.ndarray:
+        """The softmax of the K scores (a softmax_ce goal: its scores are the classes' log-odds)."""
+        from objc.catalog import _k_mc_probabilities
+        return _k_mc_probabilities(self._scores(X))
+
+
 class SpecRegressor(RegressorMixin, SpecEstimator):
     """A spec with a residual loss: the prediction is the score."""
 
@@ -416,7 +452,7 @@ def _estimator_class(text: str, name: str) -> type[SpecEstimator]:
         raise _error("E401", "the spec binds no table, so there is nothing to read X and y by", name,
                      hint='add: table NAME from "file.csv" with its target and inputs')
     task = training.task_of(checked)
-    base = SpecClassifier if task == "margin" else SpecRegressor
+    base = {"margin": SpecClassifier, "multiclass": SpecMulticlassClassifier}.get(task, SpecRegressor)
     arguments = _tunable_arguments(checked)
     defaults = {"spec": text, **{arguments[t.name]: float(t.default) for t in checked.spec.tunables}, **OPTIONS}
     signature = inspect.Signature([inspect.Parameter("self", inspect.Parameter.POSITIONAL_OR_KEYWORD)] + [

@@ -265,6 +265,80 @@ def test_bad_specs_data_and_settings_are_clear_value_errors(diabetes):
     np.testing.assert_allclose(squared_hinge.predict_proba(X)[:, 1], (np.clip(s, -1, 1) + 1) / 2, atol=1e-12)
 
 
+# ---------------------------------------------------------------- more than two classes
+
+def _classes_spec(goal: str, classes: str, inputs: str) -> str:
+    return (f'table t from "t.csv"\n  target kind classes {classes}\n  inputs {inputs}\n'
+            "tune C = 1 within 0.001 .. 1000\nlearn W over inputs by classes, b by classes\n"
+            f"score s = W . x + b\ngoal {goal}\n")
+
+
+@pytest.fixture(scope="module")
+def iris_frame():
+    # Fisher's iris table as scikit-learn ships it (sklearn.datasets.load_iris), inputs standardized
+    from sklearn.datasets import load_iris
+    X, y = load_iris(return_X_y=True)
+    X = (X - X.mean(axis=0)) / X.std(axis=0)
+    frame = pd.DataFrame(X, columns=["sl", "sw", "pl", "pw"])
+    return frame, np.array(["setosa", "versicolor", "virginica"], dtype=object)[y]
+
+
+IRIS_SOFTMAX = _classes_spec("C * perrow softmax_ce(s, y) + 0.5 * l2sq(W)", "setosa, versicolor, virginica",
+                             "sl, sw, pl, pw")
+
+
+def test_multiclass_softmax_matches_multinomial_logistic_regression(iris_frame):
+    X, labels = iris_frame
+    est = spec_estimator(IRIS_SOFTMAX, C=2.0)
+    assert type(est).__name__ == "SpecMulticlassClassifier" and set(est.get_params()) >= {"C", "tol", "spec"}
+    est.fit(X, labels)
+    # perrow is sum / n, so C * perrow softmax_ce + 0.5 ||W||^2 is scikit-learn's multinomial
+    # LogisticRegression (lbfgs; unpenalized intercepts) at C_sklearn = C / n (its documented objective)
+    ref = LogisticRegression(C=2.0 / len(X), tol=1e-12, max_iter=100000).fit(X, labels)
+    assert list(est.classes_) == list(ref.classes_)
+    assert est.coef_.shape == ref.coef_.shape == (3, 4)
+    np.testing.assert_allclose(est.coef_, ref.coef_, atol=1e-5)
+    # intercepts are unique only up to one constant added to every class (softmax is shift-invariant)
+    np.testing.assert_allclose(est.intercept_ - est.intercept_.mean(), ref.intercept_ - ref.intercept_.mean(),
+                               atol=1e-5)
+    np.testing.assert_allclose(est.predict_proba(X), ref.predict_proba(X), atol=1e-6)
+    assert np.array_equal(est.predict(X), ref.predict(X))
+    assert est.decision_function(X).shape == (len(X), 3)
+    assert est.score(X, labels) == pytest.approx(ref.score(X, labels))
+
+
+def test_multiclass_estimator_in_a_pipeline_and_a_grid_search(iris_frame):
+    X, labels = iris_frame
+    folds = KFold(3, shuffle=True, random_state=0)
+    ours = cross_val_score(make_pipeline(StandardScaler(), spec_estimator(IRIS_SOFTMAX, C=50.0)), X, labels, cv=folds)
+    theirs = cross_val_score(make_pipeline(StandardScaler(), LogisticRegression(C=50.0 / (len(X) * 2 / 3),
+                                                                                tol=1e-12, max_iter=100000)),
+                             X, labels, cv=folds)
+    np.testing.assert_allclose(ours, theirs)  # each fold: the same objective, so the same accuracy
+    grid = GridSearchCV(spec_estimator(IRIS_SOFTMAX), {"C": [0.1, 10.0, 100.0]}, cv=folds).fit(X, labels)
+    assert grid.best_params_["C"] in (10.0, 100.0) and grid.best_score_ > 0.9
+    # the Crammer-Singer hinge has no probabilistic reading; labels outside the classes clause are refused
+    hinge = spec_estimator(_classes_spec("C * perrow cs_hinge(s, y) + 0.5 * l2sq(W)",
+                                         "setosa, versicolor, virginica", "sl, sw, pl, pw"))
+    assert not hasattr(hinge, "predict_proba")
+    # the same estimator on the cvxpy backend (Clarabel, an interior-point method) is the reference
+    ours = hinge.set_params(C=100.0).fit(X, labels)
+    exact = clone(hinge).set_params(backend="cvxpy").fit(X, labels)
+    # the objective and W agree; the intercepts of a hinge need not be unique, so they are not compared.
+    # W is unique: 0.5 ||W||^2 makes min over b of the objective 1-strongly convex in W, so a duality gap G
+    # bounds ||W - W*|| <= sqrt(2 G) (strong convexity; Nesterov, Introductory Lectures, 2004, Thm 2.1.8)
+    gap = ours.fit_result_.certificate.absolute
+    assert ours.fit_result_.objective == pytest.approx(exact.fit_result_.objective, rel=2e-6)
+    assert np.linalg.norm(ours.coef_ - exact.coef_) <= np.sqrt(2 * gap) + 1e-6
+    assert ours.score(X, labels) > 0.9
+    wrong = labels.copy()
+    wrong[4] = "daisy"
+    with pytest.raises(ValueError, match="daisy"):
+        spec_estimator(IRIS_SOFTMAX).fit(X, wrong)
+    # scikit-learn's check_estimator does not apply: its checks draw their own labels, and this
+    # estimator's classes are the spec's `classes` clause, by design (any other label is an error)
+
+
 def test_tunables_keep_the_generated_modules_argument_names():
     # `lambda` is a Python keyword and `tol` an estimator option: both renamed, as in the NumPy module
     text = spec("mean squared(y - s) + lambda * l2sq(w) + tol * l1(w)",

@@ -243,16 +243,6 @@ def test_label_outside_the_classes_names_the_rows(tmp_path):
     assert d.span.line == 2
 
 
-def test_estimator_class_refuses_classes(tmp_path):
-    pytest.importorskip("sklearn")
-    from objc import spec_estimator
-    from objc.estimator import EstimatorInputError
-    text = _spec([f"f{j}" for j in range(4)], "mean softmax_ce(s, y) + 0.01 * l2sq(W)")
-    with pytest.raises(EstimatorInputError) as info:
-        spec_estimator(text)
-    assert info.value.diagnostics[0].code == "E467"
-
-
 # ---------------------------------------------------------------- the commands
 
 def _cli(argv, capsys) -> tuple[int, str]:
