@@ -738,7 +738,7 @@ class _Emitter:
         for k, b in enumerate(form.blocks):
             if b.dot:
                 dots.append(ast.Tuple([ast.Constant(b.param), _const(b.entries if b.entries else None),
-                                       ast.Constant(b.sign)], ast.Load()))
+                                       _const(b.sign)], ast.Load()))
             else:
                 coef: ast.expr = ast.Constant(None)
                 if b.coefficient is not None:
@@ -746,7 +746,7 @@ class _Emitter:
                     self.value_function(fname, ["cols", "tun"], f"The score (spec line {spec.score.span.line}): the "
                                         f"factor {render(b.coefficient)} of {b.param}.", b.coefficient, "data")
                     coef = _name(fname)
-                scalars.append(ast.Tuple([ast.Constant(b.param), _const(b.entries), ast.Constant(b.sign), coef],
+                scalars.append(ast.Tuple([ast.Constant(b.param), _const(b.entries), _const(b.sign), coef],
                                          ast.Load()))
         offset: ast.expr = ast.Constant(None)
         if form.offset:

@@ -2513,6 +2513,10 @@ def method_smoothing(run, theta0, use_scipy, inner):
 
         if inner == "lbfgs":
             theta, _, status = _lbfgs_driver(run, theta, mu, lbfgs_stop, use_scipy)
+            if run.theta is None:
+                # a stage that took no step recorded no point (its L-BFGS stopped at once): its start is the
+                # answer so far, which must not fall back to the first point of the whole run
+                lbfgs_stop(evaluate_smooth(pb, theta, mu))
         else:
             status = method_fista(run, theta, mu, fista_stop)
             theta = run.theta if run.theta is not None else theta

@@ -321,6 +321,26 @@ def test_hinge_l1_with_free_intercept_lp_finish_against_cvxpy_backend(cancer):
     assert_certified_against(result, ref.objective, 1e-6)
 
 
+def test_score_subtracting_the_weights_trains_like_its_mirror(cancer):
+    # regression: `s = b - w . x` made the module fail its own syntax-tree check (a sign written as
+    # Constant(-1.0)), then the smoothing method reported the run's first point (0-1 error 1.0) when its
+    # last stage took no step. The same problem as `w . x + b` with w negated; cvxpy + Clarabel is the
+    # reference for the objective
+    cvxpy_problem = pytest.importorskip("objc.backends.cvxpy_problem")
+    X, y, names = cancer
+    X = X[:, :6]
+    names = names[:6]
+    mirror = objc.check_text(spec("mean hinge(y * s) + 0.01 * l2sq(w)", margin=True), "m.objc")
+    minus = objc.check_text(spec("mean hinge(y * s) + 0.01 * l2sq(w)", margin=True).replace(
+        "score s = w . x + b", "score s = b - w . x"), "n.objc")
+    ref = cvxpy_problem.fit(minus, X, y, None, names)
+    ours = nm.fit(minus, X, y, None, names)
+    plain = nm.fit(mirror, X, y, None, names)
+    assert ours.objective == pytest.approx(ref.objective, rel=1e-6)
+    np.testing.assert_allclose(ours.params["w"], -plain.params["w"], atol=1e-3)
+    np.testing.assert_allclose(ours.params["w"], ref.params["w"], atol=1e-3)
+
+
 @pytest.mark.parametrize("goal", ["mean absolute(y - s) + 0.05 * l1(w)",
                                   "mean pinball(y - s, 0.8) + 0.05 * l1(w)",
                                   "mean epsilon_insensitive(y - s, 5.0) + 0.02 * l1(w)"])
