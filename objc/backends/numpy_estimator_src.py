@@ -17,6 +17,9 @@ from objc.backends.numpy_solvers_src import (_default_input_names, _is_sparse, a
                                              resolve_tunables, run_solver)
 from objc.cells import MISSING_CELLS as _MISSING_CELLS
 from objc.tables import map_category_text, map_fit, map_outputs, map_unseen_rows, standard_scales
+# the spec's table is the generated module's own (SPEC = {...}, written before this code); this stand-in
+# only lets the file import as a module of objc. An annotated assignment, so it is not copied.
+SPEC: dict = {}
 
 
 # ---------------------------------------------------------------- the estimator
