@@ -343,9 +343,7 @@ def _fit_point(checked: CheckedObjective, data: tables.BoundData, form, setting:
                theta: np.ndarray | None, plan: ScreeningRule | str, prepared: dict[str, Any], *, tol: float,
                param_tol: float | None) -> FitResult:
     """One point of a NumPy path: screen, fit the inputs left (warm-started), certify on the full problem."""
-    from objc.backends import numpy_module
     from objc.training import run_backend
-    ns = numpy_module._compiled(checked)
     start = np.zeros(form.size) if theta is None else theta
 
     def solve(d: tables.BoundData, theta0, columns, certify_only=False) -> FitResult:
@@ -356,6 +354,8 @@ def _fit_point(checked: CheckedObjective, data: tables.BoundData, form, setting:
     if isinstance(plan, str):
         result = solve(data, theta, None)
         return replace(result, extra=dict(result.extra, screening={"rule": None, "screened": [], "note": plan}))
+    from objc.backends import numpy_module
+    ns = numpy_module._compiled(checked)  # only the screening test reads the module here; the fit finds it itself
     mask, gap = ns["gap_safe_screen"](ns["SPEC"], data.X, data.y, data.weights, data.input_names, setting, start,
                                       plan.curvature, plan.candidates, prepared)
     screened = plan.candidates[mask]

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import itertools
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Literal, Sequence
 
@@ -275,6 +275,8 @@ class Validation:
     label: str
     parts: tuple[Part, ...]
     folds: Folds | None = None
+    # the rows the folds partition (the refit's rows), where known: their sums serve the refit
+    whole: tables.BoundData | None = field(default=None, compare=False, repr=False)
 
 
 def fold_part(checked: CheckedObjective, data: tables.BoundData, folds: Folds, f: int) -> Part:
@@ -309,7 +311,7 @@ def validation_plan(checked: CheckedObjective, train: tables.BoundData, held: ta
         parts.append(part)
     how = "stratified by class" if stratify else "shuffled"
     return Validation("folds", f"{plan.k} folds of the {train.n_rows} training rows ({how}, seed {seed})",
-                      tuple(parts), plan)
+                      tuple(parts), plan, train)
 
 
 # ---------------------------------------------------------------- fitting the grid
@@ -352,10 +354,11 @@ class FitOptions:
 
 
 def _fold_caches(checked: CheckedObjective, validation: Validation, setting: dict[str, float],
-                 options: FitOptions) -> list[dict | None]:
-    """One path cache per part: for K folds of a table whose fits go the Gram way, each holds its
-    fold's sums formed from the table's (`paths.fold_caches`); else None (each part forms its own)."""
-    none: list[dict | None] = [None] * len(validation.parts)
+                 options: FitOptions) -> tuple[list[dict | None], dict | None]:
+    """(one path cache per part, one for the refit on `validation.whole`): for K folds of a table whose
+    fits go the Gram way, each part's holds its fold's sums formed from the table's and the refit's the
+    table's own (`paths.fold_caches`); else Nones (each fit forms its own)."""
+    none: tuple[list[dict | None], dict | None] = ([None] * len(validation.parts), None)
     lib = _paths_module()
     if validation.kind != "folds" or options.backend != "numpy" or lib is None or not hasattr(lib, "fold_caches"):
         return none
@@ -363,8 +366,9 @@ def _fold_caches(checked: CheckedObjective, validation: Validation, setting: dic
     # differ from the table's: the table's sums do not apply
     if any(p.train.standardization is not None and p.train.standardization_fitted for p in validation.parts):
         return none
-    caches, _whole = lib.fold_caches(checked, [(p.train, p.held) for p in validation.parts], setting)
-    return [c if c else None for c in caches]
+    caches, whole = lib.fold_caches(checked, [(p.train, p.held) for p in validation.parts], setting,
+                                    validation.whole)
+    return [c if c else None for c in caches], whole
 
 
 def _fit_part(checked: CheckedObjective, part: Part, grid: Grid, base: dict[str, float], options: FitOptions,
@@ -464,6 +468,9 @@ class Outcome:
     backend: str
     input_names: tuple[str, ...]
     l1: bool
+    # a NumPy fit cache holding the sums of `validation.whole` (formed with the folds' sums, no extra
+    # read of the table), for the refit on those rows; None where the folds' sums did not apply
+    refit_cache: dict | None = field(default=None, compare=False, repr=False)
 
     @property
     def metric(self) -> str:
@@ -514,7 +521,7 @@ def evaluate_grid(checked: CheckedObjective, validation: Validation, grid: Grid,
     total, done = grid.size * len(validation.parts), 0
     per_part: list[list[FitResult]] = []
     warm = ""
-    caches = _fold_caches(checked, validation, dict(base, **settings[0]), options)
+    caches, refit_cache = _fold_caches(checked, validation, dict(base, **settings[0]), options)
     for f, part in enumerate(validation.parts):
         def on_fit(k: int, res: FitResult, f: int = f) -> None:
             nonlocal done
@@ -541,7 +548,7 @@ def evaluate_grid(checked: CheckedObjective, validation: Validation, grid: Grid,
             mean_weights=tuple(float(v) for v in np.mean(weights, axis=0)) if weights[0].size else (),
             params=dict(runs[0].params) if len(runs) == 1 else None))
     return Outcome(grid, validation, keys, base, tuple(points), warm, options.backend, first.input_names,
-                   has_l1(checked))
+                   has_l1(checked), refit_cache)
 
 
 # ---------------------------------------------------------------- the choice
@@ -682,8 +689,11 @@ def refit_chosen(checked: CheckedObjective, spec_path: Path, train: tables.Bound
     """The chosen setting fitted on every training row: (its model document, with the selection
     record under `selection`, and the fit). A fit that runs out of passes is E404 (nothing saved)."""
     setting = dict(outcome.base, **outcome.points[choice.index].setting)
+    kept = outcome.refit_cache
+    # the table's sums kept from the folds serve only the very rows they were formed from
+    prepared = kept if options.backend == "numpy" and kept is not None and kept.get("X") is train.X else None
     fit = training.run_backend(checked, train, options.backend, setting, tol=options.tol, solver=options.solver,
-                               param_tol=options.param_tol, max_passes=max_passes)
+                               param_tol=options.param_tol, max_passes=max_passes, prepared=prepared)
     training.require_finished(checked, fit, max_passes)
     doc = training.evaluated_document(checked, spec_path, train, held, held_label, fit, setting)
     doc["selection"] = selection_record(outcome, choice)

@@ -291,3 +291,11 @@ def test_lasso_fold_figures_equal_scikit_learns_lasso_cv_on_the_same_folds(tmp_p
         assert all(s == "optimal" for s in outcome.points[k].statuses)
     choice = selection.choose_point(outcome, "best")
     assert outcome.points[choice.index].setting["lam"] == pytest.approx(peer.alpha_, rel=1e-12)
+    # the refit on every row runs on the table's sums kept from the folds' (the held parts' sums add up
+    # to them): it reads the table no more, and its answer is LassoCV's own refit at alpha_
+    assert outcome.refit_cache is not None and outcome.refit_cache["X"] is train.X
+    _doc, fit = selection.refit_chosen(checked, tmp_path / "s.objc", train, held, label, outcome, choice)
+    assert fit.status == "optimal" and fit.passes == 0
+    # objc certifies a distance of 1e-6 to the optimum; LassoCV at tol 1e-14 is far closer to it
+    np.testing.assert_allclose(fit.params["w"], peer.coef_, atol=2e-6)
+    assert fit.params["b"] == pytest.approx(float(peer.intercept_), abs=2e-6)

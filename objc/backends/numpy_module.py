@@ -1091,11 +1091,18 @@ def _runtime_digest(cache: dict) -> str:
     """The sha256 of the sources copied into every module, read again only when a file's size or
     modification time changes (reading and hashing them took about a millisecond per fit, paid at
     every point of a path)."""
-    files = [_HERE / f for f in _RUNTIME_FILES + (_MULTICLASS_RUNTIME,)] + [Path(catalog.__file__)]
-    stamp = tuple((str(f), st.st_mtime_ns, st.st_size) for f in files for st in (f.stat(),))
+    import os
+    files = cache.get("runtime files")
+    if files is None:  # plain strings, formed once: building Path objects per fit cost more than the stat calls
+        # every file a module copies code from: the runtime, the catalog's kernels, and the maps' math and
+        # standardize's rule (tables.py, typed_tree.py)
+        files = tuple(str(_HERE / f) for f in _RUNTIME_FILES + (_MULTICLASS_RUNTIME,)) + (
+            str(catalog.__file__), str(_HERE.parent / "tables.py"), str(_HERE.parent / "typed_tree.py"))
+        cache["runtime files"] = files
+    stamp = tuple((st.st_mtime_ns, st.st_size) for st in map(os.stat, files))
     kept = cache.get("runtime")
     if kept is None or kept[0] != stamp:
-        kept = (stamp, hashlib.sha256(b"".join(f.read_bytes() for f in files)).hexdigest())
+        kept = (stamp, hashlib.sha256(b"".join(Path(f).read_bytes() for f in files)).hexdigest())
         cache["runtime"] = kept
     return kept[1]
 

@@ -501,24 +501,10 @@ def _score_product(pb, theta):
     return s
 
 
-def _transpose_product(X, u):
-    """X^T u as float64. On a dense row-major table above 16 MB, in blocks of about 4 MB of rows: OpenBLAS
-    splits X^T u across its threads by output entry, so with few columns each thread streams the whole
-    table from memory; a block that stays in cache is read once (measured at 1e6 x 50, 2 threads: 23 ms
-    against 29-30 ms, median of 40; at 1e5 x 100 the same either way)."""
-    if _is_sparse(X) or u.ndim != 1 or not X.flags.c_contiguous or X.nbytes <= (16 << 20):
-        return np.asarray(X.T @ u, dtype=np.float64)
-    rows = max(1, (4 << 20) // (8 * X.shape[1]))
-    out = np.zeros(X.shape[1])
-    for first in range(0, X.shape[0], rows):
-        out += X[first:first + rows].T @ u[first:first + rows]
-    return out
-
-
 def adjoint(pb, u):
     """A^T u (one pass); u may hold several columns, read in the same pass."""
     pb.passes += 1
-    Xtu = _transpose_product(pb.X, u)
+    Xtu = np.asarray(pb.X.T @ u, dtype=np.float64)
     g = np.zeros((pb.size,) + u.shape[1:])
     if pb.standard:
         g[pb.w_index] = Xtu
