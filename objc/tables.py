@@ -1176,11 +1176,20 @@ def split_rows(data: BoundData, train_idx: np.ndarray, held_idx: np.ndarray, *, 
     if data.standardization is not None and data.standardization_fitted:
         std = data.standardization
         mean, scale = np.asarray(std.means), np.asarray(std.scales)
-        raw_train, raw_held = train.X * scale + mean, held.X * scale + mean
+        raw_train = train.X * scale
+        raw_train += mean
         refit = _fit_stats(raw_train, data.input_names, [span] * data.n_inputs, where, rows_label, hint,
                            frozenset(data.unscaled))
+        del raw_train
         m2, s2 = np.asarray(refit.means), np.asarray(refit.scales)
-        train = replace(train, X=_frozen(np.ascontiguousarray((raw_train - m2) / s2)), standardization=refit)
-        held = replace(held, X=_frozen(np.ascontiguousarray((raw_held - m2) / s2)), standardization=refit,
-                       standardization_fitted=False)
+        # (z scale + mean - m2) / s2 as one product and one sum, in place: a fold's copies are the table's
+        # size, and the three temporaries of the plain formula cost more than the copies themselves
+        ratio, shift = scale / s2, (mean - m2) / s2
+
+        def rescaled(Z: np.ndarray) -> np.ndarray:
+            out = np.multiply(Z, ratio)
+            out += shift
+            return _frozen(np.ascontiguousarray(out))
+        train = replace(train, X=rescaled(train.X), standardization=refit)
+        held = replace(held, X=rescaled(held.X), standardization=refit, standardization_fitted=False)
     return train, held
