@@ -540,12 +540,6 @@ def cmd_sweep(args) -> int:
     _sweep_options(args)
     checked = check_file(spec_path)
     training.require_trainable(checked)
-    if checked.task == "multiclass":
-        tb = checked.spec.table
-        raise SpecError((Diagnostic("E410", f"`sweep` does not yet take a target with classes (this one has "
-                                    f"{len(tb.classes)})", tb.target_span or tb.span,
-                                    hint="fit each setting with `objc fit --set NAME=VALUE` and compare them with "
-                                         "`objc eval`", source_name=checked.source.name),), checked.source)
     requests = _sweep_requests(args, checked)
     base = _parse_settings(args.set, checked)
     data_path = Path(args.data) if args.data else None
@@ -592,7 +586,10 @@ def cmd_sweep(args) -> int:
     if args.plot_weights:
         values = [p["value"] for p in doc["points"]]
         weights = [p["mean_weights"] for p in doc["points"]]
-        written.append(str(plots.weight_path(values, weights, list(doc["input_names"]), doc["tunable"],
+        names = list(doc["input_names"])
+        if checked.task == "multiclass":  # W row by row: each input's weight for each class
+            names = [f"{n}:{c}" for n in names for c in checked.spec.table.classes]
+        written.append(str(plots.weight_path(values, weights, names, doc["tunable"],
                                              doc["chosen"]["value"], Path(args.plot_weights))))
     if args.json:
         _emit_json(dict(doc, command="sweep", ok=True, written=written))

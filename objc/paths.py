@@ -36,6 +36,8 @@ def _numpy_problem(checked: CheckedObjective, data: tables.BoundData, tunables: 
     """(the generated module's namespace, the problem bound to these rows), or None where the NumPy
     backend cannot bind this spec. `prepared`: a path's cache (see `fit_path`)."""
     from objc.backends import numpy_module
+    if checked.task == "multiclass":  # its module has its own solver, with no screening test or L1 start
+        return None
     try:
         return numpy_module.bound_problem(checked, data.X, data.y, data.weights, data.input_names, tunables,
                                           prepared)
@@ -243,6 +245,8 @@ def fit_path(checked: CheckedObjective, data: tables.BoundData, tunables: dict[s
             if progress is not None:
                 progress(k + 1, total, result)
         return results
+    if checked.task == "multiclass":
+        return _class_path(checked, data, base, tunable, values, tol, param_tol, progress)
     from objc.backends import numpy_module
     form = form_for(checked, data.input_names)
     # the cache of the path (or of the caller's paths on these rows): what no tunable changes (the
@@ -268,6 +272,30 @@ def fit_path(checked: CheckedObjective, data: tables.BoundData, tunables: dict[s
                     progress(k + 1, total, result)
         finally:
             prepared.pop("threads capped", None)  # the cap ends with this block; a later fit caps itself
+    return results
+
+
+def _class_path(checked: CheckedObjective, data: tables.BoundData, base: dict[str, float], tunable: str,
+                values: list[float], tol: float, param_tol: float | None,
+                progress: Callable[[int, int, FitResult], None] | None) -> list[FitResult]:
+    """A path of a multiclass spec on the NumPy backend: its own solver, each fit warm-started from the
+    previous (W, b); no screening (the Gap Safe test here is the binary solver's)."""
+    from objc.training import run_backend
+    form = form_for(checked, data.input_names)
+    results: list[FitResult] = []
+    start = None
+    for k, v in enumerate(values):
+        result = run_backend(checked, data, "numpy", dict(base, **{tunable: float(v)}), tol=tol, theta0=start,
+                             param_tol=param_tol)
+        result = replace(result, extra=dict(result.extra, screening={
+            "rule": None, "screened": [], "note": "no screening: the multiclass solver fits every input"}))
+        W = np.asarray(result.params[form.weights_name], dtype=np.float64)
+        b = (np.asarray(result.params[form.intercept_name], dtype=np.float64) if form.intercept_name
+             else np.zeros(W.shape[1]))
+        start = (W, b)
+        results.append(result)
+        if progress is not None:
+            progress(k + 1, len(values), result)
     return results
 
 

@@ -292,13 +292,13 @@ def fold_part(checked: CheckedObjective, data: tables.BoundData, folds: Folds, f
 
 def validation_plan(checked: CheckedObjective, train: tables.BoundData, held: tables.BoundData | None,
                     held_label: str, *, folds: int | None = None, seed: int = DEFAULT_SEED) -> Validation:
-    """K folds of the training rows when `folds` is given (stratified by class for a margin task),
+    """K folds of the training rows when `folds` is given (stratified by class for a classification task),
     else the spec's held-out rows, else the training rows themselves (said so in the label)."""
     if folds is None:
         if held is not None:
             return Validation("holdout", held_label, (Part(train, held),))
         return Validation("training rows", "the training rows (nothing is held out)", (Part(train, train),))
-    stratify = train.task == "margin"
+    stratify = train.task in ("margin", "multiclass")
     plan = make_folds(train.y, folds, seed, stratify=stratify)
     parts = []
     for f in range(plan.k):
@@ -424,12 +424,16 @@ def metric_keys(checked: CheckedObjective, task: str, base: dict[str, float]) ->
     """The ranking metric (training.validation_metric) first, then the others reported beside it:
     the 0-1 error and log loss (the mean logistic loss) for margin losses, MAE and RMSE for residual ones."""
     rank = training.validation_metric(checked, task, base)
-    others = (["zero_one_error", "mean_losses:logistic"] if task == "margin" else ["mae", "rmse"])
+    if task == "multiclass":  # the log loss of the softmax probabilities where the goal trains them
+        others = ["zero_one_error"] + (["log_loss"] if training.trains_softmax(checked) else [])
+    else:
+        others = (["zero_one_error", "mean_losses:logistic"] if task == "margin" else ["mae", "rmse"])
     return tuple(dict.fromkeys([rank] + others))
 
 
-def _weight_vector(params: dict) -> np.ndarray:
-    vecs = [np.ravel(np.asarray(v, dtype=float)) for v in params.values() if np.ndim(v) >= 1]
+def _weight_vector(params: dict, intercept: str | None = None) -> np.ndarray:
+    """Every learned vector's entries but the intercept's (a scalar, or by classes: `intercept`)."""
+    vecs = [np.ravel(np.asarray(v, dtype=float)) for k, v in params.items() if np.ndim(v) >= 1 and k != intercept]
     return np.concatenate(vecs) if vecs else np.zeros(0)
 
 
@@ -503,6 +507,11 @@ def _part_figures(checked: CheckedObjective, part: Part, fitted: list[FitResult]
     held_out: list[dict[str, float]] = []
     on_train: list[dict[str, float]] = []
     for rows, wanted, sink in ((part.held, keys, held_out), (part.train, keys[:1], on_train)):
+        if rows.task == "multiclass":  # K scores a row: one product per fit, the figures of `class_metrics`
+            for r in fitted:
+                m = training.metrics(rows.task, rows.y, training.scores(form, r.params, rows.X), rows.weights, checked)
+                sink.append({key: training.metric_value(m, key) for key in wanted})
+            continue
         block = max(1, _SCORE_CELLS // max(1, rows.n_rows))
         for start in range(0, len(fitted), block):
             S = training.scores_of_fits(form, [r.params for r in fitted[start:start + block]], rows.X, rows.y)
@@ -534,10 +543,12 @@ def evaluate_grid(checked: CheckedObjective, validation: Validation, grid: Grid,
         per_part.append(fitted)
     figures = [_part_figures(checked, part, fitted, keys, base) for part, fitted in zip(validation.parts, per_part)]
     points = []
+    form = training.form_for(checked, first.input_names)
+    intercept = form.intercept_name if checked.task == "multiclass" else None
     for k, setting in enumerate(settings):
         values = {key: [held[k][key] for held, _train in figures] for key in keys}
         train_values = [train[k] for _held, train in figures]
-        weights = [_weight_vector(fitted[k].params) for fitted in per_part]
+        weights = [_weight_vector(fitted[k].params, intercept) for fitted in per_part]
         runs = [fitted[k] for fitted in per_part]
         points.append(PointScore(
             setting=setting, values={key: tuple(v) for key, v in values.items()}, train_values=tuple(train_values),

@@ -610,10 +610,10 @@ def sweep_grid(low: float, high: float, steps: int, linear: bool = False) -> lis
 
 
 def validation_metric(checked: CheckedObjective, task: str, tunables: dict[str, float] | None = None) -> str:
-    """What a sweep ranks by: the 0-1 error for classification; for regression the mean of the
+    """What a sweep ranks by: the 0-1 error for classification (two classes or more); for regression the mean of the
     trained residual loss where there is one (pinball at its quantile, Huber at its threshold, at
     the values `tunables` give them), else RMSE."""
-    if task == "margin":
+    if task in ("margin", "multiclass"):
         tb = checked.spec.table
         weighted = tb is not None and (tb.row_weight is not None or bool(tb.class_weights))
         # with row or class weights the goal counts rows unequally, and so must the ranking
@@ -626,7 +626,8 @@ def validation_metric(checked: CheckedObjective, task: str, tunables: dict[str, 
 def metric_label(metric: str) -> str:
     """A sweep metric's name as a report prints it."""
     return {"zero_one_error": "0-1 error", "zero_one_error_weighted": "weighted 0-1 error",
-            "rmse": "RMSE", "mae": "MAE", "mean_losses:logistic": "log loss"}.get(
+            "rmse": "RMSE", "mae": "MAE", "mean_losses:logistic": "log loss",
+            "log_loss": "log loss (softmax)"}.get(
                 metric, metric.replace("mean_losses:", "mean ") + " loss")
 
 

@@ -331,6 +331,32 @@ def test_the_example_spec_trains_on_its_demo_table(tmp_path, capsys):
     assert len(doc["holdout_metrics"]["class_confusion"]) == 3
 
 
+def test_cross_validated_sweep_of_a_class_target(tmp_path, capsys):
+    from sklearn.linear_model import LogisticRegression
+    X, y = _dataset("iris")
+    names = _table(tmp_path, X, y)
+    spec = tmp_path / "m.objc"
+    spec.write_text(_spec(names, "mean softmax_ce(s, y) + lam * l2sq(W)").replace(
+        "learn W", "tune lam = 0.01 within 0.0001 .. 10\nlearn W"))
+    argv = ["sweep", spec, "lam=0.001,0.1", "--folds", "3", "--json", "--save-best", tmp_path / "best.json",
+            "--plot", tmp_path / "cv.png", "--plot-weights", tmp_path / "w.png"]
+    code, out = _cli(argv, capsys)
+    assert code == 0, out
+    doc = json.loads(out)
+    assert doc["metrics"][:2] == ["zero_one_error", "log_loss"]
+    assert all((tmp_path / f).stat().st_size > 0 for f in ("cv.png", "w.png", "best.json"))
+    # the refit at the chosen value is the fit of the whole table: mean softmax_ce + lam ||W||^2 is
+    # scikit-learn's multinomial LogisticRegression at C = 1 / (2 n lam) (its documented objective)
+    lam = doc["chosen"]["value"]
+    Xs = (X - X.mean(axis=0)) / X.std(axis=0)  # the spec standardizes (population standard deviation)
+    ref = LogisticRegression(C=1 / (2 * len(y) * lam), tol=1e-12, max_iter=100000).fit(Xs, y)
+    saved = json.loads((tmp_path / "best.json").read_text())
+    arrays = np.load(tmp_path / "best.npz")
+    W = arrays[[k for k in arrays.files if k.endswith("W")][0]]
+    np.testing.assert_allclose(W, ref.coef_.T, atol=1e-5)
+    assert saved["fit"]["certificate"]["relative"] <= 1e-6
+
+
 # ---------------------------------------------------------------- the catalog entries on K scores
 # (tests/test_catalog.py checks the entries of one real argument; these are the same properties on a
 # row's K scores: convexity, sign, the cvxpy construction, the derivative kernels)

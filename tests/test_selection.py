@@ -142,6 +142,35 @@ def test_logistic_fold_figures_equal_scikit_learn(tmp_path):
                 log_loss(y[te], model.predict_proba(X[te])), rel=1e-6)
 
 
+def test_multiclass_fold_figures_equal_scikit_learn(tmp_path):
+    # the wine table as scikit-learn ships it (sklearn.datasets.load_wine: 178 rows, 3 cultivars)
+    d = skd.load_wine()
+    X, y = d.data[:, :6], d.target
+    names = _table(tmp_path / "w.csv", X, [f"c{k}" for k in y], [f"x{j}" for j in range(6)])
+    checked = _spec(tmp_path, "w.csv", names, "tune C = 1 within 0.001 .. 1000\nlearn W over inputs by classes, "
+                    "b by classes\nscore s = W . x + b\ngoal C * sum softmax_ce(s, y) + 0.5 * l2sq(W)\n",
+                    target="t classes c0, c1, c2")
+    train, held, label = training.bind_training(checked, tmp_path)
+    plan = selection.validation_plan(checked, train, held, label, folds=3, seed=2)
+    assert plan.folds.stratified
+    for f in range(3):  # stratified: each class's rows are dealt evenly over the folds
+        counts = np.bincount(y[plan.folds.held(f)], minlength=3)
+        assert all(abs(c - np.sum(y == k) / 3) <= 1 for k, c in enumerate(counts))
+    grid = selection.make_grid(checked, [selection.parse_axis("C=0.01,1")], data=train)
+    outcome = selection.evaluate_grid(checked, plan, grid, {"C": 1.0})
+    assert outcome.metrics == ("zero_one_error", "log_loss")
+    for p in outcome.points:
+        for f in range(3):
+            tr, te = plan.folds.kept(f), plan.folds.held(f)
+            # C sum softmax_ce + 0.5 ||W||^2 is scikit-learn's multinomial LogisticRegression objective
+            # (unpenalized intercepts) at the same C (its documented objective)
+            model = make_pipeline(StandardScaler(), LogisticRegression(C=p.setting["C"], tol=1e-12, max_iter=100000))
+            model.fit(X[tr], y[tr])
+            assert p.values["zero_one_error"][f] == pytest.approx(zero_one_loss(y[te], model.predict(X[te])),
+                                                                  abs=1e-12)
+            assert p.values["log_loss"][f] == pytest.approx(log_loss(y[te], model.predict_proba(X[te])), rel=1e-5)
+
+
 # ---------------------------------------------------------------- grids, warm starts, cold fits
 
 ENET = ("tune lam = 0.1 within 0.0001 .. 10\ntune a = 0.5 within 0 .. 1\nlearn w over inputs, b\n"
