@@ -806,6 +806,8 @@ class Entry:
     smooths_zero_kink: Callable[[dict], bool] = field(default=lambda _o: False, kw_only=True)
     # the argument's kink sits where the entry's value is 0 (pos, neg): a smoothing power sees no kink
     kink_at_zero_value: bool = field(default=False, kw_only=True)
+    # with exactly two arguments, one of them the number 0, the same holds (max(0, u) is pos(u))
+    kink_at_zero_value_beside_zero: bool = field(default=False, kw_only=True)
     # warnings every goal that trains on the entry gets: (code, message, hint)
     training_warnings: tuple[tuple[str, str, str], ...] = field(default=(), kw_only=True)
     # a norm that applies to a parameter learned by classes (True), or only to one ("only": inputs_l2)
@@ -1110,7 +1112,8 @@ ENTRIES: tuple[Entry, ...] = (
           smooths_zero_kink=lambda o: o["p"] >= 2,
           sign_hint="write abs(...) ^ p, or square a nonnegative expression such as pos(...) ^ 2"),
     Entry("max", "atom", "largest of its arguments", "max(a, b, ...)", _const(CONVEX), _fixed_mono(INC),
-          _max_sign, _k_max, _k_max_d, lambda cp, *xs: cp.maximum(*xs), arity=0),
+          _max_sign, _k_max, _k_max_d, lambda cp, *xs: cp.maximum(*xs), arity=0,
+          kink_at_zero_value_beside_zero=True),
     Entry("min", "atom", "smallest of its arguments", "min(a, b, ...)", _const(CONCAVE), _fixed_mono(INC),
           _min_sign, _k_min, _k_min_d, lambda cp, *xs: cp.minimum(*xs), arity=0),
     Entry("hypot", "atom", "Euclidean length of (a, b)", "sqrt(a^2 + b^2)", _const(CONVEX), _even_mono,

@@ -459,7 +459,7 @@ def _apply_fault(e: tt.Apply, entry, atom_curv: Curvature, faults: tuple[Argumen
 def _kink_at_zero_only(e: tt.TExpr) -> bool:
     if isinstance(e, tt.Apply) and CATALOG[e.entry].kink_at_zero_value:
         return analyse(e.args[0]).smooth
-    if isinstance(e, tt.Apply) and e.entry == "max" and len(e.args) == 2:
+    if isinstance(e, tt.Apply) and CATALOG[e.entry].kink_at_zero_value_beside_zero and len(e.args) == 2:
         zero = [a for a in e.args if isinstance(a, tt.Const) and a.value == 0]
         other = [a for a in e.args if not (isinstance(a, tt.Const) and a.value == 0)]
         return len(zero) == 1 and len(other) == 1 and analyse(other[0]).smooth
