@@ -326,7 +326,8 @@ def test_multiclass_estimator_in_a_pipeline_and_a_grid_search(iris_frame):
     exact = clone(hinge).set_params(backend="cvxpy").fit(X, labels)
     # the objective and W agree; the intercepts of a hinge need not be unique, so they are not compared.
     # W is unique: 0.5 ||W||^2 makes min over b of the objective 1-strongly convex in W, so a duality gap G
-    # bounds ||W - W*|| <= sqrt(2 G) (strong convexity; Nesterov, Introductory Lectures, 2004, Thm 2.1.8)
+    # bounds ||W - W*|| <= sqrt(2 G) (strong convexity: f - f* >= (m / 2) ||x - x*||^2; Boyd & Vandenberghe,
+    # Convex Optimization, 2004, section 9.1.2, recalled from memory)
     gap = ours.fit_result_.certificate.absolute
     assert ours.fit_result_.objective == pytest.approx(exact.fit_result_.objective, rel=2e-6)
     assert np.linalg.norm(ours.coef_ - exact.coef_) <= np.sqrt(2 * gap) + 1e-6
