@@ -1331,23 +1331,58 @@ def _sampled_curvature(pb, s):
     if k * size > 200 * n:  # over about 20 passes (k size / (10 n), the rule below): the frame is cheaper
         return None
     rows = None if k >= n else _sample_rows(n, k, _hessian_block_rows(pb.p))
+    key = _sample_key(pb, k)
+    kept = None if key is None or rows is None else pb.prepared.get(key)
+    if kept is not None:
+        # a sample of the path's table formed at an earlier point: reused while the rows' curvature here is
+        # still at least 0.8 of what it was there (the ball argument's kappa, the least ratio, covers any
+        # change, so this only decides when a fresh sample pays: 0.8 is our own choice)
+        d_here = _row_curvature(pb, s[rows], np.zeros(k), rows)
+        used = kept["d0"] > 0.0
+        if d_here is not None and float(np.min(d_here[used] / kept["d0"][used])) >= 0.8:
+            least = _sample_least(pb, kept["M"], kept["d0"], kept["norms2"], k)
+            if least > 0.0:
+                pb.sampled = {"rows": rows, "d0": kept["d0"], "reach": kept["reach"], "least": least, "k": k,
+                              "H": None, "reused": True}
+                return pb.sampled
     d0 = _row_curvature(pb, s if rows is None else s[rows], np.zeros(k), rows)
     if d0 is None or not np.any(d0 > 0.0):
         return None
-    H, sq = _sample_hessian(pb, rows, d0)
+    M, sq = _sample_hessian(pb, rows, d0)
     intercept = 1.0 if pb.b_index is not None else 0.0
-    H += np.diag(pb.beta)
     norms2 = sq * (1.0 + 4.0 * unit) + intercept  # ||a_i||^2, rounded up
+    reach = np.sqrt(norms2) * (1.0 + 2.0 * unit)
+    least = _sample_least(pb, M, d0, norms2, k)
+    if key is not None and rows is not None:
+        pb.prepared[key] = {"M": M, "d0": d0, "norms2": norms2, "reach": reach}
+    if not least > 0.0:
+        return None
+    pb.sampled = {"rows": rows, "d0": d0, "reach": reach, "least": least, "k": k,
+                  "H": M + np.diag(pb.beta) if rows is None else None}  # all rows: the exact Hessian here
+    return pb.sampled
+
+
+def _sample_key(pb, k):
+    """The key of a Hessian sample of this problem's table in its path's cache, or None (no cache, or the
+    cache is another table's). The sample's data part depends only on the rows read, the centre and the
+    curvature it was formed with (kept beside it): not on the target, the ridge weights or any tunable."""
+    prepared = getattr(pb, "prepared", None)
+    if prepared is None or prepared.get("X") is not pb.X:
+        return None
+    centre = None if pb.center is None else _fingerprint(pb.center)
+    return ("hessian sample", id(pb.X), k, centre, pb.b_index is not None)
+
+
+def _sample_least(pb, M, d0, norms2, k):
+    """The least eigenvalue of M + diag(beta) less its rounding allowance: M = A_S^T D0 A_S as computed,
+    off the exact one by at most gamma_k sum_i d0_i ||a_i||^2, and the eigenvalue's own rounding."""
+    unit, size = 2.0 ** -53, pb.size
+    H = M + np.diag(pb.beta)
     gamma = (k + 8) * unit / (1.0 - (k + 8) * unit)  # k products, each entry of S off by at most 3u
     allowance = gamma * float(np.dot(d0, norms2)) * (1.0 + 1e-10) + \
         10.0 * size * unit * float(np.sqrt(np.sum(H * H)))
     with _OneBlasThread():  # a small eigenproblem: the same hand-offs
-        least = float(np.linalg.eigvalsh(H)[0]) - allowance
-    if not least > 0.0:
-        return None
-    pb.sampled = {"rows": rows, "d0": d0, "reach": np.sqrt(norms2) * (1.0 + 2.0 * unit), "least": least, "k": k,
-                  "H": H if rows is None else None}  # all rows: the exact Hessian at the first point checked
-    return pb.sampled
+        return float(np.linalg.eigvalsh(H)[0]) - allowance
 
 
 def _sampled_modulus(pb, sampled, s, r):
@@ -1550,13 +1585,15 @@ def distance_certificate(pb, theta, P, gap, s=None, derivs=None, Atu=None, grad=
     if not gram and sampled is not None:
         # the sample's Hessian, on a ball grown until the bound fits (the ball argument above)
         factor = _coordinate_factor(pb)
+        reused = ", formed at an earlier point of the path" if sampled.get("reused") else ""
         r = max(2.0 * min(bounds(sampled["least"], v_int)), 1e-300)
         for _ in range(6):
             if not np.isfinite(r):
                 break
             best, value = better(best, _sampled_modulus(pb, sampled, s, r), v_int, factor, r,
                                  f"the least eigenvalue of the Hessian over {sampled['k']} of the {pb.n} rows (a "
-                                 f"lower bound), times the loss's curvature floor over a ball of radius {r:.2g}")
+                                 f"lower bound{reused}), times the loss's curvature floor over a ball of radius "
+                                 f"{r:.2g}")
             if value < r:
                 break
             r = 4.0 * value
