@@ -1073,6 +1073,11 @@ def solve_multiclass(X, labels, K, rho, loss, penalties, intercept, tol=1e-8, ma
             (P, gap_abs, W), _steps, status = _mc_hinge_newton(d, loss, c2, tol, budget)
             b = np.zeros(d.K)
             method = "Newton's method on the smoothed hinge, then the exact face (multiclass hinge)"
+    if math.isfinite(gap_abs):
+        # P and D are sums rounded to about 1e-16 |P| each: a gap below 1e-15 max(1, |P|) (our own floor, as
+        # in the hinges' Newton method and the binary runtime's report) is not resolved, so neither the gap nor
+        # the distance bound drawn from it is claimed below that
+        gap_abs = max(gap_abs, 1e-15 * max(1.0, abs(P)))
     mu = 2.0 * c2 if (c2 > 0 and not d.intercept) else None
     distance = math.sqrt(2.0 * gap_abs / mu) if (mu is not None and math.isfinite(gap_abs)) else None
     return dict(W=np.asarray(W, dtype=np.float64), b=np.asarray(b, dtype=np.float64), objective=float(P),

@@ -3242,7 +3242,13 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
     s_final = None if from_gram is not None else score(pb, theta)  # one pass for the objective and the terms
     P = objective_value(pb, theta, s_final) if from_gram is None else from_gram[0]
     theta = _to_external(pb, theta)
-    rel = relative(run.cert_abs, P)
+    reported = float(run.cert_abs)
+    if run.cert_kind == "duality gap" and np.isfinite(reported):
+        # P and D are sums rounded to about 1e-16 |P| each: a gap below 1e-15 max(1, |P|) (our own floor, the
+        # multiclass solver's too) is not resolved, and is reported as that floor, never as 0 or negative (the
+        # distance certificate adds its own allowance for the same rounding)
+        reported = max(reported, 1e-15 * max(1.0, abs(P)))
+    rel = relative(reported, P)
     method_status = status
     if not spec["accepted"]:
         status = "local (non-convex)"
@@ -3271,7 +3277,7 @@ def run_solver(spec, X, y, weights=None, input_names=None, tunables=None, tol=1e
         "theta": theta, "params": params, "objective": P,
         "term_values": term_values(pb, theta_internal, s_final) if from_gram is None else from_gram[1],
         "status": status, "method": name,
-        "certificate": dict({"kind": run.cert_kind, "absolute": float(run.cert_abs), "relative": float(rel),
+        "certificate": dict({"kind": run.cert_kind, "absolute": reported, "relative": float(rel),
                              "tolerance": float(tol), "note": note}, **distance),
         "iterations": run.iterations, "passes": pb.passes + pb.row_reads // pb.n,
         "seconds": time.perf_counter() - started,

@@ -152,6 +152,21 @@ def test_lbfgs_logistic_matches_sklearn(cancer, use_scipy):
     np.testing.assert_allclose(scores, X @ w_ref + b_ref, atol=1e-5)
 
 
+def test_a_gap_at_rounding_is_reported_at_its_floor_never_below(diabetes):
+    # ridge at the closed-form answer (Hoerl & Kennard 1970, as above) as the start: the computed gap is
+    # rounding noise, which may come out 0 or negative; P and D are rounded sums, so the report claims no
+    # gap below 1e-15 max(1, |P|) (our own floor)
+    X, y, names = diabetes
+    n, lam = len(y), 0.01
+    spec = _spec_table("mean squared(y - s) + lam * l2sq(w)", margin=False, intercept=False,
+                       extra="tune lam = 0.1 within 0.0001 .. 1\n")
+    w_star = np.linalg.solve(X.T @ X / n + 2 * lam * np.eye(X.shape[1]), X.T @ y / n)
+    out = solvers_src.run_solver(spec, X, y, None, names, {"lam": lam}, tol=1e-12, theta0=w_star)
+    cert = out["certificate"]
+    assert cert["kind"] == "duality gap" and out["status"] == "optimal"
+    assert cert["absolute"] >= 1e-15 * max(1.0, abs(out["objective"])) and cert["relative"] >= 1e-15
+
+
 def test_own_lbfgs_minimizes_a_logistic_objective_like_sklearn(cancer):
     X, y, _names = cancer
     C = 0.5
