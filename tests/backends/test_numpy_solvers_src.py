@@ -101,14 +101,21 @@ def test_prox_of_a_lasso_problem_soft_thresholds_by_step_times_weight(diabetes):
                                atol=1e-15)
 
 
-def test_ridge_duality_gap_vanishes_at_the_closed_form_solution(diabetes):
-    X, y, names = diabetes
-    n, lam = len(y), 0.01
+def _ridge_at_its_answer(diabetes, lam):
+    """(spec, w*) of mean squared(y - s) + lam l2sq(w) on the diabetes table. The catalog's squared loss is
+    r^2 / 2 (docs/language.md, section 8); Hoerl & Kennard 1970: w* = (X'X / n + 2 lam I)^-1 X'y / n
+    minimizes mean (y - Xw)^2 / 2 + lam ||w||^2."""
+    X, y, _names = diabetes
+    n = len(y)
     spec = _spec_table("mean squared(y - s) + lam * l2sq(w)", margin=False, intercept=False,
                        extra="tune lam = 0.1 within 0.0001 .. 1\n")
-    # the catalog's squared loss is r^2 / 2 (docs/language.md, section 8); Hoerl & Kennard 1970:
-    # w* = (X'X / n + 2 lam I)^-1 X'y / n minimizes mean (y - Xw)^2 / 2 + lam ||w||^2
-    w_star = np.linalg.solve(X.T @ X / n + 2 * lam * np.eye(X.shape[1]), X.T @ y / n)
+    return spec, np.linalg.solve(X.T @ X / n + 2 * lam * np.eye(X.shape[1]), X.T @ y / n)
+
+
+def test_ridge_duality_gap_vanishes_at_the_closed_form_solution(diabetes):
+    X, y, names = diabetes
+    lam = 0.01
+    spec, w_star = _ridge_at_its_answer(diabetes, lam)
     p_star = float(0.5 * np.mean((y - X @ w_star) ** 2) + lam * w_star @ w_star)
 
     def gap_at(w):
@@ -157,10 +164,8 @@ def test_a_gap_at_rounding_is_reported_at_its_floor_never_below(diabetes):
     # rounding noise, which may come out 0 or negative; P and D are rounded sums, so the report claims no
     # gap below 1e-15 max(1, |P|) (our own floor)
     X, y, names = diabetes
-    n, lam = len(y), 0.01
-    spec = _spec_table("mean squared(y - s) + lam * l2sq(w)", margin=False, intercept=False,
-                       extra="tune lam = 0.1 within 0.0001 .. 1\n")
-    w_star = np.linalg.solve(X.T @ X / n + 2 * lam * np.eye(X.shape[1]), X.T @ y / n)
+    lam = 0.01
+    spec, w_star = _ridge_at_its_answer(diabetes, lam)
     out = solvers_src.run_solver(spec, X, y, None, names, {"lam": lam}, tol=1e-12, theta0=w_star)
     cert = out["certificate"]
     assert cert["kind"] == "duality gap" and out["status"] == "optimal"
