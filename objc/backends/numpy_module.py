@@ -1300,7 +1300,8 @@ def _mc_spec_table(checked: CheckedObjective, plan: dict[str, Any]) -> ast.expr:
 
 def _mc_method(plan: dict[str, Any]) -> str:
     if plan["loss"][0] != "softmax_ce":
-        return "dual coordinate ascent on the multiclass hinge with an l2sq penalty; certified by the duality gap"
+        return ("Newton's method on the multiclass hinge smoothed, then its exact face, with an l2sq penalty; "
+                "certified by the duality gap")
     if {k for k, _f in plan["penalties"]} & {"l1", "inputs_l2"}:
         return "accelerated proximal gradient (FISTA with restarts) for l1 / inputs_l2; certified by the duality gap"
     return "L-BFGS on softmax cross-entropy with an l2sq penalty; certified by the duality gap"
@@ -1550,8 +1551,8 @@ def _fit_multiclass(checked: CheckedObjective, X: Any, y: Any, weights: Any, inp
     from objc.fit_result import objective_terms
     ns = _compiled(checked)
     values = dict(ns["SPEC"]["tunables"], **(tunables or {}))
-    # only L-BFGS (softmax_ce with l2sq alone) converges fast enough for that gap; the hinges' dual
-    # coordinate ascent and FISTA for l1 / inputs_l2 stop at --tol
+    # only L-BFGS (softmax_ce with l2sq alone) is asked for that gap; the hinges' Newton method and FISTA
+    # for l1 / inputs_l2 stop at --tol
     lbfgs = ns["SPEC"]["loss"] == "softmax_ce" and not {k for k, _f in _mc_plan(checked)["penalties"]} & {"l1", "inputs_l2"}
     run_tol = tol if param_tol is None or not lbfgs else min(tol, _MC_PARAM_GAP)
     out = ns["solve"](X, y, weights, values, run_tol, max_passes, theta0)
