@@ -1584,5 +1584,5 @@ def _fit_multiclass(checked: CheckedObjective, X: Any, y: Any, weights: Any, inp
                           "distance is proved)"),
                        distance=distance, curvature=out["mu"], distance_note=note)
     return FitResult(params=params, objective=objective, term_values=term_values, status=status,
-                     backend="numpy", method=out["method"], certificate=cert, iterations=0,
+                     backend="numpy", method=out["method"], certificate=cert, iterations=int(out["iterations"]),
                      passes=int(out["passes"]), extra={})

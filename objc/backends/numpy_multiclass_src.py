@@ -78,6 +78,7 @@ class _MCData:
         total = float(np.sum(rho))
         self.m = np.asarray(X.T @ rho, dtype=np.float64).ravel() / total if intercept else None
         self.passes = 0
+        self.iterations = 0  # every method's steps (L-BFGS, FISTA, Newton) or sweeps (coordinate ascent)
 
     def scores(self, W, c):
         """(X - 1 m^T) W + 1 c^T: one pass. The n x K result is column-major (each class's scores contiguous):
@@ -406,6 +407,7 @@ def _mc_lbfgs(d, coef, W, c, tol, budget, memory_size=10):
     memory = []
     last_check = st.gap
     while d.passes < budget:
+        d.iterations += 1
         direction = _mc_two_loop(g, memory)
         slope = float(direction @ g)
         if not slope < 0:
@@ -504,6 +506,7 @@ def _mc_fista(d, loss, coef, W, c, tol, budget):
     it = 0
     while d.passes < budget:
         it += 1
+        d.iterations += 1
         tn = 0.5 * (1.0 + math.sqrt(1.0 + 4.0 * momentum * momentum))
         beta = (momentum - 1.0) / tn
         Wy, cy, Sy = W + beta * (W - W_prev), c + beta * (c - c_prev), S + beta * (S - S_prev)
@@ -676,6 +679,7 @@ def _mc_dual_cd(d, loss, c2, tol, budget, seed=0, block=256):
     sweeps = 0
     while d.passes < budget:
         sweeps += 1
+        d.iterations += 1
         rows_all = np.flatnonzero(active if not full else d.rho > 0)
         order = rng.permutation(rows_all)
         for start in range(0, len(order), block):
@@ -1038,6 +1042,7 @@ def _mc_hinge_newton(d, loss, c2, tol, budget, mu0=1.0, shrink=10.0):
             t *= 0.5
         W, c, S = W + t * Dir, c + t * dc, S + t * XD
         steps += 1
+        d.iterations += 1
         if decrement <= 0.1 * mu or t < 1e-10:
             if mu <= 1e-2:
                 cand = _mc_face_candidate(d, loss, c2, U, S, mu)
@@ -1098,8 +1103,8 @@ def solve_multiclass(X, labels, K, rho, loss, penalties, intercept, tol=1e-8, ma
     (see `_mc_start`); the hinges start from 0 (smoothed Newton without an intercept, dual coordinate ascent
     with one).
 
-    Returns dict(W, b, objective, gap, distance, mu, passes, status, method): gap = (P - D) / max(1, |P|)
-    for the dual point D certifies; distance a proved bound on ||theta - theta*||_2 (sqrt(2 (P - D) / mu))
+    Returns dict(W, b, objective, gap, distance, mu, passes, iterations, status, method): gap = (P - D) /
+    max(1, |P|) for the dual point D certifies; distance a proved bound on ||theta - theta*||_2 (sqrt(2 (P - D) / mu))
     when the objective is mu-strongly convex in every learned number (c2 > 0, no intercept: mu = 2 c2),
     else None. Bad input raises ValueError saying what is wrong and where."""
     d, coef = _mc_checked(X, labels, K, rho, loss, penalties, intercept, tol, max_passes)
@@ -1158,6 +1163,7 @@ def solve_multiclass(X, labels, K, rho, loss, penalties, intercept, tol=1e-8, ma
     distance = math.sqrt(2.0 * gap_abs / mu) if (mu is not None and math.isfinite(gap_abs)) else None
     return dict(W=np.asarray(W, dtype=np.float64), b=np.asarray(b, dtype=np.float64), objective=float(P),
                 gap=float(_mc_relative(gap_abs, P)), distance=distance, mu=mu, passes=int(math.ceil(d.passes)),
+                iterations=int(d.iterations),
                 status=status, method=method)
 
 
