@@ -818,7 +818,23 @@ COMMANDS = {"check": cmd_check, "build": cmd_build, "fit": cmd_fit, "eval": cmd_
             "sweep": cmd_sweep, "plot": cmd_plot}
 
 
+def _interrupt_in_a_callback(unraisable) -> None:
+    """sys.unraisablehook of the command line: a Ctrl-C that lands inside a callback Python cannot raise from
+    (seen: the import machinery's module-lock weakref callback) is printed by the interpreter as "Exception
+    ignored in ..." with a traceback, and swallowed. Here it is delivered again to the main thread a moment
+    later, from another thread (raised from inside this hook it would be swallowed the same way), so `main`
+    stops with its own message; any other unraisable exception goes to the default hook."""
+    if isinstance(unraisable.exc_value, KeyboardInterrupt):
+        import _thread
+        import threading
+        threading.Timer(0.01, _thread.interrupt_main).start()
+        return
+    sys.__unraisablehook__(unraisable)
+
+
 def main(argv: list[str] | None = None) -> int:
+    if argv is None:  # the process is objc's own (not a caller's): its interrupts are objc's to report
+        sys.unraisablehook = _interrupt_in_a_callback
     parser = _parser()
     words = sys.argv[1:] if argv is None else [str(a) for a in argv]
     try:
