@@ -763,6 +763,28 @@ def _const(c: Curvature) -> Callable[[dict], Curvature]:
 
 
 @dataclass(frozen=True)
+class SettingRule:
+    """How an entry's curvature follows one of its settings when the spec makes that setting a tunable with a
+    declared range (x ^ q, q within 1.5 .. 4). `over(low, high)`: the (curvature, monotonicity) that hold on
+    the argument's domain for every value in [low, high], or None when no one composition rule holds over the
+    range; `why(low, high)`: the fact that decides it, as a phrase; `hint(name, default, high)`: the range to
+    declare instead; `smooths_zero_kink_from`: the least setting from which the entry smooths a kink of its
+    argument at 0; `sign_needed`: the rules hold only where the argument is nonnegative for a range of more
+    than one value (a range holds settings that need it), said by `sign_fault` and `sign_hint(name)` when the
+    sign is unknown; `value_sign`: the entry's sign over the range, where the range alone decides it."""
+
+    option: str
+    over: Callable[[float, float], tuple[Curvature, Monotonicity] | None]
+    why: Callable[[float, float], str]
+    hint: Callable[[str, float, float], str]
+    smooths_zero_kink_from: float = np.inf
+    sign_needed: bool = False
+    sign_fault: str = ""
+    sign_hint: Callable[[str], str] = lambda _name: ""
+    value_sign: Sign | None = None
+
+
+@dataclass(frozen=True)
 class Entry:
     """One atom, loss or norm: every fact the checker and the backends need about it."""
 
@@ -822,6 +844,8 @@ class Entry:
     # instead when the rule fails because the argument's sign is unknown (the entry is not monotone then)
     rule_hint: str = field(default="", kw_only=True)
     sign_hint: str = field(default="", kw_only=True)
+    # the rule for a setting that is a tunable with a declared range, where the curvature depends on it
+    setting_rule: SettingRule | None = field(default=None, kw_only=True)
     # the set `keep f(w) <= r` makes when f is this entry of a parameter: "box" (|w_j| <= r, entry by entry),
     # "l1 ball" or "l2 ball"; the backends project onto these exactly
     constraint_set: Literal["box", "l1 ball", "l2 ball", ""] = field(default="", kw_only=True)
@@ -936,6 +960,29 @@ def _power_needs_nonneg(p: float) -> bool:
     composition rules hold only on u >= 0 (elsewhere it is concave or undefined)."""
     even = float(p).is_integer() and int(p) % 2 == 0
     return (p > 1 and not even) or p < 0
+
+
+def _power_over_range(low: float, high: float) -> tuple[Curvature, Monotonicity] | None:
+    """u^q on u >= 0 for every q in [low, high]: convex and increasing for q >= 1, concave and increasing for
+    0 <= q <= 1, convex and decreasing for q <= 0 (the same cases as `_power_curvature`); else no one rule."""
+    if low >= 1:
+        return CONVEX, INC
+    if low >= 0 and high <= 1:
+        return CONCAVE, INC
+    if high <= 0:
+        return CONVEX, DEC
+    return None
+
+
+_POWER_RULE = SettingRule(
+    "p", _power_over_range,
+    lambda low, high: ("u^q is concave for 0 <= q <= 1 and convex for q >= 1 (on u >= 0), and the declared range "
+                       f"admits {'q < 1' if high > 1 else 'q < 0'}"),
+    lambda name, default, high: (f"declare a range with {name} >= 1 for a convex power, e.g. tune {name} = "
+                                 f"{max(default, 1.0):g} within 1 .. {max(high, 1.0):g}"),
+    smooths_zero_kink_from=2.0, sign_needed=True,
+    sign_fault="u^q for a q that is not an even integer is defined and convex only where u >= 0",
+    sign_hint=lambda name: f"write abs(u)^{name} or pos(u)^{name}", value_sign=Sign.NONNEG)
 
 
 def _power_mono(_i: int, s: Sign, o: dict) -> Monotonicity:
@@ -1110,7 +1157,7 @@ ENTRIES: tuple[Entry, ...] = (
           _power_curvature, _power_mono, _power_sign, _k_power, _k_power_d, _cp_power,
           options=(Option("p", 2.0, -np.inf, np.inf, meaning="the exponent, a number or a tunable"),), smooth=_yes,
           infix="^", needs_nonneg_argument=lambda o: _power_needs_nonneg(o["p"]),
-          smooths_zero_kink=lambda o: o["p"] >= 2,
+          smooths_zero_kink=lambda o: o["p"] >= 2, setting_rule=_POWER_RULE,
           sign_hint="write abs(...) ^ p, or square a nonnegative expression such as pos(...) ^ 2"),
     Entry("max", "atom", "largest of its arguments", "max(a, b, ...)", _const(CONVEX), _fixed_mono(INC),
           _max_sign, _k_max, _k_max_d, lambda cp, *xs: cp.maximum(*xs), arity=0,

@@ -348,50 +348,44 @@ def _analyse(e: tt.TExpr) -> Facts:
 
 def _tuned_setting_facts(e: tt.Apply, entry, facts: list[Facts]) -> Facts | None:
     """Facts of an entry whose settings are tunables: the composition rules must hold for every value
-    of the declared ranges. For the exponent of x^q (curvature depends on q) the range decides the
-    rule; for any other setting the entry's facts must be the same at both ends of the range and at
-    the default (they are for every setting in the catalog today), else the term is not provable."""
+    of the declared ranges. For a setting the curvature depends on (the catalog entry's `setting_rule`:
+    power's exponent) the range decides the rule; for any other setting the entry's facts must be the same
+    at both ends of the range and at the default, else the term is not provable."""
     tuned = dict(e.tuned)
     z = next((f.uses_zero_one for f in facts if f.uses_zero_one), None)
     if not entry.trainable:
         z = z or e.span
     inner_fault = next((f.fault for f in facts if f.fault), None)
-    if entry.name == "power" and "p" in tuned:
-        q = tuned["p"]
+    rule = entry.setting_rule
+    if rule is not None and rule.option in tuned:
+        q = tuned[rule.option]
         base = facts[0]
-        # as for a literal exponent: max(0, u)^q is continuously differentiable once every q is >= 2
-        smooth = base.smooth or (q.low >= 2 and _kink_at_zero_only(e.args[0]))
-        sign = Sign.NONNEG
+        # as for a literal setting: pos(u)^q is continuously differentiable once every q smooths the kink
+        smooth = base.smooth or (q.low >= rule.smooths_zero_kink_from and _kink_at_zero_only(e.args[0]))
+        sign = rule.value_sign or entry.sign(tuple(f.sign for f in facts), {rule.option: q.low})
         if base.curvature == Curvature.CONSTANT:
             return Facts(Curvature.CONSTANT, sign, True, inner_fault, z)
         rng = f"{q.name} in {q.low:g} .. {q.high:g}"
-        if q.low >= 1:
-            atom_curv, mono = Curvature.CONVEX, Monotonicity.INCREASING
-        elif q.low >= 0 and q.high <= 1:
-            atom_curv, mono = Curvature.CONCAVE, Monotonicity.INCREASING
-        elif q.high <= 0:
-            atom_curv, mono = Curvature.CONVEX, Monotonicity.DECREASING
-        else:
-            where = "q < 1" if q.high > 1 else "q < 0"
+        found = rule.over(q.low, q.high)
+        if found is None:
             return Facts(Curvature.UNKNOWN, sign, smooth, inner_fault or Fault(
-                e.span, f"'{render(e)}' with {rng}: u^q is concave for 0 <= q <= 1 and convex for q >= 1 (on "
-                f"u >= 0), and the declared range admits {where}, so no one composition rule holds over it",
-                f"declare a range with {q.name} >= 1 for a convex power, e.g. tune {q.name} = "
-                f"{max(q.default, 1.0):g} within 1 .. {max(q.high, 1.0):g}"), z)
-        if not base.sign.is_nonneg:
+                e.span, f"'{render(e)}' with {rng}: {rule.why(q.low, q.high)}, so no one composition rule holds "
+                "over it", rule.hint(q.name, q.default, q.high)), z)
+        atom_curv, mono = found
+        if rule.sign_needed and q.low < q.high and not base.sign.is_nonneg:
             return Facts(Curvature.UNKNOWN, sign, smooth, inner_fault or Fault(
-                e.span, f"'{render(e)}' with {rng}: u^q for a q that is not an even integer is defined and "
-                f"convex only where u >= 0, and the sign of '{render(e.args[0])}' is not known",
-                f"write abs(u)^{q.name} or pos(u)^{q.name}"), z)
+                e.span, f"'{render(e)}' with {rng}: {rule.sign_fault}, and '{render(e.args[0])}' is not known to "
+                "be nonnegative", rule.sign_hint(q.name)), z)
         curv, faults = compose(atom_curv, [(base.curvature, mono)])
         fault = inner_fault
         if curv == Curvature.UNKNOWN and fault is None:
             f0 = faults[0]
             need = ("convex" if f0.monotonicity == Monotonicity.INCREASING else "concave") \
                 if f0.wanted == "convex" else ("concave" if f0.monotonicity == Monotonicity.INCREASING else "convex")
-            fault = Fault(e.span, f"'{render(e)}' with {rng}: u^q is {atom_curv.value} and {_mono_word(mono)} for "
-                          f"u >= 0 over that range, so its base must be {need}; '{render(e.args[0])}' is "
-                          f"{base.curvature.value}", "rewrite the base, or change the declared range")
+            fault = Fault(e.span, f"'{render(e)}' with {rng}: {entry.name} is {atom_curv.value} and "
+                          f"{_mono_word(mono)} in its argument over that range, so the argument must be {need}; "
+                          f"'{render(e.args[0])}' is {base.curvature.value}",
+                          "rewrite the argument, or change the declared range")
         return Facts(curv, sign, smooth, fault, z)
     # a setting the curvature does not depend on: the entry's facts must agree over the range
     signs = tuple(f.sign for f in facts)
