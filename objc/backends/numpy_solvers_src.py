@@ -127,10 +127,10 @@ class _RowTerm:
         self.curv_floor = table.get("curv_floor")  # the catalog's least l'' over an interval, if known
         self.positive = rho > 0.0
         self.all_positive = bool(np.all(self.positive))
-        # a `mean` or `sum` without row weights has one rho for every row: a scalar saves a row-sized
-        # product per sum (at 1e6 rows a fresh temporary costs about as much as the product)
         # a margin row's label, with 1 where it is 0 (such a row's phi is constant): formed once, not per call
         self.safe_y = np.where(y != 0.0, y, 1.0) if self.role == "margin" else None
+        # a `mean` or `sum` without row weights has one rho for every row: a scalar saves a row-sized
+        # product per sum (at 1e6 rows a fresh temporary costs about as much as the product)
         self.uniform = float(rho[0]) if self.all_positive and rho.size and bool(np.all(rho == rho[0])) else None
 
     def value_and_derivative(self, s, cols, tun):
@@ -151,8 +151,8 @@ class _RowTerm:
         positive = self.positive[rows]
         return float(np.dot(rho[positive], value[positive]))  # 0 x inf stays 0
 
-    def smooth_rows(self, s, cols, tun):
-        """(sum_i rho_i phi(s_i), phi'(s)) computed by blocks of rows (`_ROW_BLOCK`)."""
+    def sum_and_derivative(self, s, cols, tun):
+        """(sum_i rho_i phi(s_i), phi'(s)) at s, computed by blocks of rows (`_ROW_BLOCK`)."""
         n = s.shape[0]
         total, d = 0.0, np.empty(n)
         for rows in _row_blocks(n):
@@ -579,7 +579,7 @@ def rows_part(pb, s, mu=0.0):
             value = value + 0.5 * mu * d * d
             total += term.weighted_sum(value)
         else:
-            part, d = term.smooth_rows(s, pb.cols, pb.tun)
+            part, d = term.sum_and_derivative(s, pb.cols, pb.tun)
             total += part
         derivs.append(d)
     return total, derivs
@@ -901,7 +901,7 @@ def dual_value(pb, derivs, z):
     conj = 0.0
     with np.errstate(all="ignore"):
         for term, d in zip(pb.row_terms, derivs):
-            for rows in _row_blocks(pb.n):  # by blocks, like `smooth_rows`: the temporaries stay in cache
+            for rows in _row_blocks(pb.n):  # by blocks, like `sum_and_derivative`: the temporaries stay in cache
                 v = d[rows] if t == 1.0 else t * d[rows]
                 conj += term.weighted_sum(term.conjugate_rows(v, rows), rows)
     return t, -conj - _penalty_conjugate(pb, t * z) + pb.constant
@@ -1138,7 +1138,7 @@ def _row_curvature(pb, s, reach, rows=None):
             return None
         y_all = term.y if rows is None else term.y[rows]
         rho_all = term.rho if rows is None else term.rho[rows]
-        for b in _row_blocks(k):  # by blocks, like `smooth_rows`: a dozen temporaries, kept in cache
+        for b in _row_blocks(k):  # by blocks, like `sum_and_derivative`: a dozen temporaries, kept in cache
             y, rho, s_b, reach_b = y_all[b], rho_all[b], s[b], reach[b]
             with np.errstate(invalid="ignore", over="ignore"):
                 if term.role == "margin":  # phi(s) = l(y s): phi'' = y^2 l''(y s); m moves by |y| |ds|
@@ -1531,7 +1531,7 @@ def distance_certificate(pb, theta, P, gap, s=None, derivs=None, Atu=None, grad=
         for k, term in enumerate(pb.row_terms):
             d = None if derivs is None else derivs[k]
             if term.smooth or d is None:  # a smooth row's own derivative at s: exact, no slack
-                exact = term.smooth_rows(s, pb.cols, pb.tun)[1]
+                exact = term.sum_and_derivative(s, pb.cols, pb.tun)[1]
                 d = exact if d is None or not np.array_equal(d, exact) else d
             fresh.append(d)
         if Atu is None or derivs is None or any(a is not b for a, b in zip(fresh, derivs)):
