@@ -14,6 +14,7 @@ Conventions (stated once, used by the docs): `squared(r) = r^2 / 2`; `huber(r, d
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from typing import Any, Callable, Literal
 
@@ -846,6 +847,10 @@ class Entry:
     sign_hint: str = field(default="", kw_only=True)
     # the rule for a setting that is a tunable with a declared range, where the curvature depends on it
     setting_rule: SettingRule | None = field(default=None, kw_only=True)
+    # the exact range of the value over an interval of its one argument (options, (lo, hi)) -> (lo, hi), for
+    # an entry whose monotonicity alone does not give it (x^p: even, odd, fractional and negative p differ)
+    value_interval: Callable[[dict, tuple[float, float]], tuple[float, float]] | None = field(default=None,
+                                                                                              kw_only=True)
     # the set `keep f(w) <= r` makes when f is this entry of a parameter: "box" (|w_j| <= r, entry by entry),
     # "l1 ball" or "l2 ball"; the backends project onto these exactly
     constraint_set: Literal["box", "l1 ball", "l2 ball", ""] = field(default="", kw_only=True)
@@ -960,6 +965,40 @@ def _power_needs_nonneg(p: float) -> bool:
     composition rules hold only on u >= 0 (elsewhere it is concave or undefined)."""
     even = float(p).is_integer() and int(p) % 2 == 0
     return (p > 1 and not even) or p < 0
+
+
+def _power_interval(o: dict, iv: tuple[float, float]) -> tuple[float, float]:
+    """The exact range of x^p over x in [lo, hi] (the whole line where it is not a real number)."""
+    p = o["p"]
+    lo, hi = iv
+    if p == 0:
+        return (1.0, 1.0)
+    integer = float(p).is_integer()
+    even = integer and int(p) % 2 == 0
+
+    def pw(x: float) -> float:
+        with np.errstate(all="ignore"):
+            return float(np.power(np.float64(x), p))
+    if p > 0:
+        if even:
+            if lo >= 0:
+                return (pw(lo), pw(hi))
+            if hi <= 0:
+                return (pw(hi), pw(lo))
+            return (0.0, max(pw(lo), pw(hi)))
+        if integer:
+            return (pw(lo), pw(hi))  # odd: increasing on the whole line
+        if hi < 0:
+            return (-math.inf, math.inf)  # not a real number
+        return (pw(max(lo, 0.0)), pw(hi))
+    # p < 0
+    if lo > 0:
+        return (pw(hi), pw(lo))
+    if hi < 0 and integer:
+        return (pw(lo), pw(hi)) if even else (pw(hi), pw(lo))
+    if even:
+        return (0.0, math.inf)
+    return (-math.inf, math.inf)
 
 
 def _power_over_range(low: float, high: float) -> tuple[Curvature, Monotonicity] | None:
@@ -1157,7 +1196,7 @@ ENTRIES: tuple[Entry, ...] = (
           _power_curvature, _power_mono, _power_sign, _k_power, _k_power_d, _cp_power,
           options=(Option("p", 2.0, -np.inf, np.inf, meaning="the exponent, a number or a tunable"),), smooth=_yes,
           infix="^", needs_nonneg_argument=lambda o: _power_needs_nonneg(o["p"]),
-          smooths_zero_kink=lambda o: o["p"] >= 2, setting_rule=_POWER_RULE,
+          smooths_zero_kink=lambda o: o["p"] >= 2, setting_rule=_POWER_RULE, value_interval=_power_interval,
           sign_hint="write abs(...) ^ p, or square a nonnegative expression such as pos(...) ^ 2"),
     Entry("max", "atom", "largest of its arguments", "max(a, b, ...)", _const(CONVEX), _fixed_mono(INC),
           _max_sign, _k_max, _k_max_d, lambda cp, *xs: cp.maximum(*xs), arity=0,

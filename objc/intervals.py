@@ -96,38 +96,6 @@ def _aggregate(e: tt.Aggregate, inner: Interval) -> Interval:
     return (0.0 if lo >= 0 else -math.inf, 0.0 if hi <= 0 else math.inf)
 
 
-def _power(p: float, iv: Interval) -> Interval:
-    lo, hi = iv
-    if p == 0:
-        return (1.0, 1.0)
-    integer = float(p).is_integer()
-    even = integer and int(p) % 2 == 0
-
-    def pw(x: float) -> float:
-        with np.errstate(all="ignore"):
-            return float(np.power(np.float64(x), p))
-    if p > 0:
-        if even:
-            if lo >= 0:
-                return (pw(lo), pw(hi))
-            if hi <= 0:
-                return (pw(hi), pw(lo))
-            return (0.0, max(pw(lo), pw(hi)))
-        if integer:
-            return (pw(lo), pw(hi))  # odd: increasing on the whole line
-        if hi < 0:
-            return EVERYTHING  # not a real number
-        return (pw(max(lo, 0.0)), pw(hi))
-    # p < 0
-    if lo > 0:
-        return (pw(hi), pw(lo))
-    if hi < 0 and integer:
-        return (pw(lo), pw(hi)) if even else (pw(hi), pw(lo))
-    if even:
-        return (0.0, math.inf)
-    return EVERYTHING
-
-
 def _apply(e: tt.Apply, args: list[Interval]) -> Interval:
     entry = CATALOG.get(e.entry)
     opts = e.option_dict
@@ -136,8 +104,8 @@ def _apply(e: tt.Apply, args: list[Interval]) -> Interval:
     if getattr(e, "tuned", ()):
         # a setting that is itself a tunable (x ^ q, q within 1.5 .. 4): only the entry's sign rule is used
         return _sign_interval(entry.sign(tuple(Sign.of_range(lo, hi) for lo, hi in args), opts))
-    if e.entry == "power" and "p" in opts:
-        return _power(opts["p"], args[0])
+    if entry.value_interval is not None and len(args) == 1:
+        return entry.value_interval(opts, args[0])
     if all(lo == hi for lo, hi in args):
         v = _value(entry, [lo for lo, _ in args], opts)
         if v is not None:
