@@ -993,6 +993,9 @@ def evaluate_smooth(pb, theta, mu=0.0, s=None):
     if own_score:
         s = score(pb, theta)
     rows, derivs = rows_part(pb, s, mu)
+    # a smooth term's derivative in this list is its exact one at s (smoothing touches nonsmooth terms only):
+    # `distance_certificate` then need not form it again (the pair is compared by identity)
+    pb.exact_rows = (s, derivs)
     only = pb.row_terms[0] if len(pb.row_terms) == 1 else None
     if only is not None and only.uniform is not None:
         # A^T (rho d) = rho A^T d for one rho on every row: a scaled p-vector, not a scaled row-sized copy
@@ -1528,9 +1531,11 @@ def distance_certificate(pb, theta, P, gap, s=None, derivs=None, Atu=None, grad=
         if s is None:
             s = score(pb, theta)
         fresh = []
+        known = getattr(pb, "exact_rows", None)
+        known = known is not None and known[0] is s and known[1] is derivs  # from `evaluate_smooth` at s
         for k, term in enumerate(pb.row_terms):
             d = None if derivs is None else derivs[k]
-            if term.smooth or d is None:  # a smooth row's own derivative at s: exact, no slack
+            if (term.smooth and not known) or d is None:  # a smooth row's own derivative at s: exact, no slack
                 exact = term.sum_and_derivative(s, pb.cols, pb.tun)[1]
                 d = exact if d is None or not np.array_equal(d, exact) else d
             fresh.append(d)
