@@ -1336,19 +1336,21 @@ def _sampled_curvature(pb, s):
     rows = None if k >= n else _sample_rows(n, k, _hessian_block_rows(pb.p))
     key = _sample_key(pb, k)
     kept = None if key is None or rows is None else pb.prepared.get(key)
+    d0 = None
     if kept is not None:
         # a sample of the path's table formed at an earlier point: reused while the rows' curvature here is
         # still at least 0.8 of what it was there (the ball argument's kappa, the least ratio, covers any
         # change, so this only decides when a fresh sample pays: 0.8 is our own choice)
-        d_here = _row_curvature(pb, s[rows], np.zeros(k), rows)
+        d0 = _row_curvature(pb, s[rows], np.zeros(k), rows)  # the curvature here: a fresh sample's too
         used = kept["d0"] > 0.0
-        if d_here is not None and float(np.min(d_here[used] / kept["d0"][used])) >= 0.8:
+        if d0 is not None and float(np.min(d0[used] / kept["d0"][used])) >= 0.8:
             least = _sample_least(pb, kept["M"], kept["d0"], kept["norms2"], k)
             if least > 0.0:
                 pb.sampled = {"rows": rows, "d0": kept["d0"], "reach": kept["reach"], "least": least, "k": k,
                               "H": None, "reused": True}
                 return pb.sampled
-    d0 = _row_curvature(pb, s if rows is None else s[rows], np.zeros(k), rows)
+    if kept is None:
+        d0 = _row_curvature(pb, s if rows is None else s[rows], np.zeros(k), rows)
     if d0 is None or not np.any(d0 > 0.0):
         return None
     M, sq = _sample_hessian(pb, rows, d0)
