@@ -769,8 +769,7 @@ class SettingRule:
     declared range (x ^ q, q within 1.5 .. 4). `over(low, high)`: the (curvature, monotonicity) that hold on
     the argument's domain for every value in [low, high], or None when no one composition rule holds over the
     range; `why(low, high)`: the fact that decides it, as a phrase; `hint(name, default, high)`: the range to
-    declare instead; `smooths_zero_kink_from`: the least setting from which the entry smooths a kink of its
-    argument at 0; `sign_needed`: the rules hold only where the argument is nonnegative for a range of more
+    declare instead; `sign_needed`: the rules hold only where the argument is nonnegative for a range of more
     than one value (a range holds settings that need it), said by `sign_fault` and `sign_hint(name)` when the
     sign is unknown; `value_sign`: the entry's sign over the range, where the range alone decides it."""
 
@@ -778,7 +777,6 @@ class SettingRule:
     over: Callable[[float, float], tuple[Curvature, Monotonicity] | None]
     why: Callable[[float, float], str]
     hint: Callable[[str, float, float], str]
-    smooths_zero_kink_from: float = np.inf
     sign_needed: bool = False
     sign_fault: str = ""
     sign_hint: Callable[[str], str] = lambda _name: ""
@@ -1019,7 +1017,7 @@ _POWER_RULE = SettingRule(
                        f"admits {'q < 1' if high > 1 else 'q < 0'}"),
     lambda name, default, high: (f"declare a range with {name} >= 1 for a convex power, e.g. tune {name} = "
                                  f"{max(default, 1.0):g} within 1 .. {max(high, 1.0):g}"),
-    smooths_zero_kink_from=2.0, sign_needed=True,
+    sign_needed=True,
     sign_fault="u^q for a q that is not an even integer is defined and convex only where u >= 0",
     sign_hint=lambda name: f"write abs(u)^{name} or pos(u)^{name}", value_sign=Sign.NONNEG)
 

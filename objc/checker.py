@@ -360,8 +360,9 @@ def _tuned_setting_facts(e: tt.Apply, entry, facts: list[Facts]) -> Facts | None
     if rule is not None and rule.option in tuned:
         q = tuned[rule.option]
         base = facts[0]
-        # as for a literal setting: pos(u)^q is continuously differentiable once every q smooths the kink
-        smooth = base.smooth or (q.low >= rule.smooths_zero_kink_from and _kink_at_zero_only(e.args[0]))
+        # as for a literal setting: pos(u)^q is continuously differentiable once every q smooths the kink, and a
+        # larger setting smooths no less (x^p: p >= 2), so the range's low end decides
+        smooth = base.smooth or (entry.smooths_zero_kink({rule.option: q.low}) and _kink_at_zero_only(e.args[0]))
         sign = rule.value_sign or entry.sign(tuple(f.sign for f in facts), {rule.option: q.low})
         if base.curvature == Curvature.CONSTANT:
             return Facts(Curvature.CONSTANT, sign, True, inner_fault, z)
