@@ -299,6 +299,13 @@ def _mc_relative(value, objective):
     return value / max(1.0, abs(objective))
 
 
+def _mc_gap_floor(P):
+    """The least gap a report claims: P and D are sums over the rows rounded to about 1e-16 |P| each, so a gap
+    below 1e-15 max(1, |P|) (our own floor, the binary runtime's too) is not resolved (and an exact face would
+    otherwise report gap 0 and a distance bound of 0)."""
+    return 1e-15 * max(1.0, abs(P))
+
+
 def _mc_tilt(d, S, loss):
     """The shift a of every row's scores minimizing sum_i rho_i softmax_ce(s_i + a): the exact intercept for
     these weights, by Newton steps in K dimensions (no pass over the table). At the shift the dual point
@@ -621,26 +628,15 @@ def _mc_balance(d, loss, U):
 
 
 def _mc_hinge_certify(d, loss, c2, U, b0):
-    """(P, gap, W, c) for the dual point U: W = -X_c^T U / (2 c2) afresh, c = b0 - sigma-free part handled by
-    the caller; with an intercept U is balanced first (`_mc_balance`). D(U) = -sum_i u_iy - c2 ||W||^2 for
-    both hinges (their conjugates are v_y on their domains)."""
-    if d.intercept:
-        fixed = _mc_balance(d, loss, U)
-        Ub = fixed[0] if fixed is not None else None
-    else:
-        Ub = U
+    """(P, gap, W, S) for the dual point U of `_mc_dual_cd` (which runs with a free intercept only): the primal
+    point W = -X_c^T U / (2 c2) afresh with the intercept b0, the dual D of U balanced (`_mc_balanced_dual`)."""
     W = -d.back(U) / (2.0 * c2)
     S = d.scores(W, b0)
     f, _ = _mc_loss_vd(loss, S, d.y)
     P = float(d.rho @ f) + c2 * float(np.sum(W * W))
-    if Ub is None:
-        return P, math.inf, W, S
-    Wb = W if Ub is U else -d.back(Ub) / (2.0 * c2)
-    pos = d.rho > 0
-    with np.errstate(all="ignore"):
-        conj = float(d.rho[pos] @ _mc_loss_conj(loss, Ub[pos] / d.rho[pos, None], d.y[pos]))
-    D = -conj - c2 * float(np.sum(Wb * Wb))
-    return P, max(P - D, 0.0) if P - D == P - D else math.inf, W, S
+    D, _Wb = _mc_balanced_dual(d, loss, c2, U, W)
+    gap = P - D
+    return P, max(gap, 0.0) if gap == gap else math.inf, W, S
 
 
 def _mc_dual_cd(d, loss, c2, tol, budget, seed=0, block=256):
@@ -996,9 +992,6 @@ def _mc_hinge_newton(d, loss, c2, tol, budget, mu0=1.0, shrink=10.0):
 
     best = None  # (P, gap, W, c)
     steps = 0
-    # P and D are sums over the rows, each rounded: a gap below 1e-15 of P (our own floor) is not resolved,
-    # and an exact face would otherwise report gap 0 and a distance bound of 0
-    rounding = 1e-15
     while d.passes < budget:
         Fs, U, H, dU = _mc_smoothed_hinge(loss, S, d.E, d.rho, mu)
         XtU = d.back(U)
@@ -1009,10 +1002,10 @@ def _mc_hinge_newton(d, loss, c2, tol, budget, mu0=1.0, shrink=10.0):
         f, _ = _mc_loss_vd(loss, S, d.y)
         P = float(d.rho @ f) + c2 * float(np.sum(W * W))
         if d.intercept:
-            D = _mc_balanced_dual(d, loss, c2, U)[0]
+            D = _mc_balanced_dual(d, loss, c2, U, -XtU / (2.0 * c2))[0]
         else:
             D = -float(np.sum(U * d.E)) - float(np.sum(XtU * XtU)) / (4.0 * c2)
-        gap = max(P - D, rounding * max(1.0, abs(P))) if np.isfinite(D) else math.inf
+        gap = max(P - D, _mc_gap_floor(P)) if np.isfinite(D) else math.inf
         if best is None or _mc_relative(gap, P) < _mc_relative(best[1], best[0]):
             best = (P, gap, W.copy(), c.copy())
         if _mc_relative(best[1], best[0]) <= tol:
@@ -1032,7 +1025,7 @@ def _mc_hinge_newton(d, loss, c2, tol, budget, mu0=1.0, shrink=10.0):
         step = -solve(g)
         decrement = -float(step @ g)
         Dir, dc = split(step)
-        XD = d.scores(Dir, dc) if d.intercept else d.scores(Dir, np.zeros(K))
+        XD = d.scores(Dir, dc)
         t = 1.0
         while True:  # backtracking (Armijo) along the scores, which are linear in t: no pass per trial
             Wt = W + t * Dir
@@ -1055,7 +1048,7 @@ def _mc_hinge_newton(d, loss, c2, tol, budget, mu0=1.0, shrink=10.0):
                         Df, Wdf = _mc_hinge_dual_value(d, c2, Uf)
                     Pdf = _mc_hinge_value(d, loss, c2, Wdf, cf)[0] if Wdf is not None else math.inf
                     Pc, Wc = (Pf, Wf) if Pf <= Pdf else (Pdf, Wdf)
-                    gc = max(Pc - Df, rounding * max(1.0, abs(Pc))) if np.isfinite(Df) else math.inf
+                    gc = max(Pc - Df, _mc_gap_floor(Pc)) if np.isfinite(Df) else math.inf
                     if _mc_relative(gc, Pc) < _mc_relative(best[1], best[0]):
                         best = (Pc, gc, Wc.copy(), cf.copy())
                     if _mc_relative(best[1], best[0]) <= tol:
@@ -1077,15 +1070,15 @@ def _mc_hinge_newton(d, loss, c2, tol, budget, mu0=1.0, shrink=10.0):
     return best, steps, f"stopped: {why} at relative gap {_mc_relative(best[1], best[0]):.3g} (tol {tol:g})"
 
 
-def _mc_balanced_dual(d, loss, c2, U):
+def _mc_balanced_dual(d, loss, c2, U, W_of_U=None):
     """(D(U'), W(U')) for U' = U balanced by `_mc_balance` (sum_i u'_i = 0, which a free intercept's dual
     needs), or (-inf, None) where no balance is found: D = -sum_i rho_i L*(u'_i / rho_i) - c2 ||W(U')||^2,
-    W(U') = -X_c^T U' / (2 c2); one pass."""
+    W(U') = -X_c^T U' / (2 c2); one pass, none when the balance leaves U as it is and `W_of_U` is given."""
     fixed = _mc_balance(d, loss, U)
     if fixed is None:
         return -math.inf, None
     Ub = fixed[0]
-    Wb = -d.back(Ub) / (2.0 * c2)
+    Wb = W_of_U if (Ub is U and W_of_U is not None) else -d.back(Ub) / (2.0 * c2)
     pos = d.rho > 0
     with np.errstate(all="ignore"):
         conj = float(d.rho[pos] @ _mc_loss_conj(loss, Ub[pos] / d.rho[pos, None], d.y[pos]))
@@ -1151,14 +1144,11 @@ def solve_multiclass(X, labels, K, rho, loss, penalties, intercept, tol=1e-8, ma
             if P2 < P:
                 P, W, c = P2, W2, c2_
                 method += " (its weights kept)"
-            gap_abs = max(P - dual, 1e-15 * max(1.0, abs(P)))
+            gap_abs = P - dual
             status = "optimal" if _mc_relative(gap_abs, P) <= tol else status2
         b = d.user_intercept(W, c)
-    if math.isfinite(gap_abs):
-        # P and D are sums rounded to about 1e-16 |P| each: a gap below 1e-15 max(1, |P|) (our own floor, as
-        # in the hinges' Newton method and the binary runtime's report) is not resolved, so neither the gap nor
-        # the distance bound drawn from it is claimed below that
-        gap_abs = max(gap_abs, 1e-15 * max(1.0, abs(P)))
+    if math.isfinite(gap_abs):  # neither the gap nor the distance bound drawn from it below the floor
+        gap_abs = max(gap_abs, _mc_gap_floor(P))
     mu = 2.0 * c2 if (c2 > 0 and not d.intercept) else None
     distance = math.sqrt(2.0 * gap_abs / mu) if (mu is not None and math.isfinite(gap_abs)) else None
     return dict(W=np.asarray(W, dtype=np.float64), b=np.asarray(b, dtype=np.float64), objective=float(P),
