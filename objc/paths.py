@@ -234,8 +234,14 @@ def fit_path(checked: CheckedObjective, data: tables.BoundData, tunables: dict[s
     total = len(values)
     if backend == "cvxpy":
         from objc.backends import cvxpy_problem
-        built = cvxpy_problem.build_problem(checked, data.X, data.y, data.weights, data.input_names,
-                                            dict(base, **{tunable: float(values[0])}) if values else base)
+        # one parametrized problem serves every path on these rows (a grid's paths over a second tunable)
+        built = cache.get("cvxpy problem") if cache is not None and cache.get("X") is data.X else None
+        if built is None:
+            built = cvxpy_problem.build_problem(checked, data.X, data.y, data.weights, data.input_names,
+                                                dict(base, **{tunable: float(values[0])}) if values else base)
+            if cache is not None:
+                cache.clear()
+                cache.update({"X": data.X, "cvxpy problem": built})
         for k, v in enumerate(values):
             result = cvxpy_problem.solve_build(built, dict(base, **{tunable: float(v)}), solver=solver,
                                                warm_start=k > 0)

@@ -16,11 +16,11 @@ from typing import Callable, Literal, Sequence
 
 import numpy as np
 
-from objc import tables, training
+from objc import paths, tables, training
 from objc import typed_tree as tt
 from objc.checker import CheckedObjective
 from objc.diagnostics import Diagnostic, SpecError
-from objc.fit_result import FitResult, theta_from_params
+from objc.fit_result import FitResult
 from objc.source_text import NO_SPAN
 
 # the folds' seed when none is given: any fixed number makes a run repeatable; this one is ours
@@ -158,15 +158,6 @@ def has_l1(checked: CheckedObjective) -> bool:
     return any(t.kind == "params" and isinstance(t.core, tt.Apply) and t.core.entry == "l1" for t in checked.terms)
 
 
-def _paths_module():
-    """The regularization-path module (objc/paths.py) when it is there; None lets the plain loop run."""
-    try:
-        from objc import paths
-    except ImportError:
-        return None
-    return paths
-
-
 def resolve_axis(checked: CheckedObjective, request: AxisText, *, data: tables.BoundData | None = None,
                  base: dict[str, float] | None = None, default_steps: int = DEFAULT_STEPS,
                  default_linear: bool = False) -> Axis:
@@ -196,9 +187,8 @@ def resolve_axis(checked: CheckedObjective, request: AxisText, *, data: tables.B
         low, high, origin = request.low, request.high, "given"
     else:
         low, high, origin = t.low, t.high, "the declared range"
-        paths = _paths_module()
         # a range reaching down to 0 marks a share (an elastic-net mix), not a strength: no path for it
-        if paths is not None and data is not None and t.low > 0 and weighs_l1(checked, t.name):
+        if data is not None and t.low > 0 and weighs_l1(checked, t.name):
             start = paths.path_start(checked, data, dict(base or {}), t.name)
             if start is not None and start > 0:
                 high = min(max(float(start), t.low), t.high)
@@ -359,15 +349,14 @@ def _fold_caches(checked: CheckedObjective, validation: Validation, setting: dic
     fits go the Gram way, each part's holds its fold's sums formed from the table's and the refit's the
     table's own (`paths.fold_caches`); else Nones (each fit forms its own)."""
     none: tuple[list[dict | None], dict | None] = ([None] * len(validation.parts), None)
-    lib = _paths_module()
-    if validation.kind != "folds" or options.backend != "numpy" or lib is None or not hasattr(lib, "fold_caches"):
+    if validation.kind != "folds" or options.backend != "numpy":
         return none
     # a standardization fitted again on each fold's rows (tables.split_rows) makes the folds' columns
     # differ from the table's: the table's sums do not apply
     if any(p.train.standardization is not None and p.train.standardization_fitted for p in validation.parts):
         return none
-    caches, whole = lib.fold_caches(checked, [(p.train, p.held) for p in validation.parts], setting,
-                                    validation.whole)
+    caches, whole = paths.fold_caches(checked, [(p.train, p.held) for p in validation.parts], setting,
+                                      validation.whole)
     return [c if c else None for c in caches], whole
 
 
@@ -377,47 +366,21 @@ def _fit_part(checked: CheckedObjective, part: Part, grid: Grid, base: dict[str,
     `fit_order`; (results by grid index, which warm-start machinery ran). `cache`: the part's path cache
     (`_fold_caches`), a new one by default."""
     settings = grid.settings()
-    along, paths = fit_order(checked, grid)
+    along, order = fit_order(checked, grid)
     name = grid.axes[along].name
     results: list[FitResult | None] = [None] * grid.size
-    lib = _paths_module()
-    if lib is not None and hasattr(lib, "fit_path"):
-        if cache is None:
-            cache = {}  # one per part: its Gram matrix or column centre serves every path of the part
-        for path in paths:
-            def relay(j: int, total: int, res: FitResult, path: tuple[int, ...] = path) -> None:
-                results[path[j - 1]] = res
-                on_fit(path[j - 1], res)
-            fitted = lib.fit_path(checked, part.train, dict(base, **settings[path[0]]), name,
-                                  [settings[k][name] for k in path], backend=options.backend, tol=options.tol,
-                                  param_tol=options.param_tol, progress=relay, solver=options.solver, cache=cache)
-            for k, res in zip(path, fitted):
-                results[k] = res
-        return results, "paths.fit_path"  # type: ignore[return-value]
-    if options.backend == "cvxpy":
-        from objc.backends import cvxpy_problem
-        built = cvxpy_problem.build_problem(checked, part.train.X, part.train.y, part.train.weights,
-                                            part.train.input_names, base)
-        for path in paths:
-            for k in path:
-                res = cvxpy_problem.solve_build(built, dict(base, **settings[k]), solver=options.solver,
-                                                warm_start=True)
-                results[k] = res
-                on_fit(k, res)
-        return results, "cvxpy warm start (one DPP problem per part)"  # type: ignore[return-value]
-    form = training.form_for(checked, part.train.input_names)
-    previous_start = None
-    for path in paths:
-        theta = previous_start
-        for j, k in enumerate(path):
-            res = training.run_backend(checked, part.train, options.backend, dict(base, **settings[k]),
-                                       tol=options.tol, theta0=theta, param_tol=options.param_tol)
-            theta = theta_from_params(form, res.params)
-            if j == 0:
-                previous_start = theta
+    if cache is None:
+        cache = {}  # one per part: its Gram matrix or column centre serves every path of the part
+    for path in order:
+        def relay(j: int, total: int, res: FitResult, path: tuple[int, ...] = path) -> None:
+            results[path[j - 1]] = res
+            on_fit(path[j - 1], res)
+        fitted = paths.fit_path(checked, part.train, dict(base, **settings[path[0]]), name,
+                                [settings[k][name] for k in path], backend=options.backend, tol=options.tol,
+                                param_tol=options.param_tol, progress=relay, solver=options.solver, cache=cache)
+        for k, res in zip(path, fitted):
             results[k] = res
-            on_fit(k, res)
-    return results, "run_backend warm starts (theta0 from the previous fit)"  # type: ignore[return-value]
+    return results, "paths.fit_path"  # type: ignore[return-value]
 
 
 def metric_keys(checked: CheckedObjective, task: str, base: dict[str, float]) -> tuple[str, ...]:

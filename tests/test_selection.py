@@ -186,11 +186,8 @@ def enet(tmp_path_factory):
     return tmp, _spec(tmp, "d.csv", names, ENET)
 
 
-@pytest.mark.parametrize("machinery", ["paths", "plain loop"])
-def test_two_tunable_grid_points_equal_cold_fits(enet, monkeypatch, machinery):
+def test_two_tunable_grid_points_equal_cold_fits(enet):
     tmp, checked = enet
-    if machinery == "plain loop":
-        monkeypatch.setattr(selection, "_paths_module", lambda: None)
     train, held, label = training.bind_training(checked, tmp)
     plan = selection.validation_plan(checked, train, held, label)  # one part: the training rows
     grid = selection.make_grid(checked, [selection.parse_axis("lam:0.003..1:4"), selection.parse_axis("a:0..1:3:lin")],
@@ -201,7 +198,7 @@ def test_two_tunable_grid_points_equal_cold_fits(enet, monkeypatch, machinery):
     assert along == 0 and len(paths) == 3 and [grid.settings()[k]["lam"] for k in paths[0]] == sorted(
         grid.axes[0].values, reverse=True)
     outcome = selection.evaluate_grid(checked, plan, grid, {"lam": 0.1, "a": 0.5})
-    assert outcome.warm_start.startswith("paths.fit_path" if machinery == "paths" else "run_backend")
+    assert outcome.warm_start.startswith("paths.fit_path")
     for p in outcome.points:
         cold = training.run_backend(checked, train, "numpy", p.setting)
         # both are certified within 1e-6 of the optimum in the parameters, so within 2e-6 of each other
@@ -212,6 +209,27 @@ def test_two_tunable_grid_points_equal_cold_fits(enet, monkeypatch, machinery):
     lasso = [p for p in outcome.points if p.setting["a"] == 1.0]
     assert [p.nonzeros[0] for p in sorted(lasso, key=lambda p: -p.setting["lam"])] == sorted(
         p.nonzeros[0] for p in lasso)
+
+
+def test_a_cvxpy_grid_builds_one_problem_and_equals_cold_solves(enet, monkeypatch):
+    tmp, checked = enet
+    from objc.backends import cvxpy_problem
+    train, held, label = training.bind_training(checked, tmp)
+    plan = selection.validation_plan(checked, train, held, label)
+    grid = selection.make_grid(checked, [selection.parse_axis("lam:0.01..1:2"), selection.parse_axis("a:0..1:2:lin")],
+                               data=train)
+    builds = []
+    real_build = cvxpy_problem.build_problem
+    monkeypatch.setattr(cvxpy_problem, "build_problem", lambda *a, **k: builds.append(1) or real_build(*a, **k))
+    outcome = selection.evaluate_grid(checked, plan, grid, {"lam": 0.1, "a": 0.5},
+                                      selection.FitOptions(backend="cvxpy"))
+    # two paths over lam (one per value of a) on one part: one parametrized problem serves both
+    assert len(builds) == 1
+    for p in outcome.points:
+        monkeypatch.setattr(cvxpy_problem, "build_problem", real_build)
+        cold = training.run_backend(checked, train, "cvxpy", p.setting)  # cvxpy + Clarabel, built afresh
+        assert p.objectives[0] == pytest.approx(cold.objective, rel=1e-7)
+        assert np.max(np.abs(p.params["w"] - cold.params["w"])) <= 1e-6
 
 
 def test_l1_grid_starts_where_every_weight_is_zero(enet):
