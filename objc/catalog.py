@@ -1241,6 +1241,8 @@ ENTRIES: tuple[Entry, ...] = (
 )
 
 CATALOG: dict[str, Entry] = {e.name: e for e in ENTRIES}
+# the entries written as an operator (`base ^ p`), by their operator
+INFIX: dict[str, Entry] = {e.infix: e for e in ENTRIES if e.infix}
 
 # `group_l2(w)` is resolved to a sum of l2 norms over the groups a table declares; it is listed
 # here so that name lookup and the docs know it.

@@ -32,7 +32,7 @@ from typing import Callable, Generic, Mapping, Protocol, Sequence, TypeVar
 import numpy as np
 
 from objc import syntax_tree as st
-from objc.catalog import CATALOG, Entry
+from objc.catalog import CATALOG, INFIX, Entry
 from objc.diagnostics import Diagnostic
 from objc.source_text import Span
 
@@ -135,10 +135,10 @@ def fold(expr: st.Expr, algebra: FormulaAlgebra[Value], not_columns: Mapping[str
             refuse("E219", "an exponent in a feature must be a literal number", e.exponent.span,
                    "write e.g. a ^ 2 or (a + 1) ^ -1; a tunable exponent belongs in the goal or a loss")
             return None
-        settings = _settings(CATALOG["power"], (p,), e.span)
+        settings = _settings(INFIX["^"], (p,), e.span)
         if base is None or settings is None or not math.isfinite(p):
             return None
-        return algebra.atom(CATALOG["power"], (base,), settings)
+        return algebra.atom(INFIX["^"], (base,), settings)
 
     def _call(e: st.Call) -> Value | None:
         entry = CATALOG.get(e.func)

@@ -10,7 +10,7 @@ from dataclasses import replace
 
 from objc import syntax_tree as st
 from objc import typed_tree as tt
-from objc.catalog import CATALOG, GROUP_NORM
+from objc.catalog import CATALOG, GROUP_NORM, INFIX
 from objc.diagnostics import Diagnostic, SpecError
 from objc.feature_formula import check_formula
 from objc.source_text import SourceText, Span
@@ -419,7 +419,9 @@ class _Resolver:
             if folded is not None and folded < 0 and not float(value).is_integer():
                 self.error("E249", f"a negative number to the power {value:g} is not a real number", e.span)
                 return bad
-            return tt.Apply("power", (base,), (("p", float(value)),), e.span, base.shape, base.depends)
+            power = INFIX["^"]
+            return tt.Apply(power.name, (base,), ((power.options[0].name, float(value)),), e.span, base.shape,
+                            base.depends)
         if isinstance(e, st.Aggregate):
             reported = len(self.errors)
             inner = self.expr(e.operand, loss_env, where)
@@ -669,7 +671,7 @@ class _Resolver:
         except ValueError as err:
             self.error("E239", str(err), e.span)
             return bad
-        if entry.name == "power" and tuned:
+        if entry.infix and tuned:
             return self._tuned_power(e, args[0], tuned[0][1]) or bad
         for a in args:
             if a.shape.kind == "matrix":
@@ -808,8 +810,10 @@ class _Resolver:
             self.error("E249", f"a negative number to the tunable power '{ref.name}' is not a real number for "
                        "fractional values of it", e.span, hint="raise a nonnegative number")
             return None
-        return tt.Apply("power", (base,), (("p", float(ref.default)),), e.span, base.shape, base.depends,
-                        (("p", ref),))
+        power = INFIX["^"]
+        key = power.options[0].name
+        return tt.Apply(power.name, (base,), ((key, float(ref.default)),), e.span, base.shape, base.depends,
+                        ((key, ref),))
 
     def _custom_loss(self, e: st.Call, loss_env, where: str) -> tt.TExpr | None:
         d = self.losses[e.func]

@@ -12,6 +12,7 @@ from dataclasses import dataclass, replace
 from typing import Literal, Mapping, Union
 
 from objc import syntax_tree as st
+from objc.catalog import INFIX
 from objc.source_text import Span
 
 ShapeKind = Literal["scalar", "rows", "vector", "matrix", "classes", "weights", "rowclasses"]
@@ -346,7 +347,9 @@ TExpr = Union[Const, TunableRef, DataRef, ParamRef, ScoreRef, Apply, CustomLoss,
 
 def is_square(e: TExpr) -> bool:
     """e is u ^ 2 with the exponent written as the number 2 (not a tunable that defaults to 2)."""
-    return isinstance(e, Apply) and e.entry == "power" and not e.tuned and e.option_dict.get("p") == 2.0
+    power = INFIX["^"]
+    return (isinstance(e, Apply) and e.entry == power.name and not e.tuned
+            and e.option_dict.get(power.options[0].name) == 2.0)
 
 
 def children(e: TExpr) -> tuple[TExpr, ...]:

@@ -1250,8 +1250,8 @@ def _mc_factor_ast(e: tt.TExpr) -> ast.expr:
         return _binop(_mc_factor_ast(e.left), ast.Mult(), _mc_factor_ast(e.right))
     if isinstance(e, tt.Div):
         return _binop(_mc_factor_ast(e.left), ast.Div(), _mc_factor_ast(e.right))
-    if isinstance(e, tt.Apply) and e.entry == "power" and not e.tuned:
-        return _binop(_mc_factor_ast(e.args[0]), ast.Pow(), _const(float(e.option_dict["p"])))
+    if isinstance(e, tt.Apply) and e.entry == catalog.INFIX["^"].name and not e.tuned:
+        return _binop(_mc_factor_ast(e.args[0]), ast.Pow(), _const(float(e.options[0][1])))
     raise NotSupported(f"the coefficient '{render(e)}' is not a number, a tunable or a product of them", e.span)
 
 
