@@ -78,16 +78,15 @@ class Monotonicity(str, Enum):
                 Monotonicity.DECREASING: Monotonicity.INCREASING}.get(self, self)
 
 
+def _shared_fact(a, b, ladder, fallback):
+    """The first fact on `ladder` (most specific first, each with its test) that a and b both have:
+    the sum of two expressions has every property both summands share."""
+    return next((fact for fact, holds in ladder if holds(a) and holds(b)), fallback)
+
+
 def sign_add(a: Sign, b: Sign) -> Sign:
-    if a == Sign.ZERO:
-        return b
-    if b == Sign.ZERO:
-        return a
-    if a.is_nonneg and b.is_nonneg:
-        return Sign.NONNEG
-    if a.is_nonpos and b.is_nonpos:
-        return Sign.NONPOS
-    return Sign.UNKNOWN
+    return _shared_fact(a, b, ((Sign.ZERO, lambda s: s == Sign.ZERO), (Sign.NONNEG, lambda s: s.is_nonneg),
+                               (Sign.NONPOS, lambda s: s.is_nonpos)), Sign.UNKNOWN)
 
 
 def sign_mul(a: Sign, b: Sign) -> Sign:
@@ -99,17 +98,9 @@ def sign_mul(a: Sign, b: Sign) -> Sign:
 
 
 def curvature_add(a: Curvature, b: Curvature) -> Curvature:
-    if a == Curvature.CONSTANT:
-        return b
-    if b == Curvature.CONSTANT:
-        return a
-    if a.is_affine and b.is_affine:
-        return Curvature.AFFINE
-    if a.is_convex and b.is_convex:
-        return Curvature.CONVEX
-    if a.is_concave and b.is_concave:
-        return Curvature.CONCAVE
-    return Curvature.UNKNOWN
+    return _shared_fact(a, b, ((Curvature.CONSTANT, lambda c: c == Curvature.CONSTANT),
+                               (Curvature.AFFINE, lambda c: c.is_affine), (Curvature.CONVEX, lambda c: c.is_convex),
+                               (Curvature.CONCAVE, lambda c: c.is_concave)), Curvature.UNKNOWN)
 
 
 def curvature_scale(c: Curvature, factor_sign: Sign) -> Curvature:

@@ -283,35 +283,34 @@ class CustomLoss:
 
 
 @dataclass(frozen=True)
-class Add:
+class _Arithmetic:
+    """The fields of the three arithmetic operators; each operator is its own node type."""
+
     left: "TExpr"
     right: "TExpr"
     span: Span
     shape: Shape = SCALAR
     depends: Depends = "const"
+
+
+@dataclass(frozen=True)
+class Add(_Arithmetic):
+    pass
+
+
+@dataclass(frozen=True)
+class Mul(_Arithmetic):
+    pass
+
+
+@dataclass(frozen=True)
+class Div(_Arithmetic):
+    pass
 
 
 @dataclass(frozen=True)
 class Neg:
     operand: "TExpr"
-    span: Span
-    shape: Shape = SCALAR
-    depends: Depends = "const"
-
-
-@dataclass(frozen=True)
-class Mul:
-    left: "TExpr"
-    right: "TExpr"
-    span: Span
-    shape: Shape = SCALAR
-    depends: Depends = "const"
-
-
-@dataclass(frozen=True)
-class Div:
-    left: "TExpr"
-    right: "TExpr"
     span: Span
     shape: Shape = SCALAR
     depends: Depends = "const"

@@ -1242,17 +1242,19 @@ def _blas_controller():
     return _LOADED_LIBRARIES["controller"]
 
 
-class _OneBlasThread:
-    """NumPy's BLAS at one thread inside the block (restored after): for many small products, whose
-    thread hand-offs dominate. Measured on the 2-core benchmark machine, 12 rank-1300 updates of a 100 x 100
-    matrix took 11-12 ms on one thread and 12-57 ms on two, up to 400 ms while another process held a core
-    (an idle core is needed at every hand-off); one thread was as fast as two when the machine was idle."""
+class _BlasCap:
+    """A thread cap held inside a `with` block and restored after; `_limit(controller)` says which pools
+    get which cap. A thread cap is an optimisation only, never a reason to fail: any error leaves the
+    threads as they are."""
+
+    def _limit(self, controller):
+        raise NotImplementedError
 
     def __enter__(self):
         controller = _blas_controller()
         try:
-            self._cap = None if controller is None else controller.limit(limits=1, user_api="blas")
-        except Exception:  # a thread cap is an optimisation only, never a reason to fail
+            self._cap = None if controller is None else self._limit(controller)
+        except Exception:
             self._cap = None
         return self
 
@@ -1260,6 +1262,16 @@ class _OneBlasThread:
         if self._cap is not None:
             self._cap.restore_original_limits()
         return False
+
+
+class _OneBlasThread(_BlasCap):
+    """NumPy's BLAS at one thread inside the block (restored after): for many small products, whose
+    thread hand-offs dominate. Measured on the 2-core benchmark machine, 12 rank-1300 updates of a 100 x 100
+    matrix took 11-12 ms on one thread and 12-57 ms on two, up to 400 ms while another process held a core
+    (an idle core is needed at every hand-off); one thread was as fast as two when the machine was idle."""
+
+    def _limit(self, controller):
+        return controller.limit(limits=1, user_api="blas")
 
 
 def _hessian_block_rows(p):
@@ -3034,26 +3046,13 @@ def _nonsmooth_subgradient(pb, theta):
 
 # ---------------------------------------------------------------- threads
 
-class _ThreadLimits:
+class _ThreadLimits(_BlasCap):
     """Cap every BLAS/OpenMP pool except NumPy's at one thread while solving (REFERENCE.md,
     'Measuring speed': SciPy's and NumPy's OpenBLAS pools otherwise compete for the cores)."""
 
-    def __enter__(self):
-        self._limiter = None
-        controller = _blas_controller()
-        if controller is not None:
-            try:
-                others = [lib.filepath for lib in controller.lib_controllers if "numpy" not in str(lib.filepath)]
-                if others:
-                    self._limiter = controller.select(filepath=others).limit(limits=1)
-            except Exception:  # a thread cap is an optimisation only, never a reason to fail
-                self._limiter = None
-        return self
-
-    def __exit__(self, *exc):
-        if self._limiter is not None:
-            self._limiter.restore_original_limits()
-        return False
+    def _limit(self, controller):
+        others = [lib.filepath for lib in controller.lib_controllers if "numpy" not in str(lib.filepath)]
+        return controller.select(filepath=others).limit(limits=1) if others else None
 
 
 # ---------------------------------------------------------------- entry point
