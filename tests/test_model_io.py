@@ -204,6 +204,15 @@ def _concrete(path: str, doc: dict) -> list:
     return out
 
 
+def _holder(path: str, doc: dict) -> tuple[dict | list, str | int]:
+    """(the node holding one real place of a DocumentKey path in `doc`, its key there)."""
+    *parents, last = _concrete(path, doc)
+    node = doc
+    for p in parents:
+        node = node[p]
+    return node, last
+
+
 def _rewrite(json_path: Path, edit) -> dict:
     """Apply `edit` to the document and store it with a fresh checksum, so what refuses it is the
     validator, not the checksum."""
@@ -258,13 +267,10 @@ def test_each_required_key_missing_is_a_clear_refusal(models, tmp_path, capsys, 
     # regression: a model JSON without a key ended in "internal error (KeyError)"
     model_copy = _holding(models, key, tmp_path)
     doc = json.loads(model_copy.read_text())
-    *parents, last = _concrete(key.path, doc)
-    where = ".".join(str(p) for p in parents + [last]).replace(".0.", "[0].")
+    where = ".".join(str(p) for p in _concrete(key.path, doc)).replace(".0.", "[0].")
 
     def drop(d):
-        node = d
-        for p in parents:
-            node = node[p]
+        node, last = _holder(key.path, d)
         del node[last]
     _rewrite(model_copy, drop)
     if key.path == "document_sha256":
@@ -284,19 +290,14 @@ def _wrong_value(key, value):
 def test_each_key_of_the_wrong_kind_is_a_clear_refusal(models, tmp_path, capsys, key):
     model_copy = _holding(models, key, tmp_path)
     doc = json.loads(model_copy.read_text())
-    steps = _concrete(key.path, doc)
-    node = doc
-    for p in steps[:-1]:
-        node = node[p]
+    node, last = _holder(key.path, doc)
     # the two per-input tests look at the document's inputs, so they get a list of the wrong length
     per_input = key.path in ("schema.standardization.means", "schema.standardization.scales")
-    wrong = [1.0] if per_input else _wrong_value(key, node[steps[-1]])
+    wrong = [1.0] if per_input else _wrong_value(key, node[last])
 
     def spoil(d):
-        n = d
-        for p in steps[:-1]:
-            n = n[p]
-        n[steps[-1]] = wrong
+        held, at = _holder(key.path, d)
+        held[at] = wrong
     _rewrite(model_copy, spoil)
     words = ["format"] if key.path == "format" else [key.expected, str(model_copy)]
     _refused_everywhere(capsys, model_copy, "M503", words)
@@ -307,10 +308,7 @@ def test_a_model_without_an_optional_key_still_loads_and_evaluates(models, tmp_p
     # optional means every reader has a default for it (a model written by an earlier objc)
     model_copy = _holding(models, key, tmp_path)
     def drop(d):
-        *parents, last = _concrete(key.path, d)
-        node = d
-        for p in parents:
-            node = node[p]
+        node, last = _holder(key.path, d)
         del node[last]
     _rewrite(model_copy, drop)
     rc, doc, _ = _run(capsys, ["eval", str(model_copy), "--json"])

@@ -76,13 +76,17 @@ def _digest(p: Path) -> str:
     return hashlib.sha256(p.read_bytes()).hexdigest()
 
 
+def _three_runs(folder: Path, command: str, backend: str, outputs: tuple[str, str, str]) -> None:
+    """The command writing each output in turn: two fresh interpreters (each with its own string-hash
+    seed), then this one."""
+    for run, out in zip((_fresh, _fresh, _here), outputs):
+        run([command, "s.objc", "--backend", backend, "-o", out], folder)
+
+
 @pytest.mark.parametrize("backend", ["numpy", "cvxpy"])
 def test_modules_are_byte_identical_across_processes(tmp_path, backend, capsys):
     folder = _folder(tmp_path)
-    # two fresh interpreters (each with its own string-hash seed) and this one
-    _fresh(["build", "s.objc", "--backend", backend, "-o", "one.py"], folder)
-    _fresh(["build", "s.objc", "--backend", backend, "-o", "two.py"], folder)
-    _here(["build", "s.objc", "--backend", backend, "-o", "three.py"], folder)
+    _three_runs(folder, "build", backend, ("one.py", "two.py", "three.py"))
     capsys.readouterr()
     assert _digest(folder / "one.py") == _digest(folder / "two.py") == _digest(folder / "three.py")
 
@@ -90,9 +94,7 @@ def test_modules_are_byte_identical_across_processes(tmp_path, backend, capsys):
 @pytest.mark.parametrize("backend", ["numpy", "cvxpy"])
 def test_models_are_byte_identical_across_runs_and_processes(tmp_path, backend, capsys):
     folder = _folder(tmp_path)
-    _fresh(["fit", "s.objc", "--backend", backend, "-o", "m1.json"], folder)
-    _fresh(["fit", "s.objc", "--backend", backend, "-o", "m2.json"], folder)
-    _here(["fit", "s.objc", "--backend", backend, "-o", "m3.json"], folder)
+    _three_runs(folder, "fit", backend, ("m1.json", "m2.json", "m3.json"))
     capsys.readouterr()
     npz = {_digest(folder / f"m{k}.npz") for k in (1, 2, 3)}
     assert len(npz) == 1
