@@ -503,12 +503,8 @@ def evaluate(e: tt.TExpr, env: EvalEnv):
         return evaluate(e.expr, env)
     if isinstance(e, tt.CustomLoss):
         return evaluate(e.body, env)
-    if isinstance(e, tt.Neg):
-        return -evaluate(e.operand, env)
-    if isinstance(e, tt.Add):
-        return evaluate(e.left, env) + evaluate(e.right, env)
-    if isinstance(e, tt.Mul):
-        return evaluate(e.left, env) * evaluate(e.right, env)
+    if isinstance(e, (tt.Neg, tt.Add, tt.Mul)):
+        return tt.arithmetic(e, lambda part: evaluate(part, env))
     if isinstance(e, tt.Div):
         with np.errstate(divide="ignore", invalid="ignore"):  # `/ 0` is reported by analyse, not raised here
             return np.divide(evaluate(e.left, env), evaluate(e.right, env))

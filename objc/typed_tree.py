@@ -351,6 +351,20 @@ def is_square(e: TExpr) -> bool:
             and e.option_dict.get(power.options[0].name) == 2.0)
 
 
+def arithmetic(e: TExpr, f):
+    """For an Add, Neg, Mul or Div node, its operator applied to f of its operands, in any algebra with
+    + - * / (numbers, arrays, cvxpy expressions); None for every other node."""
+    if isinstance(e, Neg):
+        return -f(e.operand)
+    if isinstance(e, Add):
+        return f(e.left) + f(e.right)
+    if isinstance(e, Mul):
+        return f(e.left) * f(e.right)
+    if isinstance(e, Div):
+        return f(e.left) / f(e.right)
+    return None
+
+
 def children(e: TExpr) -> tuple[TExpr, ...]:
     """The direct subexpressions of a typed node (a score's expression and a custom loss's argument
     and body included), for the walks every later stage makes."""

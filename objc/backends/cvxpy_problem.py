@@ -347,14 +347,8 @@ class _Translator:
             return self.host.derived(e)
         if isinstance(e, tt.TunableRef):
             return self.host.tunable(e)
-        if isinstance(e, tt.Add):
-            return self.const(e.left) + self.const(e.right)
-        if isinstance(e, tt.Neg):
-            return -self.const(e.operand)
-        if isinstance(e, tt.Mul):
-            return self.const(e.left) * self.const(e.right)
-        if isinstance(e, tt.Div):
-            return self.const(e.left) / self.const(e.right)
+        if isinstance(e, (tt.Add, tt.Neg, tt.Mul, tt.Div)):
+            return tt.arithmetic(e, self.const)
         raise AssertionError(f"no constant translation for {type(e).__name__}")
 
     def product(self, e: tt.TExpr) -> Any:
@@ -1062,14 +1056,8 @@ class _EmitHost:
             return _name(self.emitter.kernel(entry))(*[self.numeric(a) for a in e.args], **self.options(e))
         if isinstance(e, tt.CustomLoss):
             return self.numeric(e.body)
-        if isinstance(e, tt.Add):
-            return self.numeric(e.left) + self.numeric(e.right)
-        if isinstance(e, tt.Neg):
-            return -self.numeric(e.operand)
-        if isinstance(e, tt.Mul):
-            return self.numeric(e.left) * self.numeric(e.right)
-        if isinstance(e, tt.Div):
-            return self.numeric(e.left) / self.numeric(e.right)
+        if isinstance(e, (tt.Add, tt.Neg, tt.Mul, tt.Div)):
+            return tt.arithmetic(e, self.numeric)
         if isinstance(e, tt.Aggregate) and e.over == "rows":
             total = self.weights @ self.numeric(e.operand)
             if e.kind == "perrow":
