@@ -698,6 +698,124 @@ def _k_ww_hinge_conj(V, y):
     return np.where(inside, np.sum(V * E, axis=1), np.inf)
 
 
+# ---- the multiclass hinges as the NumPy solver's hinge methods read them (smoothed Newton, dual coordinate
+# ascent): each hinge smoothed, and its conjugate's domain scaled by a row's factor rho (a dual row u with
+# u / rho in the domain). E holds the rows' one-hot classes, rho their factors.
+
+def _k_simplex_projection(v):
+    # the Euclidean projection of one vector onto {q >= 0, sum q = 1} by sorting (Held, Wolfe & Crowder 1974;
+    # Duchi, Shalev-Shwartz, Singer & Chandra 2008, 'Efficient projections onto the l1-ball', Fig. 1)
+    u = np.sort(v)[::-1]
+    css = np.cumsum(u) - 1.0
+    k = np.flatnonzero(u * np.arange(1, len(v) + 1) > css)[-1]
+    return np.maximum(v - css[k] / (k + 1), 0.0)
+
+
+def _k_simplex_rows(Z):
+    # each row of Z projected onto the probability simplex, all rows at once (the same sorting method)
+    n, K = Z.shape
+    desc = -np.sort(-Z, axis=1)
+    css = np.cumsum(desc, axis=1) - 1.0
+    last = K - 1 - np.argmax((desc * np.arange(1, K + 1) > css)[:, ::-1], axis=1)
+    return np.maximum(Z - (css[np.arange(n), last] / (last + 1))[:, None], 0.0)
+
+
+def _k_cs_hinge_smoothed(S, E, rho, mu, curvature=True):
+    # max_k (s_k + [k != y]) smoothed at temperature mu into mu log-sum-exp (Nesterov 2005, 'Smooth
+    # minimization of non-smooth functions'), at most mu log K above the hinge per unit of rho. Returns the
+    # weighted value; with `curvature` also the gradient U in the scores (its rows over rho lie in the
+    # conjugate's domain: U is a dual point of the unsmoothed goal), the per-row K x K Hessians and dU / dmu
+    K = S.shape[1]
+    A = (S + 1.0 - E) / mu
+    top = np.max(A, axis=1, keepdims=True)
+    ex = np.exp(A - top)
+    tot = np.sum(ex, axis=1, keepdims=True)
+    prob = ex / tot
+    value = mu * (top[:, 0] + np.log(tot[:, 0])) - np.sum(S * E, axis=1)
+    if not curvature:
+        return float(rho @ value)
+    U = rho[:, None] * (prob - E)
+    H = (rho / mu)[:, None, None] * (prob[:, :, None] * np.eye(K) - prob[:, :, None] * prob[:, None, :])
+    dU = -np.einsum("ikl,il->ik", H, A)  # d prob / d mu = -(diag prob - prob prob^T) A / mu, A scaled
+    return float(rho @ value), U, H, dU
+
+
+def _k_ww_hinge_smoothed(S, E, rho, mu, curvature=True):
+    # each max(0, a) of the Weston-Watkins hinge smoothed into mu softplus(a / mu) (Nesterov 2005), at most
+    # mu (K - 1) log 2 above the hinge per unit of rho; returns as _k_cs_hinge_smoothed does
+    K = S.shape[1]
+    margin = (1.0 + S - np.sum(S * E, axis=1, keepdims=True)) / mu
+    off = E == 0
+    value = mu * np.sum(np.where(off, np.logaddexp(0.0, margin), 0.0), axis=1)
+    if not curvature:
+        return float(rho @ value)
+    sig = np.where(off, 0.5 * (1.0 + np.tanh(0.5 * margin)), 0.0)  # the logistic function without overflow
+    V = sig - E * np.sum(sig, axis=1, keepdims=True)
+    U = rho[:, None] * V
+    curv = (rho / mu)[:, None] * sig * (1.0 - sig)  # per pair (i, k != y): the softplus's curvature
+    # d a_k = d s_k - d s_y for k != y: the Hessian is B^T diag(curv) B with B's rows e_k - e_y
+    H = curv[:, :, None] * np.eye(K)
+    tot = np.sum(curv, axis=1)
+    H -= E[:, :, None] * curv[:, None, :] + curv[:, :, None] * E[:, None, :]
+    H += (tot[:, None, None] * E[:, :, None] * E[:, None, :])
+    ca = np.where(off, curv * margin, 0.0)  # d sig / d mu = -sig (1 - sig) margin / mu
+    dU = -(ca - E * np.sum(ca, axis=1, keepdims=True))
+    return float(rho @ value), U, H, dU
+
+
+def _k_cs_hinge_dual_row(z, y, r):
+    # the Euclidean projection of one row's vector z onto r times the domain {v : v + e_y in the simplex}
+    q = np.asarray(z, dtype=float) / r
+    q[y] += 1.0
+    q = _k_simplex_projection(q)
+    q[y] -= 1.0
+    return r * q
+
+
+def _k_ww_hinge_dual_row(z, y, r):
+    # the Euclidean projection onto r times the domain {0 <= u_k <= 1 (k != y), u_y = -sum_{k != y} u_k}:
+    # u_k = clip(z_k - lam, 0, r) with lam = z_y + sum_{k != y} u_k, a monotone piecewise linear equation in
+    # lam, solved exactly between its sorted breakpoints
+    others = np.delete(z, y)
+    bps = np.sort(np.concatenate([others, others - r]))
+    h = bps - z[y] - np.sum(np.clip(others[None, :] - bps[:, None], 0.0, r), axis=1)
+    j = int(np.searchsorted(h, 0.0))
+    if j == 0:
+        lam = z[y] + len(others) * r
+    elif j == len(bps):
+        lam = z[y]
+    else:
+        lam = bps[j - 1] - h[j - 1] * (bps[j] - bps[j - 1]) / (h[j] - h[j - 1])
+    u_o = np.clip(others - lam, 0.0, r)
+    return np.insert(u_o, y, -np.sum(u_o))
+
+
+def _k_cs_hinge_dual_inside(U, E, rho):
+    # a point of the domain (scaled by rho) for every row at once: each row's projection
+    r = np.where(rho > 0, rho, 1.0)[:, None]
+    return rho[:, None] * (_k_simplex_rows(U / r + E) - E)
+
+
+def _k_ww_hinge_dual_inside(U, E, rho):
+    # a point of the domain (scaled by rho) for every row at once: the entries off the row's class clipped into
+    # [0, rho], the class's own entry their negated sum
+    off_part = np.clip(np.where(E > 0, 0.0, U), 0.0, rho[:, None])
+    return off_part - E * np.sum(off_part, axis=1, keepdims=True)
+
+
+def _k_cs_hinge_dual_room(U, E, rho):
+    # how far each row's dual vector may grow, u -> (1 + f) u with 0 <= f <= room, staying in the scaled
+    # domain: q_y = 1 + u_y / rho must stay >= 0, and the other entries sum to 1 - q_y
+    qy = 1.0 + np.sum(U * E, axis=1) / np.where(rho > 0, rho, 1.0)
+    return np.where(qy < 1.0, qy / np.maximum(1.0 - qy, 1e-300), 0.0)
+
+
+def _k_ww_hinge_dual_room(U, E, rho):
+    # the same for the Weston-Watkins domain: the largest entry off the row's class may reach rho
+    mag = np.max(np.where(E > 0, 0.0, U), axis=1)
+    return np.where(mag > 0, rho / np.where(mag > 0, mag, 1.0) - 1.0, 0.0)
+
+
 def _k_inputs_l2_prox(W, g):
     # each input's row of W shrunk toward 0 by g in its own L2 norm (the group soft threshold)
     W = np.asarray(W, dtype=float)

@@ -29,17 +29,31 @@ try:  # optional: SciPy's NNLS balances a hinge's dual point when scaling rows b
 except ImportError:  # pragma: no cover
     _scipy_optimize = None
 
-from objc.catalog import (_k_cs_hinge_conj, _k_cs_hinge_d, _k_inputs_l2_conj, _k_inputs_l2_prox, _k_l1_prox,
-                          _k_mc_cs_hinge, _k_mc_onehot, _k_mc_probabilities, _k_mc_ww_hinge,
-                          _k_softmax_ce_conj, _k_softmax_ce_vd, _k_ww_hinge_conj, _k_ww_hinge_d)
+from objc.catalog import (_k_cs_hinge_conj, _k_cs_hinge_d, _k_cs_hinge_dual_inside, _k_cs_hinge_dual_room,
+                          _k_cs_hinge_dual_row, _k_cs_hinge_smoothed, _k_inputs_l2_conj, _k_inputs_l2_prox, _k_l1_prox,
+                          _k_mc_cs_hinge, _k_mc_onehot, _k_mc_probabilities, _k_mc_ww_hinge, _k_softmax_ce_conj,
+                          _k_softmax_ce_vd, _k_ww_hinge_conj, _k_ww_hinge_d, _k_ww_hinge_dual_inside,
+                          _k_ww_hinge_dual_room, _k_ww_hinge_dual_row, _k_ww_hinge_smoothed)
 
-# the catalog kernels this file calls (the emitter must paste them with it)
-MULTICLASS_KERNELS = ("_k_mc_picked", "_k_mc_onehot", "_k_mc_cs_hinge", "_k_mc_ww_hinge",
-                      "_k_mc_probabilities", "_k_softmax_ce_vd", "_k_softmax_ce_conj", "_k_cs_hinge_d",
-                      "_k_cs_hinge_conj", "_k_ww_hinge_d", "_k_ww_hinge_conj", "_k_l1_prox", "_k_inputs_l2_prox",
-                      "_k_inputs_l2_conj")
-
-_MC_LOSSES = ("softmax_ce", "cs_hinge", "ww_hinge")
+# each loss's math as the catalog's kernels give it (the emitter pastes every kernel this file names): per-row
+# values with (sub)gradients, the conjugate; for the hinges their smoothing and their dual domain (scaled by a
+# row's rho): one row's projection onto it, a point in it for every row, and each row's room to grow in it.
+# What still reads a loss by its name chooses a method: L-BFGS with the exact intercept for the smooth loss,
+# and the active-set face of `_mc_face_candidate`, which is each hinge's optimality conditions
+_MC_LOSS_KERNELS = {
+    "softmax_ce": {"values and gradients": _k_softmax_ce_vd, "conjugate": _k_softmax_ce_conj},
+    "cs_hinge": {"values and gradients": lambda S, y: (_k_mc_cs_hinge(S, y), _k_cs_hinge_d(S, y)),
+                 "conjugate": _k_cs_hinge_conj},
+    "ww_hinge": {"values and gradients": lambda S, y: (_k_mc_ww_hinge(S, y), _k_ww_hinge_d(S, y)),
+                 "conjugate": _k_ww_hinge_conj},
+}
+_MC_HINGES = {
+    "cs_hinge": {"smoothed": _k_cs_hinge_smoothed, "dual_row": _k_cs_hinge_dual_row,
+                 "dual_inside": _k_cs_hinge_dual_inside, "dual_room": _k_cs_hinge_dual_room},
+    "ww_hinge": {"smoothed": _k_ww_hinge_smoothed, "dual_row": _k_ww_hinge_dual_row,
+                 "dual_inside": _k_ww_hinge_dual_inside, "dual_room": _k_ww_hinge_dual_room},
+}
+_MC_LOSSES = tuple(_MC_LOSS_KERNELS)
 _MC_PENALTIES = ("l2sq", "l1", "inputs_l2")
 
 
@@ -212,19 +226,11 @@ def _mc_start(d, theta0):
 
 def _mc_loss_vd(loss, S, y):
     """Per-row values and (sub)gradients in the scores; the gradient rows lie in the conjugate's domain."""
-    if loss == "softmax_ce":
-        return _k_softmax_ce_vd(S, y)
-    if loss == "cs_hinge":
-        return _k_mc_cs_hinge(S, y), _k_cs_hinge_d(S, y)
-    return _k_mc_ww_hinge(S, y), _k_ww_hinge_d(S, y)
+    return _MC_LOSS_KERNELS[loss]["values and gradients"](S, y)
 
 
 def _mc_loss_conj(loss, V, y):
-    if loss == "softmax_ce":
-        return _k_softmax_ce_conj(V, y)
-    if loss == "cs_hinge":
-        return _k_cs_hinge_conj(V, y)
-    return _k_ww_hinge_conj(V, y)
+    return _MC_LOSS_KERNELS[loss]["conjugate"](V, y)
 
 
 def _mc_penalty(coef, W):
@@ -560,33 +566,6 @@ def _mc_fista(d, loss, coef, W, c, tol, budget):
 
 # ---------------------------------------------------------------- multiclass hinges + l2sq: dual coordinate ascent
 
-def _mc_simplex_projection(v):
-    """Euclidean projection onto {q >= 0, sum q = 1} by sorting (Held, Wolfe & Crowder 1974; Duchi,
-    Shalev-Shwartz, Singer & Chandra 2008, Fig. 1)."""
-    u = np.sort(v)[::-1]
-    css = np.cumsum(u) - 1.0
-    k = np.flatnonzero(u * np.arange(1, len(v) + 1) > css)[-1]
-    return np.maximum(v - css[k] / (k + 1), 0.0)
-
-
-def _mc_box_sum_projection(z, yi, r):
-    """Projection onto {u : 0 <= u_k <= r for k != y, u_y = -sum_{k != y} u_k} (the Weston-Watkins dual row
-    scaled by rho = r): u_k = clip(z_k - lam, 0, r) with lam = z_y + sum_{k != y} u_k, a monotone piecewise
-    linear equation in lam, solved exactly between its sorted breakpoints."""
-    others = np.delete(z, yi)
-    bps = np.sort(np.concatenate([others, others - r]))
-    h = bps - z[yi] - np.sum(np.clip(others[None, :] - bps[:, None], 0.0, r), axis=1)
-    j = int(np.searchsorted(h, 0.0))
-    if j == 0:
-        lam = z[yi] + len(others) * r
-    elif j == len(bps):
-        lam = z[yi]
-    else:
-        lam = bps[j - 1] - h[j - 1] * (bps[j] - bps[j - 1]) / (h[j] - h[j - 1])
-    u_o = np.clip(others - lam, 0.0, r)
-    return np.insert(u_o, yi, -np.sum(u_o))
-
-
 def _mc_dense_rows(d, rows):
     Xr = d.X[rows]
     Xr = Xr.toarray() if d.sparse else Xr
@@ -602,11 +581,7 @@ def _mc_balance(d, loss, U):
         return U, np.zeros(0, dtype=np.intp)
     pos = d.rho > 0
     mag = np.max(np.where(d.E > 0, 0.0, U), axis=1)  # the largest entry off the row's own class (all >= 0)
-    if loss == "cs_hinge":
-        qy = 1.0 + np.sum(U * d.E, axis=1) / np.where(pos, d.rho, 1.0)
-        room = np.where(qy < 1.0, qy / np.maximum(1.0 - qy, 1e-300), 0.0)
-    else:
-        room = np.where(mag > 0, d.rho / np.where(mag > 0, mag, 1.0) - 1.0, 0.0)
+    room = _MC_HINGES[loss]["dual_room"](U, d.E, d.rho)
     ok = lambda M, f: (np.max(np.abs(M @ f + r)) <= 1e-9 * max(1.0, float(np.max(np.abs(r))))  # noqa: E731
                        and not np.any(f < -1.0) and not np.any(f > room[rows]))
     rows = np.flatnonzero(pos & (mag > 0) & (room > 1e-6))
@@ -655,6 +630,7 @@ def _mc_dual_cd(d, loss, c2, tol, budget, seed=0, block=256):
     9e-4, measured), where this method still certifies; on tables whose optimum has most rows at a kink it
     stalls and Newton's answer stands."""
     rng = np.random.default_rng(seed)
+    dual_row = _MC_HINGES[loss]["dual_row"]
     n, K = d.n, d.K
     U = np.zeros((n, K))
     W = np.zeros((d.p, K))
@@ -696,15 +672,7 @@ def _mc_dual_cd(d, loss, c2, tol, budget, seed=0, block=256):
                     z = u + g / A
                 else:  # an empty row: the dual is linear in it, so the best vertex
                     z = u + g * 1e300
-                if loss == "cs_hinge":
-                    r = d.rho[i]
-                    z = z / r
-                    z[yi] += 1.0
-                    qv = _mc_simplex_projection(z)
-                    qv[yi] -= 1.0
-                    new = r * qv
-                else:
-                    new = _mc_box_sum_projection(z, yi, d.rho[i])
+                new = dual_row(z, yi, d.rho[i])
                 delta = new - u
                 if np.any(delta != 0.0):
                     Ub[j] = new
@@ -744,56 +712,6 @@ def _mc_dual_cd(d, loss, c2, tol, budget, seed=0, block=256):
 
 
 # ---------------------------------------------------------------- multiclass hinges + l2sq: smoothed Newton
-
-def _mc_simplex_rows(Z):
-    """Each row of Z projected onto the probability simplex, all rows at once (the sorting method of Duchi,
-    Shalev-Shwartz, Singer & Chandra 2008, 'Efficient projections onto the l1-ball')."""
-    n, K = Z.shape
-    desc = -np.sort(-Z, axis=1)
-    css = np.cumsum(desc, axis=1) - 1.0
-    last = K - 1 - np.argmax((desc * np.arange(1, K + 1) > css)[:, ::-1], axis=1)
-    return np.maximum(Z - (css[np.arange(n), last] / (last + 1))[:, None], 0.0)
-
-
-def _mc_smoothed_hinge(loss, S, E, rho, mu, curvature=True):
-    """The hinge smoothed at temperature mu (Nesterov 2005, 'Smooth minimization of non-smooth functions':
-    each max becomes mu log-sum-exp, each max(0, a) becomes mu softplus(a / mu)): the weighted value, the
-    gradient U in the scores (its rows divided by rho lie in the conjugate's domain, so U is a dual point of
-    the unsmoothed goal) and the per-row K x K Hessians. The smoothed value exceeds the true one by at most
-    mu log K (cs_hinge) or mu (K - 1) log 2 (ww_hinge) per unit of rho; the solver's answer is always judged
-    on the true objective."""
-    n, K = S.shape
-    if loss == "cs_hinge":
-        A = (S + 1.0 - E) / mu
-        top = np.max(A, axis=1, keepdims=True)
-        ex = np.exp(A - top)
-        tot = np.sum(ex, axis=1, keepdims=True)
-        prob = ex / tot
-        value = mu * (top[:, 0] + np.log(tot[:, 0])) - np.sum(S * E, axis=1)
-        if not curvature:
-            return float(rho @ value)
-        U = rho[:, None] * (prob - E)
-        H = (rho / mu)[:, None, None] * (prob[:, :, None] * np.eye(K) - prob[:, :, None] * prob[:, None, :])
-        dU = -np.einsum("ikl,il->ik", H, A)  # d prob / d mu = -(diag prob - prob prob^T) A / mu, A scaled
-        return float(rho @ value), U, H, dU
-    margin = (1.0 + S - np.sum(S * E, axis=1, keepdims=True)) / mu
-    off = E == 0
-    value = mu * np.sum(np.where(off, np.logaddexp(0.0, margin), 0.0), axis=1)
-    if not curvature:
-        return float(rho @ value)
-    sig = np.where(off, 0.5 * (1.0 + np.tanh(0.5 * margin)), 0.0)  # the logistic function without overflow
-    V = sig - E * np.sum(sig, axis=1, keepdims=True)
-    U = rho[:, None] * V
-    curv = (rho / mu)[:, None] * sig * (1.0 - sig)  # per pair (i, k != y): the softplus's curvature
-    # d a_k = d s_k - d s_y for k != y: the Hessian is B^T diag(curv) B with B's rows e_k - e_y
-    H = curv[:, :, None] * np.eye(K)
-    tot = np.sum(curv, axis=1)
-    H -= E[:, :, None] * curv[:, None, :] + curv[:, :, None] * E[:, None, :]
-    H += (tot[:, None, None] * E[:, :, None] * E[:, None, :])
-    ca = np.where(off, curv * margin, 0.0)  # d sig / d mu = -sig (1 - sig) margin / mu
-    dU = -(ca - E * np.sum(ca, axis=1, keepdims=True))
-    return float(rho @ value), U, H, dU
-
 
 def _mc_weighted_gram(d, H, rows, keep, ones=False):
     """sum_i (x_i x_i^T) (kron) H_i over the given rows, as a (K p) x (K p) matrix indexed (class, input), one
@@ -940,13 +858,7 @@ def _mc_face_candidate(d, loss, c2, U, S, mu, rounds=12):
             free[rows[below | above], cls[below | above]] = False
             upper[rows[above], cls[above]] = True
     W_face = -d.back(U) / (2.0 * c2)
-    if loss == "cs_hinge":
-        r = np.where(live, rho, 1.0)[:, None]
-        U = rho[:, None] * (_mc_simplex_rows(U / r + d.E) - d.E)
-    else:
-        off_part = np.clip(np.where(d.E > 0, 0.0, U), 0.0, rho[:, None])
-        U = off_part - d.E * np.sum(off_part, axis=1, keepdims=True)
-    return W_face, U, (np.zeros(K) if c is None else c)
+    return W_face, _MC_HINGES[loss]["dual_inside"](U, d.E, rho), (np.zeros(K) if c is None else c)
 
 
 def _mc_hinge_newton(d, loss, c2, tol, budget, mu0=1.0, shrink=10.0):
@@ -967,6 +879,7 @@ def _mc_hinge_newton(d, loss, c2, tol, budget, mu0=1.0, shrink=10.0):
     certifies, which costs a third pass, and the exact face's solve balances it too (`_mc_face_solve`).
     Returns ((P, gap, W, c), steps, status)."""
     K, p = d.K, d.p
+    smoothed = _MC_HINGES[loss]["smoothed"]
     q = p + 1 if d.intercept else p  # unknowns per class: the inputs, and the intercept's entry
     W, c = np.zeros((p, K)), np.zeros(K)
     S = d.scores(W, c) if d.intercept else np.zeros((d.n, K))
@@ -993,7 +906,7 @@ def _mc_hinge_newton(d, loss, c2, tol, budget, mu0=1.0, shrink=10.0):
     best = None  # (P, gap, W, c)
     steps = 0
     while d.passes < budget:
-        Fs, U, H, dU = _mc_smoothed_hinge(loss, S, d.E, d.rho, mu)
+        Fs, U, H, dU = smoothed(S, d.E, d.rho, mu)
         XtU = d.back(U)
         grad = stacked(XtU + 2.0 * c2 * W, np.sum(U, axis=0))
         F = Fs + c2 * float(np.sum(W * W))
@@ -1029,7 +942,7 @@ def _mc_hinge_newton(d, loss, c2, tol, budget, mu0=1.0, shrink=10.0):
         t = 1.0
         while True:  # backtracking (Armijo) along the scores, which are linear in t: no pass per trial
             Wt = W + t * Dir
-            Ft = _mc_smoothed_hinge(loss, S + t * XD, d.E, d.rho, mu, False) + c2 * float(np.sum(Wt * Wt))
+            Ft = smoothed(S + t * XD, d.E, d.rho, mu, False) + c2 * float(np.sum(Wt * Wt))
             if Ft <= F - 0.25 * t * decrement or t < 1e-10:
                 break
             t *= 0.5
@@ -1056,12 +969,12 @@ def _mc_hinge_newton(d, loss, c2, tol, budget, mu0=1.0, shrink=10.0):
             # the predictor: the smoothed minimizer moves along dW/dmu = -Hess^-1 X^T dU/dmu (the tangent of the
             # path, from the last Hessian), which for a piecewise-linear loss is nearly straight at small mu
             new_mu = mu / shrink
-            dU2 = _mc_smoothed_hinge(loss, S, d.E, d.rho, mu)[3]
+            dU2 = smoothed(S, d.E, d.rho, mu)[3]
             tW, tc = split(-solve(stacked(d.back(dU2), np.sum(dU2, axis=0))[free]))
             Wp, cp = W + (new_mu - mu) * tW, c + (new_mu - mu) * tc
             Sp = d.scores(Wp, cp)
-            if _mc_smoothed_hinge(loss, Sp, d.E, d.rho, new_mu, False) + c2 * float(np.sum(Wp * Wp)) < \
-                    _mc_smoothed_hinge(loss, S, d.E, d.rho, new_mu, False) + c2 * float(np.sum(W * W)):
+            if smoothed(Sp, d.E, d.rho, new_mu, False) + c2 * float(np.sum(Wp * Wp)) < \
+                    smoothed(S, d.E, d.rho, new_mu, False) + c2 * float(np.sum(W * W)):
                 W, c, S = Wp, cp, Sp
             mu = new_mu
             if mu < 1e-14:  # below this the smoothing is lost in the rounding of the scores

@@ -5,6 +5,7 @@ minimize the same objectives up to scaling, and cvxpy + Clarabel on the same pro
 and digits tables shipped inside scikit-learn, standardized.
 """
 
+import math
 import warnings
 
 import numpy as np
@@ -12,6 +13,7 @@ import pytest
 
 from objc.backends.numpy_multiclass_src import (multiclass_gap, multiclass_scores, softmax_probabilities,
                                                  solve_multiclass)
+from objc import catalog
 from objc.catalog import _k_mc_cs_hinge, _k_mc_softmax_ce, _k_mc_ww_hinge
 
 sklearn = pytest.importorskip("sklearn")
@@ -243,3 +245,80 @@ def test_bad_input_is_refused_with_a_clear_message(change, needle):
     args.update(change)
     with pytest.raises(ValueError, match=needle):
         solve_multiclass(**args)
+
+
+# ---------------------------------------------------------------- the hinges' kernels the hinge methods read
+
+HINGE_KERNELS = {"cs_hinge": (_k_mc_cs_hinge, catalog._k_cs_hinge_conj),
+                 "ww_hinge": (_k_mc_ww_hinge, catalog._k_ww_hinge_conj)}
+
+
+def _scores(seed, n=40, K=4):
+    rng = np.random.default_rng(seed)
+    S = rng.normal(scale=1.5, size=(n, K))
+    y = rng.integers(0, K, size=n)
+    return S, y, catalog._k_mc_onehot(y, K), rng.uniform(0.2, 2.0, size=n)
+
+
+@pytest.mark.parametrize("mu", [1.0, 0.1, 0.01])
+@pytest.mark.parametrize("loss", ["cs_hinge", "ww_hinge"])
+def test_smoothed_hinges_bound_the_hinge_and_match_their_derivatives(loss, mu):
+    S, y, E, rho = _scores(3)
+    K = S.shape[1]
+    smoothed = getattr(catalog, f"_k_{loss}_smoothed")
+    value, U, H, dU = smoothed(S, E, rho, mu)
+    true = float(rho @ HINGE_KERNELS[loss][0](S, y))
+    # max <= mu log-sum-exp(./mu) <= max + mu log K, and max(0, a) <= mu softplus(a / mu) <= max(0, a) + mu log 2
+    # (Nesterov 2005, 'Smooth minimization of non-smooth functions', sec. 4): per unit of rho
+    slack = mu * (math.log(K) if loss == "cs_hinge" else (K - 1) * math.log(2.0)) * float(np.sum(rho))
+    assert true - 1e-9 <= value <= true + slack + 1e-9
+    assert value == pytest.approx(smoothed(S, E, rho, mu, False), rel=1e-15)
+    # U, H and dU/dmu against central differences of the value, of U, and in mu
+    h = 1e-6 * mu
+    for i, k in [(0, 0), (5, 2), (17, 3), (33, 1)]:
+        step = np.zeros_like(S)
+        step[i, k] = h
+        up, down = smoothed(S + step, E, rho, mu), smoothed(S - step, E, rho, mu)
+        assert (up[0] - down[0]) / (2 * h) == pytest.approx(U[i, k], abs=1e-6 * max(1.0, rho[i]))
+        assert np.allclose((up[1][i] - down[1][i]) / (2 * h), H[i, :, k], atol=1e-5 * rho[i] / mu)
+    dmu = 1e-6 * mu
+    fd = (smoothed(S, E, rho, mu + dmu)[1] - smoothed(S, E, rho, mu - dmu)[1]) / (2 * dmu)
+    assert np.allclose(fd, dU, atol=1e-4 * np.max(rho) / mu)
+    # U is a dual point of the unsmoothed hinge: every row of U / rho lies in the conjugate's domain
+    assert np.all(np.isfinite(HINGE_KERNELS[loss][1](U / rho[:, None], y)))
+
+
+@pytest.mark.parametrize("loss", ["cs_hinge", "ww_hinge"])
+def test_dual_row_is_the_projection_onto_the_scaled_domain(loss):
+    # reference: the same Euclidean projection solved by cvxpy + Clarabel
+    cp = pytest.importorskip("cvxpy")
+    rng = np.random.default_rng(8)
+    kernel = getattr(catalog, f"_k_{loss}_dual_row")
+    for trial in range(6):
+        K = 3 + trial % 3
+        z, yi, r = rng.normal(scale=2.0, size=K), int(rng.integers(0, K)), float(rng.uniform(0.3, 3.0))
+        u = cp.Variable(K)
+        others = [k for k in range(K) if k != yi]
+        if loss == "cs_hinge":  # u / r + e_y in the simplex
+            e = np.eye(K)[yi]
+            cons = [u / r + e >= 0, cp.sum(u / r + e) == 1]
+        else:  # 0 <= u_k <= r off the class, u_y = -sum of the others
+            cons = [u[others] >= 0, u[others] <= r, u[yi] == -cp.sum(u[others])]
+        cp.Problem(cp.Minimize(cp.sum_squares(u - z)), cons).solve(solver="CLARABEL")
+        assert np.max(np.abs(kernel(z.copy(), yi, r) - u.value)) <= 1e-6, (loss, trial)
+
+
+@pytest.mark.parametrize("loss", ["cs_hinge", "ww_hinge"])
+def test_dual_inside_lands_in_the_domain_and_room_reaches_its_edge(loss):
+    S, y, E, rho = _scores(5)
+    conj = HINGE_KERNELS[loss][1]
+    rng = np.random.default_rng(6)
+    U = getattr(catalog, f"_k_{loss}_dual_inside")(rng.normal(size=S.shape), E, rho)
+    assert np.all(np.isfinite(conj(U / rho[:, None], y)))
+    room = getattr(catalog, f"_k_{loss}_dual_room")(U, E, rho)
+    grows = room > 1e-6
+    assert np.any(grows)
+    # scaled by 1 + room a row stays in its domain; a little further it leaves it
+    edge, beyond = U * (1.0 + room)[:, None], U * (1.0 + room + 1e-3)[:, None]
+    assert np.all(np.isfinite(conj(edge / rho[:, None], y)))
+    assert np.all(np.isinf(conj(beyond[grows] / rho[grows, None], y[grows])))
