@@ -601,6 +601,11 @@ class _Resolver:
             self.error("E233", "only a weight vector over the inputs (e.g. w) or x can be indexed by input names",
                        e.span)
             return bad
+        if isinstance(base, tt.ParamRef) and base.shape.kind in ("weights", "classes"):
+            self.error("E256", f"'{base.name}' is learned by classes: selecting its entries by name is not supported",
+                       e.span, hint=f"penalize or bound the whole parameter ({base.name} as it is: l2sq({base.name}), "
+                                    f"l1({base.name}), inputs_l2({base.name}), keep {base.name} >= 0)")
+            return bad
         names: list[str] = []
         explicit = self.table.explicit_inputs() if self.table else None
         for key in e.keys:

@@ -107,6 +107,11 @@ CASES = [
      "E222", GOAL_LINE, 31, "b", ["one variable", "'b'"]),
     ("selecting an unknown input", HEADER + "goal l1(w[a, d])\n",
      "E234", GOAL_LINE, 9, "w[a, d]", ["'d' is not one of the inputs"]),
+    ("selecting inputs of a parameter learned by classes",
+     HEADER.replace("  target label: yes -> +1, no -> -1\n", "  target kind classes p, q, r\n")
+     .replace("learn w over inputs, b\nscore s = w . x + b\n", "learn W over inputs by classes\nscore s = W . x\n")
+     + "goal mean softmax_ce(s, y) + l1(W[a])\n",
+     "E256", GOAL_LINE, 33, "W[a]", ["learned by classes", "l1(W)"]),
     ("group_l2 without groups", HEADER + "goal group_l2(w)\n",
      "E242", GOAL_LINE, 6, "group_l2(w)", ["declares no `group`"]),
     ("table clause without a table", "inputs a, b\nlearn w over inputs\ngoal l2sq(w)\n",
