@@ -7,6 +7,7 @@ arguments.
 """
 
 import math
+import re
 import sys
 
 import numpy as np
@@ -445,16 +446,38 @@ def _read_csv(path):
     return header, columns, len(body)
 
 
+# A cell is a number exactly where objc's table reader reads one (pandas.read_csv's inference, then
+# pandas.to_numeric for a column with text in it, objc/tables.py): ASCII decimal notation with an optional sign
+# and exponent, or inf / infinity in any case, ASCII blanks around it allowed; a column whose every cell (but the
+# missing ones) is true or false in any case reads as 1 and 0. Python's float() takes more, which pandas reads
+# as text: digit underscores, non-ASCII digits, every spelling of nan. Checked against objc's reader cell by cell
+# (tests/backends/test_numpy_estimator_src.py).
+_NUMBER_CELL = re.compile(r"[ \t\n\r\f\v]*[+-]?(?:(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?|(?i:inf(?:inity)?))"
+                          r"[ \t\n\r\f\v]*")
+_BOOLEAN_CELLS = {"true": 1.0, "false": 0.0}
+
+
+def _column_numbers(cells):
+    """(the cells as float64, missing ones NaN; the 0-based rows whose cells are text): objc's reading."""
+    values = np.full(len(cells), np.nan)
+    present = [i for i, cell in enumerate(cells) if cell not in _MISSING_CELLS]
+    if present and all(cells[i].lower() in _BOOLEAN_CELLS for i in present):
+        for i in present:
+            values[i] = _BOOLEAN_CELLS[cells[i].lower()]
+        return values, []
+    text = []
+    for i in present:
+        if _NUMBER_CELL.fullmatch(cells[i]):
+            values[i] = float(cells[i])
+        else:
+            text.append(i)
+    return values, text
+
+
 def _numeric(path, name, cells):
-    values = np.empty(len(cells))
-    for i, cell in enumerate(cells):
-        if cell in _MISSING_CELLS:
-            values[i] = np.nan
-            continue
-        try:
-            values[i] = float(cell)
-        except ValueError:
-            raise TableError(f"{path}: data row {i + 1}, column {name!r}: {cell!r} is not a number") from None
+    values, text = _column_numbers(cells)
+    if text:
+        raise TableError(f"{path}: data row {text[0] + 1}, column {name!r}: {cells[text[0]]!r} is not a number")
     return values  # an infinite value is treated as a missing one, by the spec's `missing` rule, as objc does
 
 
@@ -465,11 +488,17 @@ def _select_inputs(table, header, numeric, fail):
     line and of its estimator given a DataFrame."""
     import fnmatch
     reserved = {c for c in (table["target"], table["row_weight"]) if c is not None}
+    for text in table["excluded"]:
+        if text not in header:
+            fail(f"excluded column {text!r} is not in the table")
     chosen = []
     for kind, text in table["inputs"]:
         if kind == "column":
             if text not in header:
                 fail(f"input column {text!r} is not in the table")
+            if text in reserved:
+                role = "target" if text == table["target"] else "row-weight column"
+                fail(f"{text!r} is the {role}; it cannot also be an input")
             chosen.append(text)
         elif kind == "pattern":
             matched = [c for c in header if fnmatch.fnmatchcase(c, text) and c not in reserved]
@@ -483,11 +512,11 @@ def _select_inputs(table, header, numeric, fail):
 
 def _choose_inputs(path, table, header, columns):
     def numbers_only(name):
-        try:
-            [float(v) for v in columns[name] if v not in _MISSING_CELLS]
-        except ValueError:
-            return False
-        return True
+        # objc's `all`: a numeric column, or one of numbers with a few stray text cells (more finite numbers
+        # than text), which is then refused for its text rather than silently left out
+        values, text = _column_numbers(columns[name])
+        finite = int(np.count_nonzero(np.isfinite(values)))
+        return not text or finite > len(text)
 
     def fail(message):
         raise TableError(f"{path}: {message}")
@@ -520,10 +549,7 @@ def _target_values(path, table, columns):
 
 
 def _same_number(cell, value):
-    try:
-        return float(cell) == float(value)
-    except ValueError:
-        return False
+    return bool(_NUMBER_CELL.fullmatch(cell)) and float(cell) == float(value)
 
 
 def load_table(path):

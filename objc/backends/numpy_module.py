@@ -993,6 +993,7 @@ def _layout(node: ast.expr, depth: int, width: int = 100) -> str:
 
 _IMPORTS = '''
 import math
+import re
 import sys
 import numpy as np
 try:
@@ -1354,7 +1355,7 @@ def _emit_multiclass(checked: CheckedObjective, runtime: Runtime = "inline") -> 
     maps = (_mc_map_copies() if checked.spec.table.maps else []) + _scaling_copies(multiclass=True)
     out = _Assembly()
     out.nodes([ast.Expr(ast.Constant(header))] + ast.parse(
-        "import math\nimport sys\nimport numpy as np\n"
+        "import math\nimport re\nimport sys\nimport numpy as np\n"
         "try:  # optional: SciPy's NNLS balances a hinge's dual point\n"
         "    import scipy.optimize as _scipy_optimize\n"
         "except ImportError:  # pragma: no cover\n"

@@ -127,10 +127,6 @@ def _objc_refuses(tmp_path, text):
     pytest.param("inputs all except idd", "", None, id="misspelled-except"),
     pytest.param("inputs all except id", "", "n.a.", id="stray-text-under-all"),
 ])
-@pytest.mark.xfail(strict=True, reason="the generated module's input selection (_select_inputs / _choose_inputs) "
-                   "trains on a table objc refuses to bind: a target or row-weight column named as an input "
-                   "(objc: T113), an `except` column the table lacks (T110), a mostly numeric column with a stray "
-                   "text cell under `all` (objc picks it and reports T112, the module silently leaves it out)")
 def test_the_module_refuses_the_input_choices_objc_refuses(tmp_path, use_spec, inputs, clauses, cell):
     rows = _table_rows()
     if cell is not None:
@@ -181,16 +177,38 @@ def test_names_lose_a_byte_order_mark_and_blanks_and_cells_keep_theirs(tmp_path)
 
 
 @pytest.mark.parametrize("cell", ["1_000", "\u0663", "NAN", "+nan", "nAn"])
-@pytest.mark.xfail(strict=True, reason="the generated module reads a cell with Python's float(), which takes digit "
-                   "underscores (PEP 515), non-ASCII digits and any spelling of nan; objc's table reader (pandas) "
-                   "reads such a cell as text and refuses the column (T112), so the module trains on a table objc "
-                   "refuses (and drops a 'NAN' row as missing)")
 def test_the_module_reads_a_number_only_where_objc_does(tmp_path, cell):
     path = write_csv(tmp_path / "t.csv", ["k", "v"], [[1, "2.5"], [2, cell]])
     table = read_table(path, span=Span(1, 1, 1, 2), source_name="t.objc")
     assert table["v"].dtype == object and table["v"][1] == cell  # objc: text, not a number
     with pytest.raises(TableError, match="is not a number"):
         estimator_src._numeric(str(path), "v", ["2.5", cell])
+
+
+# cells a table may hold where a number is meant, and near misses: decimal spellings, signs, exponents,
+# blanks, infinities, nan spellings on and off the missing list, digit underscores, non-ASCII digits,
+# thousands separators, booleans
+CELL_CORPUS = ["1", "1.0", " 1", "1 ", "\t2\t", "+1", "-1", "-0", "0001", "00.1", "1e5", "1E+05", "1.e5", ".5", "5.", "-.5",
+               "+.5e-3", "1e0001", "1e500", "-1e500", "1e-500", "1.5e3 ", "inf", "-inf", "+inf", "Inf", "iNf", "INF",
+               "infinity", "-Infinity", "+INFINITY", "infinit", "nan", "NaN", "-nan", "-NaN", "NAN", "+nan", "nAn", "Nan",
+               "1_000", "\u0663", "\uff11", "\u00a01", "1,000", "1 000", "0x10", "1e", "e5", "--1", "1.2.3", "1e5.5",
+               "+.e5", "1d5", "3j", "+", "-", ".", " ", "NA", "None", "true", "True", "FALSE"]
+
+
+@pytest.mark.parametrize("cells", [["2.5", c] for c in CELL_CORPUS] + [["True", "false"], ["tRUE", "NA", "False"],
+                                                                      ["True", "1"], ["NA", "NA"]], ids=repr)
+def test_the_module_reads_each_cell_as_objc_does(tmp_path, cells):
+    # reference: objc's table reader (pandas.read_csv's inference, then pandas.to_numeric on a column with text)
+    import csv
+    from objc.tables import _as_float
+    path = tmp_path / "t.csv"
+    with open(path, "w", newline="", encoding="utf-8") as f:
+        csv.writer(f, quoting=csv.QUOTE_ALL).writerows([["k", "v"]] + [[str(i), c] for i, c in enumerate(cells)])
+    objc_values, objc_text = _as_float(read_table(path, span=Span(1, 1, 1, 2), source_name="t.objc")["v"])
+    _header, columns, _n = estimator_src._read_csv(str(path))
+    values, text = estimator_src._column_numbers(columns["v"])
+    assert list(text) == list(objc_text)
+    np.testing.assert_array_equal(values, objc_values)
 
 
 # ---------------------------------------------------------------- the target
