@@ -52,7 +52,7 @@ stage is reported together.
 | T163 | a `onehot` column holds one category only on the training rows |
 | T164 | a `onehot` column holds a category not seen in training (under `unseen fail`, the default) |
 | T165 | the knots of a `spline` collapse on the training rows (two meet, or one sits at an end of the column) |
-| T166 | a feature map makes an input whose name is already a column or an input |
+| T166 | a feature map makes an input whose name is already a column or an input, or one a saved model would read back as another category or knot (docs/language.md, section 6a) |
 | T170 | a holdout fraction outside (0, 1), or one that leaves a part empty |
 | T171 | the training part of a holdout split holds only one class |
 | T190 | (warning) `all` passed over non-numeric columns |
@@ -502,12 +502,31 @@ def map_fit(m: dict, cols) -> dict:
     return {}
 
 
-def map_state_from_names(m: dict, names) -> dict:
-    """A map's fitted state as a saved input list holds it: `city=Lyon` names a category, `(temp-12.5)+^3` a knot."""
+def map_state_from_names(m: dict, names, maps=()) -> dict:
+    """A map's fitted state as a saved input list holds it: `city=Lyon` names a category, `(temp-12.5)+^3` a knot.
+
+    `maps` are all the table's maps (m among them; m alone when none are given). A product one of them
+    makes (`a=b^2` of `powers "a=b"`) is no category or knot, and a name that reads as the input of
+    several columns (`a=b=cat`: category `b=cat` of `a`, or `cat` of `a=b`) is the longest column's:
+    a fit whose names would read back otherwise is refused (T166), so the reading is the fit's."""
+    maps = maps or (m,)
+    polynomial = [o for o in maps if o["kind"] in ("powers", "monomials", "pairs", "spline")]
+    products = {map_product_name(o["columns"], e) for o in polynomial
+                for e in map_exponents("powers" if o["kind"] == "spline" else o["kind"], len(o["columns"]),
+                                       o["degree"])}
+
+    def owner(n):
+        readers = [c for o in maps for c in o["columns"]
+                   if (o["kind"] == "onehot" and n.startswith(c + "="))
+                   or (o["kind"] == "spline" and map_knot_of(n, c, o["degree"]) is not None)]
+        return max(readers, key=len, default=None) if n not in products else None
+
     if m["kind"] == "onehot":
-        return {"categories": {c: [n[len(c) + 1:] for n in names if n.startswith(c + "=")] for c in m["columns"]}}
+        return {"categories": {c: [n[len(c) + 1:] for n in names if n.startswith(c + "=") and owner(n) == c]
+                               for c in m["columns"]}}
     if m["kind"] == "spline":
-        found = [map_knot_of(n, m["columns"][0], m["degree"]) for n in names]
+        c = m["columns"][0]
+        found = [map_knot_of(n, c, m["degree"]) for n in names if owner(n) == c]
         return {"knots": [k for k in found if k is not None]}
     return map_fit(m, {})
 
@@ -853,7 +872,7 @@ def _map_inputs(binding: TableBinding, map_plain: list[dict], picks: list[_Pick]
                                             "knots"))
                     continue
         else:
-            state = map_state_from_names(mp, input_names)
+            state = map_state_from_names(mp, input_names, map_plain)
             if m.kind == "fourier" and m.name in fourier_draws:
                 W = np.asarray(fourier_draws[m.name]["W"], dtype=np.float64)
                 b = np.asarray(fourier_draws[m.name]["b"], dtype=np.float64)
@@ -870,13 +889,15 @@ def _map_inputs(binding: TableBinding, map_plain: list[dict], picks: list[_Pick]
                                         "indicators, or refit on rows that hold them", rows=True))
         fitted_maps.append(_map_state_plain(mp, state))
         for name, v in map_outputs(mp, state, cols):
-            if name in made or (name in taken and name in m.columns):
-                continue  # one input per name: the same product made twice, or a column as its own first power
+            # before the one-input-per-name rule: a column another map made as its own first power is
+            # still a column, and a saved schema binds it as one
             if name not in m.columns and (name in table or name in taken):
                 diags.append(where.diag("T166", f"`{m.kind}` makes an input named {_q(name)}, which is already "
                                         f"{'a column of ' + _q(where.file) if name in table else 'an input'}", m.span,
                                         "rename the column or the feature"))
                 continue
+            if name in made or (name in taken and name in m.columns):
+                continue  # one input per name: the same product made twice, or a column as its own first power
             if not np.all(np.isfinite(v)):
                 bad = np.flatnonzero(~np.isfinite(v))
                 diags.append(where.diag("T161", f"input {_q(name)} made by `{m.kind}` overflows at "
@@ -889,6 +910,7 @@ def _map_inputs(binding: TableBinding, map_plain: list[dict], picks: list[_Pick]
                 unscaled.append(name)
     _raise_all(diags)
     if input_names is None:
+        _raise_all(_misread_names(binding, map_plain, fitted_maps, [p.name for p in picks] + list(made), where))
         return picks + [_Pick(name, span) for name, span in made.items()]
     missing = [p.name for p in picks if p.mapped and p.name not in made]
     if missing:
@@ -896,6 +918,46 @@ def _map_inputs(binding: TableBinding, map_plain: list[dict], picks: list[_Pick]
                           f"neither columns of {_q(where.file)} nor made by the spec's maps",
                           binding.inputs_span or binding.span)
     return picks
+
+
+def _state_inputs(mp: dict, state: Mapping) -> list[tuple[str, str]]:
+    """(name, what it is) of each input a map's categories or knots make."""
+    if mp["kind"] == "onehot":
+        return [(c + "=" + v, f"category {_q(v)} of column {_q(c)}") for c in mp["columns"]
+                for v in state["categories"][c]]
+    if mp["kind"] == "spline":
+        c = mp["columns"][0]
+        return [(map_knot_name(c, k, mp["degree"]), f"knot {k!r} of column {_q(c)}") for k in state["knots"]]
+    return []
+
+
+def _misread_names(binding: TableBinding, map_plain: list[dict], fitted_maps: list[dict], names: list[str],
+                   where: _Where) -> list[Diagnostic]:
+    """A saved model keeps its maps' categories and knots in its input names alone (`names`): T166 for
+    each map whose names would not read back (map_state_from_names) as the state fitted on these rows,
+    at its first such input."""
+    read = [_state_inputs(mp, map_state_from_names(mp, names, map_plain)) for mp in map_plain]
+    want = [_state_inputs(mp, fitted) for mp, fitted in zip(map_plain, fitted_maps)]
+    read_sets, want_sets = [set(r) for r in read], [set(w) for w in want]
+    lost = [[p for p in w if p not in r] for w, r in zip(want, read_sets)]
+    lost_names = {n for ps in lost for n, _what in ps}
+    # an input read as this map's though it is not: reported here unless it is another map's lost one
+    extra = [[p for p in r if p not in w and p[0] not in lost_names] for w, r in zip(want_sets, read)]
+    diags: list[Diagnostic] = []
+    for m, lost_here, extra_here in zip(binding.maps, lost, extra):
+        more = len(lost_here) + len(extra_here) - 1
+        tail = f" ({more} more input name(s) of this clause likewise)" if more > 0 else ""
+        hint = "rename one of the columns so that no input name reads two ways"
+        if lost_here:
+            name, what = lost_here[0]
+            other = next((w for r in read for n, w in r if n == name), "the name of a product another map makes")
+            diags.append(where.diag("T166", f"`{m.kind}` makes an input named {_q(name)} ({what}), which a saved "
+                                    f"model would read back as {other}{tail}", m.span, hint))
+        elif extra_here:
+            name, what = extra_here[0]
+            diags.append(where.diag("T166", f"input {_q(name)} would read back from a saved model as {what} of "
+                                    f"`{m.kind}`, which it is not{tail}", m.span, hint))
+    return diags
 
 
 def _select(binding: TableBinding, table: Mapping[str, np.ndarray], target: str | None, where: _Where,

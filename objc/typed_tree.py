@@ -121,7 +121,10 @@ def map_knot_of(name: str, column: str, degree: int) -> float | None:
         value = float(shift[1:])
     except ValueError:
         return None
-    return value if shift[0] == "-" else -value if shift[0] == "+" else None
+    knot = value if shift[0] == "-" else -value if shift[0] == "+" else None
+    # a shift that only parses is not enough: `(x--2.0)+` parses as x's knot -2.0 but is knot 2.0 of a
+    # column `x-`, and float() takes forms repr never writes (`1_0`, ` 2`): the name must be this knot's own
+    return knot if knot is not None and map_knot_name(column, knot, degree) == name else None
 
 
 def map_fixed_names(m: "FeatureMap") -> tuple[str, ...] | None:

@@ -271,16 +271,20 @@ def test_map_knot_of_refuses_names_that_are_not_this_columns_knots():
         assert tt.map_knot_of(name, "temp", 1) is None, name
 
 
-@pytest.mark.xfail(strict=True, reason="map_knot_of reads a knot name of column 'x-' as a knot of column 'x': "
-                   "'(x--2.0)+' (knot 2.0 of 'x-') gives -2.0, though no knot of 'x' has that name, so a saved "
-                   "model with splines on both columns gives 'x' a spurious knot when it is bound again "
-                   "(tables.map_state_from_names)")
 def test_a_knot_name_of_another_column_sharing_a_prefix_is_not_read():
     name = tt.map_knot_name("x-", 2.0, 1)
     assert tt.map_knot_of(name, "x-", 1) == 2.0
     # whenever a name is read as a knot k of x, it must be the name x's knot k has
     got = tt.map_knot_of(name, "x", 1)
     assert got is None or tt.map_knot_name("x", got, 1) == name
+
+
+def test_a_knot_is_read_only_from_the_name_map_knot_name_writes_for_it():
+    # each parses as a float after the sign, but none is the name of a knot of temp: knots of `temp-`
+    # and `temp+`, and forms float() accepts that repr never writes
+    for name in ("(temp--2.0)+", "(temp-+2.0)+", "(temp+-2.0)+", "(temp+0.0)+", "(temp-1_0)+", "(temp- 2.0)+",
+                 "(temp-2.50)+", "(temp-2.5e0)+"):
+        assert tt.map_knot_of(name, "temp", 1) is None, name
 
 
 # ---------------------------------------------------------------- explicit_inputs
