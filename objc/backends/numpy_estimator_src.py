@@ -437,10 +437,13 @@ def _read_csv(path):
         raise TableError(f"{path}: line 1: column {header.index('') + 1} has no name (a trailing comma makes one)")
     if len(set(header)) != len(header):
         raise TableError(f"{path}: line 1: a column name appears twice")
-    body = [r for r in rows[1:] if any(cell.strip() for cell in r)]
+    # as objc's reader (pandas.read_csv) takes records: a line that is empty or blank is no row, a record of
+    # empty cells is a row of missing values, and a short record's last cells are missing
+    blank = [len(r) <= 1 and not "".join(r).strip() for r in rows]
     for k, r in enumerate(rows[1:], start=2):
-        if any(cell.strip() for cell in r) and len(r) != len(header):
+        if not blank[k - 1] and len(r) > len(header):
             raise TableError(f"{path}: line {k}: {len(r)} fields, the header has {len(header)}")
+    body = [r + [""] * (len(header) - len(r)) for r, skip in zip(rows[1:], blank[1:]) if not skip]
     # cells as written: " yes" is not the label "yes" (objc reads them so); float() allows the blanks of " 1"
     columns = {name: [r[j] for r in body] for j, name in enumerate(header)}
     return header, columns, len(body)
@@ -527,6 +530,10 @@ def _choose_inputs(path, table, header, columns):
 
 
 def _target_values(path, table, columns):
+    """(y, missing, unlisted): the target per row (NaN where missing or not in the label map), the rows whose
+    cell is missing (or, in a column of numbers, infinite) and the rows whose value the label map does not list.
+    As objc reads a target: a column of numbers is matched by value against the map's numbers, a column with
+    text in it by text against the map's words (its cells are text, so a number in the map matches none)."""
     name = table["target"]
     if name is None:
         raise TableError("the spec names no target column")
@@ -534,22 +541,19 @@ def _target_values(path, table, columns):
         raise TableError(f"{path}: target column {name!r} is not in the table")
     cells = columns[name]
     if table["label_map"] is None:
-        return _numeric(path, name, cells)
+        y = _numeric(path, name, cells)
+        return y, ~np.isfinite(y), np.zeros(len(cells), dtype=bool)
+    values, text = _column_numbers(cells)
+    numbers = not text
+    missing = ~np.isfinite(values) if numbers else np.array([cell in _MISSING_CELLS for cell in cells], dtype=bool)
     y = np.full(len(cells), np.nan)
-    for i, cell in enumerate(cells):
-        for value, label in table["label_map"]:
-            same = cell == value if isinstance(value, str) else _same_number(cell, value)
-            if same:
-                y[i] = label
-                break
+    for value, label in table["label_map"]:
+        if numbers:
+            hit = values == float(value) if not isinstance(value, str) else np.zeros(len(cells), dtype=bool)
         else:
-            if cell not in _MISSING_CELLS:
-                raise TableError(f"{path}: data row {i + 1}, column {name!r}: {cell!r} is not in the spec's label map")
-    return y
-
-
-def _same_number(cell, value):
-    return bool(_NUMBER_CELL.fullmatch(cell)) and float(cell) == float(value)
+            hit = np.array([isinstance(value, str) and cell == value for cell in cells], dtype=bool)
+        y[hit & np.isnan(y) & ~missing] = label
+    return y, missing, np.isnan(y) & ~missing
 
 
 def load_table(path):
@@ -567,30 +571,51 @@ def load_table(path):
         with np.errstate(all="ignore"):
             data[fname] = np.broadcast_to(fn(_LazyNumeric(path, columns, data)), (n,)).astype(np.float64)
         inputs.append(fname)
-    y = _target_values(path, table, columns) if SPEC["needs_target"] else np.zeros(n)
+    if SPEC["needs_target"]:
+        y, y_missing, unlisted = _target_values(path, table, columns)
+    else:
+        y, y_missing, unlisted = np.zeros(n), np.zeros(n, dtype=bool), np.zeros(n, dtype=bool)
     c = np.ones(n)
     if table["row_weight"] is not None:
         if table["row_weight"] not in columns:
             raise TableError(f"{path}: row-weight column {table['row_weight']!r} is not in the table")
         c = _numeric(path, table["row_weight"], columns[table["row_weight"]])
+    if table["class_weights"] and SPEC["task"] != "margin":
+        raise TableError(f"{path}: class weights need a +1/-1 target; the target {table['target']!r} is real")
     X = np.column_stack([data[name] for name in inputs])
-    bad = ~np.isfinite(X).all(axis=1) | ~np.isfinite(y) | ~np.isfinite(c)
+    # the rows objc drops (or refuses under `missing fail`): a missing or infinite cell in a column the spec
+    # reads (the inputs, the columns features and maps read, the row weights, the target)
+    features = {fname for fname, _fn in table["features"]}
+    bad = y_missing | ~np.isfinite(c)
+    for name, values in data.items():
+        if name not in features:
+            bad |= ~np.isfinite(values)
+    lazy = _LazyNumeric(path, columns, data)
+    for m in table.get("maps") or ():
+        for name in m["columns"]:
+            if name not in columns:
+                raise TableError(f"{path}: column {name!r} of `{m['kind']}` is not in the table")
+            if m["kind"] == "onehot":
+                bad |= np.array([cell in _MISSING_CELLS for cell in columns[name]], dtype=bool)
+            else:
+                bad |= ~np.isfinite(lazy[name])
+    if np.any(bad) and table["missing"] != "drop":
+        first = int(np.flatnonzero(bad)[0]) + 1
+        raise TableError(f"{path}: data row {first} has a missing or infinite value (the spec says `missing fail`)")
+    # on the rows kept, a feature must be defined and every target value listed (objc computes features and
+    # reads labels after the drop, so a dropped row's own values never refuse the table)
+    for fname, _fn in table["features"]:
+        wrong = np.flatnonzero(~np.isfinite(data[fname]) & ~bad)
+        if len(wrong):
+            raise TableError(f"{path}: data row {wrong[0] + 1}: feature {fname!r} is NaN or infinite there")
+    wrong = np.flatnonzero(unlisted & ~bad)
+    if len(wrong):
+        cell = columns[table["target"]][wrong[0]]
+        raise TableError(f"{path}: data row {wrong[0] + 1}, column {table['target']!r}: {cell!r} is not in the spec's "
+                         "label map")
     map_state = None
     if table.get("maps"):
         # the maps are fitted on the rows kept after missing values, as objc fits them
-        lazy = _LazyNumeric(path, columns, data)
-        for m in table["maps"]:
-            for name in m["columns"]:
-                if name not in columns:
-                    raise TableError(f"{path}: column {name!r} of `{m['kind']}` is not in the table")
-                if m["kind"] == "onehot":
-                    bad |= np.array([cell in _MISSING_CELLS for cell in columns[name]], dtype=bool)
-                else:
-                    bad |= ~np.isfinite(lazy[name])
-        if np.any(bad) and table["missing"] != "drop":
-            first = int(np.flatnonzero(bad)[0]) + 1
-            raise TableError(f"{path}: data row {first} has a missing or infinite value (the spec says "
-                             "`missing fail`)")
         keep_rows = np.flatnonzero(~bad)
         kept = {name: v[keep_rows] for name, v in data.items()}
         for name in {c for m in table["maps"] for c in m["columns"] if m["kind"] != "onehot"}:
@@ -603,11 +628,7 @@ def load_table(path):
                                 kept, chosen, None, fail)
         inputs = chosen
         X, y, c, bad = np.column_stack([kept[name] for name in inputs]), y[keep_rows], c[keep_rows], bad[keep_rows]
-    if np.any(bad):
-        if table["missing"] != "drop":
-            first = int(np.flatnonzero(bad)[0]) + 1
-            raise TableError(f"{path}: data row {first} has a missing or infinite value (the spec says "
-                             "`missing fail`)")
+    if np.any(bad):  # only under `missing drop`: `missing fail` refused above
         X, y, c = X[~bad], y[~bad], c[~bad]
     if np.any(c < 0):
         raise TableError(f"{path}: data row {int(np.flatnonzero(c < 0)[0]) + 1}: a negative row weight")
@@ -623,9 +644,14 @@ def load_table(path):
     if table["holdout"] is not None:
         fraction, seed = table["holdout"]
         k = int(round(fraction * len(y)))
+        if k < 1 or k >= len(y):
+            raise TableError(f"{path}: holding out {fraction * 100:g}% of {len(y)} rows leaves "
+                             f"{'no row to hold out' if k < 1 else 'no row to train on'}")
         order = np.random.default_rng(seed).permutation(len(y))  # the same split as `objc fit`
         keep = np.sort(order[k:])
         X, y, c = X[keep], y[keep], c[keep]
+        if SPEC["task"] == "margin" and SPEC["needs_target"] and len(np.unique(y)) < 2:
+            raise TableError(f"{path}: the training part of the holdout split holds one class only")
     stats = None
     if table["standardize"]:
         unscaled = _map_unscaled(table, map_state)  # onehot indicators stay 0/1, as objc leaves them

@@ -146,7 +146,6 @@ def test_the_module_refuses_the_input_choices_objc_refuses(tmp_path, use_spec, i
     (b"a,,c\n1,2,3\n", "line 1: column 2 has no name"),
     (b"a,b,\n1,2,3\n", "line 1: column 3 has no name"),
     (b"a,b,a\n1,2,3\n", "line 1: a column name appears twice"),
-    (b"a,b\n1,2\n3\n", "line 3: 1 fields, the header has 2"),
     (b"a,b\n1,2\n\n4,5,6\n", "line 4: 3 fields, the header has 2"),  # a blank line still counts as a line
 ])
 def test_a_bad_csv_is_one_message_naming_the_file_and_line(tmp_path, data, words):
@@ -155,6 +154,20 @@ def test_a_bad_csv_is_one_message_naming_the_file_and_line(tmp_path, data, words
     with pytest.raises(TableError) as info:
         estimator_src._read_csv(str(path))
     assert str(info.value).startswith(f"{path}: {words}")
+
+
+def test_records_are_rows_as_objc_reads_them(tmp_path):
+    # objc's reader (pandas.read_csv): a blank line is no row, a record of empty cells is a row of missing
+    # values, a short record's last cells are missing
+    path = tmp_path / "t.csv"
+    path.write_bytes(b"a,b,c\n1,2,3\n\n   \n,,\n4\n")
+    header, columns, n = estimator_src._read_csv(str(path))
+    table = read_table(path, span=Span(1, 1, 1, 2), source_name="t.objc")
+    assert n == len(table["a"]) == 3
+    for name in header:
+        values, text = estimator_src._column_numbers(columns[name])
+        assert not text
+        np.testing.assert_array_equal(values, table[name].astype(float))
 
 
 def test_bytes_that_are_not_utf8_and_a_missing_file(tmp_path):
@@ -220,18 +233,23 @@ def test_target_cells_through_a_label_map_agree_with_objc(tmp_path):
                      clauses="  missing drop\n")
     data = bind_table(objc.check_text(text, "est.objc").spec.table, tmp_path, "margin")
     header, columns, _n = estimator_src._read_csv(str(path))
-    y = estimator_src._target_values(str(path), spec_table(text)["table"], columns)
+    y, missing, unlisted = estimator_src._target_values(str(path), spec_table(text)["table"], columns)
+    assert not np.any(unlisted) and list(np.flatnonzero(missing)) == [5]
     # the missing cell is NaN (dropped later by `missing drop`); every other cell maps as objc maps it
     assert np.isnan(y[5]) and np.isnan(y).sum() == 1
     kept = np.delete(y, 5)
     np.testing.assert_array_equal(kept, data.y)
 
 
-def test_a_target_value_outside_the_label_map_is_named_with_its_row(tmp_path):
+def test_a_target_value_outside_the_label_map_is_named_with_its_row(tmp_path, use_spec):
     text = spec_text("inputs a", target="target late: yes -> +1, no -> -1", goal="mean logistic(y * s) + lam * l2sq(w)")
     table = spec_table(text)["table"]
+    _y, missing, unlisted = estimator_src._target_values("t.csv", table, {"late": ["yes", "no", "maybe"]})
+    assert list(unlisted) == [False, False, True] and not np.any(missing)
+    use_spec(text)
+    path = write_csv(tmp_path / "t.csv", ["a", "late"], [["1", "yes"], ["2", "no"], ["3", "maybe"]])
     with pytest.raises(TableError, match=r"data row 3, column 'late': 'maybe' is not in the spec's label map"):
-        estimator_src._target_values("t.csv", table, {"late": ["yes", "no", "maybe"]})
+        estimator_src.load_table(str(path))
     with pytest.raises(TableError, match="target column 'late' is not in the table"):
         estimator_src._target_values("t.csv", table, {"a": ["1"]})
 
