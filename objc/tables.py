@@ -129,6 +129,9 @@ class BoundData:
     unscaled: tuple[str, ...] = ()  # inputs `standardize` leaves as they are (onehot's 0/1 indicators)
     maps: tuple[dict, ...] = ()  # each feature map's fitted state as plain data (categories, knots, draws)
     classes: tuple[str | float, ...] = ()  # multiclass: the class labels in order; y holds 0 .. K-1
+    # `standardize` still to be fitted: X is as read, and the split that follows (split_rows) fits the
+    # statistics on its training part alone and applies them to both parts
+    standardize_pending: bool = False
 
     @property
     def n_rows(self) -> int:
@@ -597,7 +600,8 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
                data_path: Path | None = None, standardization: Standardization | None = None,
                input_names: tuple[str, ...] | None = None, file_span: Span | None = None,
                need_target: bool = True, both_classes: bool = True, frame: pd.DataFrame | None = None,
-               fourier_draws: Mapping[str, Mapping[str, object]] | None = None) -> BoundData:
+               fourier_draws: Mapping[str, Mapping[str, object]] | None = None,
+               defer_standardize: bool = False) -> BoundData:
     """Read the binding's table and return checked solver arrays.
 
     `data_path` replaces the spec's path (taken as given, not relative to `spec_dir`); `file_span`
@@ -606,6 +610,8 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
     model's schema), and `fourier_draws` the draws it saved for each `fourier` map by name (else they
     come from the map's seed). `need_target=False` ignores the target (y is NaN; for predicting on new rows);
     `both_classes=False` accepts a margin target holding one class (evaluating on a slice).
+    `defer_standardize=True` leaves `standardize` to the split that follows (`standardize_pending`), so
+    that the held-out rows neither shape the statistics nor pass through them twice.
     """
     if task not in ("margin", "residual", "multiclass"):
         raise ValueError(f"task must be 'margin', 'residual' or 'multiclass', not {task!r}")
@@ -822,7 +828,7 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
     if standardization is not None:
         means, scales = _saved_stats(standardization, names, where, inputs_span)
         X = (X - means) / scales
-    elif binding.standardize:
+    elif binding.standardize and not defer_standardize:
         standardization = _fit_stats(X, names, [p.span for p in picks], where, unscaled=frozenset(unscaled))
         X = (X - np.asarray(standardization.means)) / np.asarray(standardization.scales)
         fitted = True
@@ -834,7 +840,8 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
                      standardization=standardization, source=path, rows=_frozen(rows), task=task,
                      dropped=n_all - n, file_label=shown, standardization_fitted=fitted, warnings=tuple(warnings),
                      unscaled=tuple(unscaled), maps=tuple(fitted_maps),
-                     classes=tuple(binding.classes) if task == "multiclass" else ())
+                     classes=tuple(binding.classes) if task == "multiclass" else (),
+                     standardize_pending=bool(binding.standardize and defer_standardize and standardization is None))
 
 
 def _map_inputs(binding: TableBinding, map_plain: list[dict], picks: list[_Pick], values: dict[str, np.ndarray],
@@ -1235,6 +1242,21 @@ def split_rows(data: BoundData, train_idx: np.ndarray, held_idx: np.ndarray, *, 
     message naming `rows_label` (e.g. "the training rows of fold 2 of 5")."""
     where = _Where(data.file_label or str(data.source), source_name)
     train, held = take_rows(data, train_idx), take_rows(data, held_idx)
+    if data.standardize_pending:
+        # the statistics from the training part's own values: exact, and no held-out value can overflow them
+        stats = _fit_stats(train.X, data.input_names, [span] * data.n_inputs, where,
+                           rows_label or "the training part", hint, frozenset(data.unscaled))
+        mean, scale = np.asarray(stats.means), np.asarray(stats.scales)
+
+        def scaled(X: np.ndarray) -> np.ndarray:
+            out = np.subtract(X, mean)
+            out /= scale
+            return _frozen(np.ascontiguousarray(out))
+        train = replace(train, X=scaled(train.X), standardization=stats, standardization_fitted=True,
+                        standardize_pending=False)
+        held = replace(held, X=scaled(held.X), standardization=stats, standardization_fitted=False,
+                       standardize_pending=False)
+        return train, held
     if data.standardization is not None and data.standardization_fitted:
         std = data.standardization
         mean, scale = np.asarray(std.means), np.asarray(std.scales)

@@ -103,7 +103,9 @@ def _bind_training(checked: CheckedObjective, spec_dir: Path, data_path: Path | 
                                     hint='add: table NAME from "file.csv"', source_name=checked.source.name),),
                         checked.source)
     task = task_of(checked)
-    data = tables.bind_table(tb, spec_dir, task, source_name=checked.source.name, data_path=data_path, frame=frame)
+    # with a holdout, `standardize` is fitted on the training part alone (tables.split_rows)
+    data = tables.bind_table(tb, spec_dir, task, source_name=checked.source.name, data_path=data_path, frame=frame,
+                             defer_standardize=tb.holdout is not None)
     if tb.holdout is not None:
         train, held = tables.split_holdout(data, tb.holdout, tb.holdout_seed, span=tb.holdout_span or tb.span,
                                            source_name=checked.source.name)
