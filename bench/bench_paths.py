@@ -90,6 +90,28 @@ def certify(checked, data, lam: float, w: np.ndarray, b: float) -> tuple[float, 
     return float(r.certificate.relative), float(r.objective), math.inf if distance is None else float(distance)
 
 
+def timed(fit) -> tuple[float, object]:
+    start = time.perf_counter()
+    out = fit()
+    return time.perf_counter() - start, out
+
+
+def alternate(sides: dict, repeats: int) -> tuple[dict, dict]:
+    """Each side (a call giving (seconds, result)) in turn, `repeats` rounds, under the same thread caps:
+    (every run's seconds by side, each side's last result). The sides alternate and the caller reports
+    medians because the machine is shared: a run that meets another engineer's job can take several
+    times as long."""
+    runs: dict = {name: [] for name in sides}
+    last: dict = {}
+    for _ in range(repeats):
+        for name, side in sides.items():
+            with ThreadCap(), warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                seconds, last[name] = side()
+            runs[name].append(seconds)
+    return runs, last
+
+
 def objc_cv(checked, data, folds, values: list[float], score, tol: float = 1e-6,
             param_tol: float | None = 1e-6) -> tuple[float, dict]:
     """objc: fit_path on each training part, the held-out score of every point (one matrix product per
@@ -219,26 +241,15 @@ def lasso_case(n: int, p: int, points: int, repeats: int) -> None:
     with ThreadCap():
         objc_cv(checked, part(data, folds[0][0][:2000]), [(np.arange(1500), np.arange(1500, 2000))], values[:3],
                 squared_error)  # emit and compile the module once, outside the timing (as a second run would)
-    # the sides alternate, each run `repeats` times, and the median is reported: the machine is shared,
-    # and a run that meets another engineer's job can take several times as long
-    ours_runs, sel_runs, default_runs, peer_runs = [], [], [], []
-    for _ in range(repeats):
-        with ThreadCap():
-            ours, facts = objc_cv(checked, data, folds, values, squared_error, ask_tol, ask_param)
-        ours_runs.append(ours)
-        with ThreadCap():
-            chosen_seconds, chosen = objc_selection(checked, data, folds, values, ask_tol, ask_param)
-        sel_runs.append(chosen_seconds)
-        with ThreadCap():
-            default_seconds, default = objc_cv(checked, data, folds, values, squared_error)
-        default_runs.append(default_seconds)
-        with ThreadCap(), warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            t0 = time.perf_counter()
-            peer = LassoCV(alphas=values, cv=folds, tol=tol).fit(X, y)
-            peer_runs.append(time.perf_counter() - t0)
+    runs, last = alternate({
+        "ours": lambda: objc_cv(checked, data, folds, values, squared_error, ask_tol, ask_param),
+        "selection": lambda: objc_selection(checked, data, folds, values, ask_tol, ask_param),
+        "default": lambda: objc_cv(checked, data, folds, values, squared_error),
+        "peer": lambda: timed(lambda: LassoCV(alphas=values, cv=folds, tol=tol).fit(X, y))}, repeats)
+    (ours_runs, sel_runs, default_runs, peer_runs) = (runs[k] for k in ("ours", "selection", "default", "peer"))
     ours, chosen_seconds, default_seconds, theirs = (float(np.median(r)) for r in
                                                      (ours_runs, sel_runs, default_runs, peer_runs))
+    facts, chosen, default, peer = (last[k] for k in ("ours", "selection", "default", "peer"))
     peer_best = int(np.argmin(np.abs(np.asarray(peer.alphas_) - peer.alpha_)))
     peer_mse = peer.mse_path_.mean(axis=1)
     print("| side | seconds (median) | ratio objc/peer | chosen lam | note |\n|---|---:|---:|---:|---|")
@@ -294,21 +305,14 @@ def logistic_case(n: int, p: int, points: int, repeats: int) -> None:
     with ThreadCap():
         objc_cv(checked, part(data, folds[0][0][:2000]), [(np.arange(1500), np.arange(1500, 2000))], values[:3],
                 log_loss)
-    ours_runs, default_runs, peer_runs = [], [], []
-    for _ in range(repeats):  # the sides alternate, as in the Lasso case
-        with ThreadCap():
-            ours, facts = objc_cv(checked, data, folds, values, log_loss, ask_tol, ask_param)
-        ours_runs.append(ours)
-        with ThreadCap():
-            default_seconds, default = objc_cv(checked, data, folds, values, log_loss)
-        default_runs.append(default_seconds)
-        with ThreadCap(), warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            t0 = time.perf_counter()
-            peer = LogisticRegressionCV(Cs=Cs, cv=folds, solver="lbfgs", tol=tol, max_iter=10000,
-                                        scoring="neg_log_loss").fit(X, y01)
-            peer_runs.append(time.perf_counter() - t0)
+    runs, last = alternate({
+        "ours": lambda: objc_cv(checked, data, folds, values, log_loss, ask_tol, ask_param),
+        "default": lambda: objc_cv(checked, data, folds, values, log_loss),
+        "peer": lambda: timed(lambda: LogisticRegressionCV(Cs=Cs, cv=folds, solver="lbfgs", tol=tol, max_iter=10000,
+                                                           scoring="neg_log_loss").fit(X, y01))}, repeats)
+    ours_runs, default_runs, peer_runs = (runs[k] for k in ("ours", "default", "peer"))
     ours, default_seconds, theirs = (float(np.median(r)) for r in (ours_runs, default_runs, peer_runs))
+    facts, default, peer = (last[k] for k in ("ours", "default", "peer"))
     # the peer's fold paths, scored by objc's evaluator: coefs_paths_[class][fold, C, weights + intercept]
     paths_arr = next(iter(peer.coefs_paths_.values()))
     worst, worst_distance = worst_certificate(checked, train0, [
