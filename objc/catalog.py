@@ -453,9 +453,8 @@ def _k_min(*xs):
 
 
 def _k_min_d(*xs):
-    arrays = np.broadcast_arrays(*[np.asarray(x, dtype=float) for x in xs])
-    low = np.argmin(np.stack(arrays), axis=0)
-    return tuple(np.where(low == i, 1.0, 0.0) for i in range(len(arrays)))
+    # min(x) = -max(-x): all weight on the first argument that attains the minimum
+    return _k_max_d(*[np.negative(np.asarray(x, dtype=float)) for x in xs])
 
 
 def _k_hypot(a, b):
@@ -1167,11 +1166,7 @@ def _max_sign(signs: tuple[Sign, ...], _o: dict) -> Sign:
 
 
 def _min_sign(signs: tuple[Sign, ...], _o: dict) -> Sign:
-    if any(s.is_nonpos for s in signs):
-        return Sign.NONPOS
-    if all(s.is_nonneg for s in signs):
-        return Sign.NONNEG
-    return Sign.UNKNOWN
+    return _max_sign(tuple(s.negate() for s in signs), _o).negate()  # min(a, b) = -max(-a, -b)
 
 
 def _yes(_o: dict) -> bool:
