@@ -284,6 +284,12 @@ def _apply_maps(table, cells_of, numbers_of, data, chosen, state, fail):
                 for c in m["columns"]:
                     if len(st["categories"][c]) < 2:
                         fail(f"column {c!r} of `onehot` holds one category only")
+            if m["kind"] == "spline":
+                # objc's rule (T165): two knots that meet, or one at an end of the column, repeat a basis column
+                x, knots = cols[m["columns"][0]], st["knots"]
+                if any(b <= a for a, b in zip(knots, knots[1:])) or knots[0] <= np.min(x) or knots[-1] >= np.max(x):
+                    fail(f"the knots of `spline` {m['columns'][0]!r} collapse on the training rows (two meet, or one "
+                         "sits at an end of the column)")
             state.append(st)
         else:
             st = state[k]
@@ -292,6 +298,9 @@ def _apply_maps(table, cells_of, numbers_of, data, chosen, state, fail):
                     fail(f"column {c!r} holds categories not seen in training: "
                          + ", ".join(repr(v) for v in values[:5]) + f" (data row {int(bad[0]) + 1} first)")
         for name, value in map_outputs(m, st, cols):
+            if not np.all(np.isfinite(value)):  # objc's T161: a map's input must be finite on every row it reads
+                fail(f"input {name!r} made by `{m['kind']}` is NaN or infinite on "
+                     f"{int(np.count_nonzero(~np.isfinite(value)))} row(s) (it overflows)")
             if name not in made:
                 made.add(name)
                 data[name] = value
@@ -613,6 +622,8 @@ def load_table(path):
         cell = columns[table["target"]][wrong[0]]
         raise TableError(f"{path}: data row {wrong[0] + 1}, column {table['target']!r}: {cell!r} is not in the spec's "
                          "label map")
+    if np.all(bad):  # objc's T121, before any map is fitted on no row
+        raise TableError(f"{path}: no data row is left once the rows with a missing value are dropped")
     map_state = None
     if table.get("maps"):
         # the maps are fitted on the rows kept after missing values, as objc fits them

@@ -13,7 +13,11 @@ the module's SPEC one more derived input, each row's number, and turns `standard
 sides (the number would be standardized too); the module's held-out rows are then the rows it keeps
 without the holdout less the rows it trains on.
 
-The plain tests below are disagreements the property found, each shrunk to a small table and kept
+A second property does the same for the feature maps (onehot, powers, pairs, spline), comparing
+also the maps' fitted state. A multiclass spec is not compared: its module has no table reader (no
+load_table, no command line), only `fit(X, labels)` on rows already read.
+
+The plain tests below are disagreements the properties found, each shrunk to a small table and kept
 as a regression test once fixed.
 """
 
@@ -55,13 +59,13 @@ INPUTS = ("inputs a, b", "inputs all", "inputs all except c", 'inputs like "x*"'
 ROW_NUMBER = "row_number_tag"
 
 
-def spec_text(target: str, inputs: str, *, rowweight=False, classweight=False, feature=False, standardize=False,
-              drop=False, holdout=False) -> str:
+def spec_text(target: str, inputs: str, *, rowweight=False, classweight=False, feature=False, maps=(),
+              standardize=False, drop=False, holdout=False) -> str:
     clause, goal = TARGETS[target]
     clauses = "".join(line for line, on in (
         ("  rowweight wt\n", rowweight), ("  classweight +1 = 3, -1 = 1\n", classweight),
-        ("  feature ab = a * b\n", feature), ("  standardize\n", standardize), ("  missing drop\n", drop),
-        ("  holdout 25% seed 3\n", holdout)) if on)
+        ("  feature ab = a * b\n", feature), *((f"  {m}\n", True) for m in maps), ("  standardize\n", standardize),
+        ("  missing drop\n", drop), ("  holdout 25% seed 3\n", holdout)) if on)
     return SPEC_TEMPLATE.format(target=clause, inputs=inputs, clauses=clauses, goal=goal)
 
 
@@ -87,6 +91,15 @@ class Refused:
 
     def __repr__(self):
         return f"refused: {self.why}"
+
+
+class Crashed:
+    """The module raised something other than its TableError: neither a refusal nor a binding."""
+    def __init__(self, error: Exception):
+        self.error = error
+
+    def __repr__(self):
+        return f"crashed: {self.error!r}"
 
 
 def objc_binding(checked, folder: Path, *, standardize=None, holdout=True):
@@ -120,7 +133,8 @@ def _row_numbers(table_columns):
 
 def module_binding(namespace, path: Path, *, tag_rows=False, holdout=True):
     """(X, y, c, names, stats) of the module's load_table, or Refused. With `tag_rows`, standardize is
-    off and the last column of X holds each row's number (counted from 1 over the rows the module read)."""
+    off and the input ROW_NUMBER of X holds each row's number (counted from 1 over the rows the module
+    read): the last input, or, with feature maps, the last before the maps' inputs."""
     table = namespace["SPEC"]["table"]
     changes = {} if holdout else {"holdout": None}
     if tag_rows:
@@ -130,9 +144,18 @@ def module_binding(namespace, path: Path, *, tag_rows=False, holdout=True):
             return namespace["load_table"](str(path))
         except namespace["TableError"] as err:
             return Refused(str(err))
+        except Exception as err:  # noqa: BLE001 - a crash is reported as a disagreement, not raised
+            return Crashed(err)
+
+
+def untagged(X, names):
+    """(X without the row numbers, the names without ROW_NUMBER, the row numbers)."""
+    j = names.index(ROW_NUMBER)
+    return np.delete(X, j, axis=1), names[:j] + names[j + 1:], X[:, j]
 
 
 def assert_same_refusal(ours, theirs, what: str):
+    assert not isinstance(theirs, Crashed), f"{what}: objc {ours!r}; module {theirs!r}"
     assert isinstance(ours, Refused) == isinstance(theirs, Refused), f"{what}: objc {ours!r}; module {theirs!r}"
 
 
@@ -150,8 +173,12 @@ def check_agreement(text: str, header, rows, folder: Path) -> None:
         np.testing.assert_array_equal(y, train.y)
         np.testing.assert_array_equal(c, train.weights)
         np.testing.assert_array_equal(X, train.X)
+        stats = dict(stats or {})
+        # the maps' fitted state: the module writes it beside the standardization, objc with each map
+        assert stats.pop("maps", []) == [{k: v for k, v in m.items() if k not in ("kind", "columns")}
+                                         for m in train.maps]
         if train.standardization is None:
-            assert stats is None
+            assert not stats
         else:
             std = train.standardization
             assert stats["names"] == list(std.names)
@@ -164,11 +191,12 @@ def check_agreement(text: str, header, rows, folder: Path) -> None:
     if isinstance(ours, Refused):
         return
     (train, held), (X, y, c, names) = ours, theirs[:4]
-    assert names[:-1] == train.input_names and names[-1] == ROW_NUMBER
-    np.testing.assert_array_equal(X[:, :-1], train.X)
+    X, names, tags = untagged(X, names)
+    assert names == train.input_names
+    np.testing.assert_array_equal(X, train.X)
     np.testing.assert_array_equal(y, train.y)
     np.testing.assert_array_equal(c, train.weights)
-    np.testing.assert_array_equal(X[:, -1], train.rows)
+    np.testing.assert_array_equal(tags, train.rows)
     if table.holdout is None:
         return
     ours = objc_binding(checked, folder, standardize=False, holdout=False)
@@ -176,9 +204,9 @@ def check_agreement(text: str, header, rows, folder: Path) -> None:
     assert_same_refusal(ours, theirs, "binding without standardize and holdout")
     if isinstance(ours, Refused):
         return
-    kept, X_all = ours[0], theirs[0]
-    np.testing.assert_array_equal(X_all[:, -1], kept.rows)
-    module_held = sorted(set(X_all[:, -1].tolist()) - set(X[:, -1].tolist()))
+    kept, kept_tags = ours[0], untagged(theirs[0], theirs[3])[2]
+    np.testing.assert_array_equal(kept_tags, kept.rows)
+    module_held = sorted(set(kept_tags.tolist()) - set(tags.tolist()))
     assert module_held == held.rows.tolist()
 
 
@@ -189,7 +217,7 @@ def check_agreement(text: str, header, rows, folder: Path) -> None:
 NUMBER = st.integers(-12, 12).map(lambda k: f"{k / 4:g}")
 # `d` is written as integers mostly, sometimes as decimals, which its label map matches by value
 CLEAN = {"late": st.sampled_from(["yes", "no"]), "d": st.sampled_from(["1", "0", "1", "0", "1.0", "0.0"]),
-         "wt": st.sampled_from(["1", "0.5", "2", "3"])}
+         "wt": st.sampled_from(["1", "0.5", "2", "3"]), "town": st.sampled_from(["Lyon", "Nice", "Paris"])}
 MISSING = st.sampled_from(MISSING_CELLS)
 INFINITY = st.sampled_from(["inf", "-inf"])
 HUGE = st.sampled_from(["1e200", "-3e200"])  # finite, but the product of two overflows
@@ -205,6 +233,8 @@ def defect(column: str):
         return st.one_of(MISSING, st.just(UNLISTED[1]), INFINITY)
     if column == "wt":
         return st.one_of(st.just("0"), st.just("-1"), MISSING, INFINITY)
+    if column == "town":
+        return MISSING
     return st.one_of(MISSING, INFINITY, TEXT, HUGE)
 
 
@@ -219,14 +249,19 @@ def cases(draw):
         columns.append("wt")
     columns.append(target)
     header = list(draw(st.permutations(columns)))
-    n = draw(st.integers(1, 10))
+    return text, header, draw(tables(header))
+
+
+@st.composite
+def tables(draw, header, most_rows=10):
+    n = draw(st.integers(1, most_rows))
     rows = [[draw(CLEAN.get(name, NUMBER)) for name in header] for _ in range(n)]
     for _ in range(draw(st.integers(0, 3))):
         i, j = draw(st.integers(0, n - 1)), draw(st.integers(0, len(header) - 1))
         rows[i][j] = draw(defect(header[j]))
     if draw(st.integers(0, 9)) == 0:  # now and then a record of empty cells: a row of missing values
         rows.insert(draw(st.integers(0, n)), [""] * len(header))
-    return text, header, rows
+    return rows
 
 
 @settings(max_examples=250, deadline=None, derandomize=True, database=None)
@@ -235,6 +270,35 @@ def test_objc_and_the_module_bind_a_table_alike(case):
     text, header, rows = case
     with tempfile.TemporaryDirectory() as name:
         folder = Path(name)
+        check_agreement(text, header, rows, folder)
+
+
+MAPS = ("onehot town", "powers a degree 2", "pairs a, b", "spline a degree 1 knots 25%, 50%, 75%")
+MAP_INPUTS = ("inputs a, b", "inputs b", "inputs all except town", "inputs all")
+
+
+@st.composite
+def map_cases(draw):
+    """A spec with one to four feature maps over a numeric `a`, `b` and a text `town`, beside
+    `standardize`, `missing drop` and `holdout`, and a table for it."""
+    target = draw(st.sampled_from(sorted(TARGETS)))
+    maps = [m for m in MAPS if draw(st.booleans())] or [draw(st.sampled_from(MAPS))]
+    maps = [m + " unseen zeros" if m.startswith("onehot") and draw(st.booleans()) else m for m in maps]
+    clauses = {name: draw(st.booleans()) for name in ("standardize", "drop", "holdout")}
+    text = spec_text(target, draw(st.sampled_from(MAP_INPUTS)), maps=maps, **clauses)
+    columns = ["a", "b", "town", target] + (["c"] if draw(st.booleans()) else [])
+    header = list(draw(st.permutations(columns)))
+    # more rows than the first property draws: spline's knots need a few distinct values of `a`
+    return text, header, draw(tables(header, most_rows=14))
+
+
+@settings(max_examples=200, deadline=None, derandomize=True, database=None)
+@given(map_cases())
+def test_objc_and_the_module_bind_feature_maps_alike(case):
+    text, header, rows = case
+    with tempfile.TemporaryDirectory() as name:
+        folder = Path(name)
+        write_table(folder, header, rows)
         check_agreement(text, header, rows, folder)
 
 
@@ -287,3 +351,19 @@ def test_standardize_with_a_holdout_reads_the_training_rows_alone(tmp_path, held
     rows[3][0] = held_value
     check_agreement(spec_text("late", "inputs a, b", standardize=True, holdout=True), ["a", "b", "late"], rows,
                     tmp_path)
+
+
+@pytest.mark.parametrize("feature_map", ["powers a degree 2", "pairs a, b"])
+def test_a_map_input_that_overflows_is_refused(tmp_path, feature_map):
+    text = spec_text("late", "inputs a, b", maps=[feature_map])
+    check_agreement(text, ["a", "b", "late"], [["1e200", "1e200", "yes"], ["0", "1", "no"]], tmp_path)
+
+
+def test_spline_knots_that_collapse_are_refused(tmp_path):
+    text = spec_text("late", "inputs a, b", maps=["spline a degree 1 knots 25%, 50%, 75%"])
+    check_agreement(text, ["a", "b", "late"], [["0", "0", "yes"], ["0", "1", "no"]], tmp_path)
+
+
+def test_a_spline_on_no_row_left_is_refused(tmp_path):
+    text = spec_text("late", "inputs a, b", maps=["spline a degree 1 knots 25%, 50%, 75%"], drop=True)
+    check_agreement(text, ["a", "b", "late"], [["", "0", "yes"]], tmp_path)
