@@ -547,16 +547,19 @@ def map_outputs(m: dict, state: dict, cols) -> list:
                 out.append((c + "=" + cat, (texts == cat).astype(np.float64)))
     elif kind in ("powers", "monomials", "pairs", "spline"):
         degree = m["degree"]
-        for e in map_exponents("powers" if kind == "spline" else kind, len(columns), degree):
-            value = np.ones(len(cols[columns[0]]))
-            for c, p in zip(columns, e):
-                if p:
-                    value = value * cols[c] ** p
-            out.append((map_product_name(columns, e), value))
-        if kind == "spline":
-            x = cols[columns[0]]
-            for k in state["knots"]:
-                out.append((map_knot_name(columns[0], k, degree), np.maximum(x - k, 0.0) ** degree))
+        # a product may overflow: the callers refuse a map input that is not finite (T161), so NumPy's own
+        # warning would only repeat that before the message
+        with np.errstate(over="ignore", invalid="ignore"):
+            for e in map_exponents("powers" if kind == "spline" else kind, len(columns), degree):
+                value = np.ones(len(cols[columns[0]]))
+                for c, p in zip(columns, e):
+                    if p:
+                        value = value * cols[c] ** p
+                out.append((map_product_name(columns, e), value))
+            if kind == "spline":
+                x = cols[columns[0]]
+                for k in state["knots"]:
+                    out.append((map_knot_name(columns[0], k, degree), np.maximum(x - k, 0.0) ** degree))
     elif kind == "fourier":
         X = np.column_stack([cols[c] for c in columns])
         z = np.sqrt(2.0 / m["count"]) * np.cos(X @ np.asarray(state["W"]).T + np.asarray(state["b"]))
