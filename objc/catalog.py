@@ -561,9 +561,12 @@ def _k_dropridge_conj(u, p=0.5, m2=1.0):
 
 def _k_second_moments(X, c, rows):
     """sum_i c_i x_ij^2 per column, normalized like the goal's row aggregate: by sum c ('mean'), by the
-    row count ('perrow') or not at all ('sum'). X dense or a SciPy sparse matrix."""
-    squares = X.multiply(X) if hasattr(X, "multiply") and not isinstance(X, np.ndarray) else np.asarray(X) ** 2
-    total = np.asarray(squares.T @ np.asarray(c, dtype=float), dtype=float).ravel()
+    row count ('perrow') or not at all ('sum'). X dense, a SciPy sparse matrix or a table read in chunks."""
+    if hasattr(X, "weighted_square_sums"):
+        total = X.weighted_square_sums(np.asarray(c, dtype=float))
+    else:
+        squares = X.multiply(X) if hasattr(X, "multiply") and not isinstance(X, np.ndarray) else np.asarray(X) ** 2
+        total = np.asarray(squares.T @ np.asarray(c, dtype=float), dtype=float).ravel()
     if rows == "mean":
         return total / float(np.sum(c))
     if rows == "perrow":

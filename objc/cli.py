@@ -265,16 +265,64 @@ def _fit_progress(bar):
     return show
 
 
+def _reading_progress(bar):
+    """The chunked reader's callback (rows read, rows in all) drawn on a bar."""
+    if bar is None:
+        return None
+
+    def show(done: int, total: int | None) -> None:
+        if total is not None and bar.total != total:
+            bar.total = total
+        bar.update(max(0, int(done) - bar.n))
+    return show
+
+
+def _memory_budget(text: str) -> int:
+    from objc.chunked_tables import parse_budget
+    try:
+        return parse_budget(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"'{text}' is not a size; write e.g. 256M, 1G or 500000000") from None
+
+
 def cmd_fit(args) -> int:
     from objc.frontend import check_file
     from objc import training
-    from objc.model_io import save_model
     spec_path = Path(args.spec)
+    if args.memory is not None and args.engine == "memory":
+        raise UsageError("--memory bounds a table read in chunks: give it with --engine chunks or cluster")
+    if (args.cluster is not None or args.workers is not None) and args.engine != "cluster":
+        raise UsageError("--cluster and --workers choose the cluster of --engine cluster")
+    if args.scratch is not None and args.engine == "memory":
+        raise UsageError("--scratch is the folder of a table read in chunks: give it with --engine chunks or "
+                         "cluster")
     checked = check_file(spec_path)
     training.require_trainable(checked, args.local_ok)
     tunables = _parse_settings(args.set, checked)
-    train, held, held_label = training.bind_training(checked, spec_path.parent,
-                                                     Path(args.data) if args.data else None)
+    client = None
+    if args.engine == "cluster":
+        from objc import cluster_rows
+        try:
+            client = cluster_rows.connect(args.cluster or cluster_rows.LOCAL, args.workers)
+        except (RuntimeError, OSError, ValueError, TimeoutError) as exc:
+            raise UsageError(f"cannot reach the cluster {args.cluster or cluster_rows.LOCAL!r}: "
+                             f"{str(exc).splitlines()[0] if str(exc) else type(exc).__name__}") from None
+    try:
+        return _fit_with(args, spec_path, checked, tunables, client)
+    finally:
+        if client is not None:
+            cluster_rows.close(client)
+
+
+def _fit_with(args, spec_path: Path, checked, tunables: dict, client) -> int:
+    from objc import training
+    from objc.model_io import save_model
+    with _progress_bar(_progress_wanted(args) and args.engine != "memory", None, "reading", "row") as bar:
+        train, held, held_label = training.bind_training(checked, spec_path.parent,
+                                                         Path(args.data) if args.data else None,
+                                                         engine=args.engine, budget=args.memory,
+                                                         progress=_reading_progress(bar), client=client,
+                                                         scratch_dir=Path(args.scratch) if args.scratch else None)
     with _progress_bar(_progress_wanted(args) and args.backend == "numpy", args.max_passes, "training",
                        "pass") as bar:
         result = training.run_backend(checked, train, args.backend, tunables, tol=args.tol, solver=args.solver,
@@ -291,6 +339,7 @@ def cmd_fit(args) -> int:
                     "method": result.method, "certificate": doc["fit"]["certificate"],
                     "passes": result.passes, "iterations": result.iterations, "seconds": result.seconds,
                     "params": result.params, "inputs": list(train.input_names), "tunables": tunables,
+                    "engine": _engine_record(args.engine, train.X),
                     "training_metrics": train_metrics, "holdout_metrics": held_metrics,
                     "holdout_source": held_label or None, "warnings": _diag_list(checked.warnings, checked.source)
                     + _diag_list(train.warnings)})
@@ -298,6 +347,7 @@ def cmd_fit(args) -> int:
     cert = result.certificate
     lines = [f"trained   {spec_path}  on {train.n_rows} rows x {len(train.input_names)} inputs"
              + (f" ({train.dropped} rows dropped for missing values)" if train.dropped else ""),
+             *_engine_lines(args.engine, train.X),
              f"backend   {result.backend}: {result.method}  ->  {result.status}",
              f"time      {result.seconds:.3f} s" + (f", {result.passes} passes over the data" if result.passes else "")
              + f", {result.iterations} iterations",
@@ -316,6 +366,27 @@ def cmd_fit(args) -> int:
     lines += ["", f"model     {json_path} (+ {json_path.with_suffix('.npz').name})"]
     print("\n".join(lines))
     return EXIT_OK
+
+
+def _engine_record(engine: str, X) -> dict:
+    """Where the rows lived while training, for --json."""
+    record: dict = {"name": engine}
+    if engine != "memory":
+        record["block_rows"] = int(X.block_rows)
+        record["blocks"] = -(-int(X.n) // int(X.block_rows))
+    if engine == "cluster":
+        record["scheduler"] = str(X.client.scheduler.address)
+        record["workers"] = len(X.client.scheduler_info().get("workers", {}))
+    return record
+
+
+def _engine_lines(engine: str, X) -> list[str]:
+    if engine == "memory":
+        return []
+    r = _engine_record(engine, X)
+    where = (f"held by {r['workers']} worker(s) of {r['scheduler']}, each pass one reduction over"
+             if engine == "cluster" else "read from a scratch file each pass, in")
+    return [f"rows      bound chunk by chunk, then {where} {r['blocks']} blocks of {r['block_rows']} rows"]
 
 
 def _gap_figure(value: float) -> str:
@@ -342,14 +413,21 @@ def _distance_line(cert) -> str:
                                        subsequent_indent=" " * 10)
 
 
-def _positive_int(text: str) -> int:
-    try:
-        n = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number of passes, got '{text}'") from None
-    if n < 1:
-        raise argparse.ArgumentTypeError(f"the pass budget must be at least 1, got {n}")
-    return n
+def _at_least_one(things: str, too_few: str):
+    """An argparse type: a whole number of `things`, at least 1 (`too_few` says what 0 would mean)."""
+    def parse(text: str) -> int:
+        try:
+            n = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a whole number of {things}, got '{text}'") from None
+        if n < 1:
+            raise argparse.ArgumentTypeError(f"{too_few}, got {n}")
+        return n
+    return parse
+
+
+_positive_int = _at_least_one("passes", "the pass budget must be at least 1")
+_worker_count = _at_least_one("worker processes", "a cluster needs at least one worker")
 
 
 def _param_tol(text: str) -> float | None:
@@ -763,6 +841,19 @@ def _parser() -> argparse.ArgumentParser:
     f.add_argument("--max-passes", type=_positive_int, metavar="N",
                    help="numpy backend: a budget of passes over the data; a fit that runs out writes nothing")
     f.add_argument("--set", action="append", metavar="NAME=VALUE", help="give a tunable a value (repeatable)")
+    f.add_argument("--engine", choices=["memory", "chunks", "cluster"], default="memory",
+                   help="memory: read the table whole; chunks: read a Parquet file or folder, or a .npy, in "
+                        "chunks, holding at most --memory of it at once; cluster: bind it in chunks, then "
+                        "every pass runs on the workers of a Dask cluster (NumPy backend)")
+    f.add_argument("--memory", type=_memory_budget, metavar="SIZE",
+                   help="with --engine chunks or cluster: bytes of the table held at once here, and the "
+                        "size of a block (default 256M)")
+    f.add_argument("--scratch", metavar="DIR", help="with --engine chunks or cluster: the folder of the bound "
+                   "rows (default: the system's temporary folder); a cluster's workers must see it")
+    f.add_argument("--cluster", metavar="ADDRESS", help="with --engine cluster: the Dask scheduler, e.g. "
+                   "tcp://10.0.0.5:8786 (default: local, a cluster of processes on this machine)")
+    f.add_argument("--workers", type=_worker_count, metavar="N", help="with --cluster local: worker processes "
+                   "(default 2)")
     f.add_argument("-o", "--output", help="model file to write (.json; the arrays go beside it as .npz)")
     f.add_argument("--local-ok", action="store_true",
                    help="train a non-convex but subdifferentiable objective (the result is a local minimum)")

@@ -12,6 +12,7 @@ File formats, chosen by the file's suffix:
 | `.npy` | one 2-D numeric array; its columns are named `c0`, `c1`, ... |
 | `.npz` | either exactly two arrays, `data` (2-D) and `columns` (1-D strings, one name per column of `data`), or else one 1-D array per column, named by its key, all of one length, in archive order |
 | `.parquet`, `.pq` | `pandas.read_parquet` (pyarrow) |
+| a folder | a Parquet dataset: every `.parquet`/`.pq` file under it, in path order, one table (same columns in each) |
 
 Nothing pickled is ever loaded, and column names are only ever compared as strings, so a name that
 looks like code stays a name. Row numbers in messages count data records from 1; a CSV header line
@@ -235,12 +236,12 @@ def _read(path: Path, shown: str, span: Span, source_name: str, not_found_hint: 
     where = _Where(shown, source_name)
     if not path.exists():
         raise where.error("T100", f"data file {_q(shown)} not found", span, not_found_hint)
+    if path.is_dir():
+        return _read_parquet_folder(path, shown, where, span)
     kind = _format_of(path)
     if kind is None:
         raise where.error("T101", f"cannot tell the format of {_q(shown)} from its name", span,
                           "use a .csv, .tsv, .npy, .npz, .parquet or .pq file")
-    if path.is_dir():
-        raise where.error("T102", f"{_q(shown)} is a folder, not a data file", span)
     try:
         if kind in ("csv", "tsv"):
             columns = _read_csv(path, "\t" if kind == "tsv" else ",", where, span)
@@ -262,6 +263,37 @@ def _read(path: Path, shown: str, span: Span, source_name: str, not_found_hint: 
     if not columns or min(len(a) for a in columns.values()) == 0:
         raise where.error("T103", f"data file {_q(shown)} has no data rows" if columns
                           else f"data file {_q(shown)} has no columns", span)
+    return columns
+
+
+def parquet_dataset_files(path: Path) -> list[Path]:
+    """The files of a Parquet dataset (a folder, searched to any depth), in the order their rows are read:
+    by path. A file is its own dataset."""
+    if path.is_dir():
+        return sorted(p for p in path.rglob("*") if p.is_file() and p.name.lower().endswith((".parquet", ".pq")))
+    return [path]
+
+
+def _read_parquet_folder(path: Path, shown: str, where: _Where, span: Span) -> dict[str, np.ndarray]:
+    files = parquet_dataset_files(path)
+    if not files:
+        raise where.error("T102", f"{_q(shown)} is a folder without .parquet or .pq files, not a data file", span,
+                          "name a data file, or a folder of Parquet files (read as one table, files in name order)")
+    try:
+        frames = [pd.read_parquet(f) for f in files]
+    except (ValueError, OSError) as exc:
+        raise where.error("T102", f"cannot read {_q(shown)} as Parquet: {str(exc).strip().splitlines()[0]}",
+                          span) from None
+    first = [str(c) for c in frames[0].columns]
+    for f, frame in zip(files[1:], frames[1:]):
+        if [str(c) for c in frame.columns] != first:
+            raise where.error("T102", f"the Parquet file {_q(str(f.relative_to(path)))} of {_q(shown)} has columns "
+                              f"{[str(c) for c in frame.columns]}, the first file {first}", span,
+                              "every file of a dataset must have the same columns in the same order")
+    columns = _frame_columns(pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0], where, span)
+    if not columns or min(len(a) for a in columns.values()) == 0:
+        raise where.error("T103", f"the Parquet files of {_q(shown)} have no data rows" if columns
+                          else f"the Parquet files of {_q(shown)} have no columns", span)
     return columns
 
 
@@ -604,7 +636,8 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
                input_names: tuple[str, ...] | None = None, file_span: Span | None = None,
                need_target: bool = True, both_classes: bool = True, frame: pd.DataFrame | None = None,
                fourier_draws: Mapping[str, Mapping[str, object]] | None = None,
-               defer_standardize: bool = False) -> BoundData:
+               defer_standardize: bool = False, frame_label: str | None = None, first_row: int = 0,
+               whole_table: bool = True) -> BoundData:
     """Read the binding's table and return checked solver arrays.
 
     `data_path` replaces the spec's path (taken as given, not relative to `spec_dir`); `file_span`
@@ -615,11 +648,15 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
     `both_classes=False` accepts a margin target holding one class (evaluating on a slice).
     `defer_standardize=True` leaves `standardize` to the split that follows (`standardize_pending`), so
     that the held-out rows neither shape the statistics nor pass through them twice.
+    A chunk of a larger table (objc/chunked_tables.py) comes as `frame` with `frame_label` (the table as
+    the user named it), `first_row` (the records before it, so that messages number rows in the whole
+    table) and `whole_table=False` (the checks that need every row, none left or every weight zero, are
+    the caller's).
     """
     if task not in ("margin", "residual", "multiclass"):
         raise ValueError(f"task must be 'margin', 'residual' or 'multiclass', not {task!r}")
     if frame is not None:
-        path, shown = Path("<DataFrame>"), "the DataFrame given"
+        path, shown = Path("<DataFrame>"), frame_label or "the DataFrame given"
     elif data_path is not None:
         path, shown = Path(data_path), str(data_path)
     else:
@@ -704,7 +741,7 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
             hint = ("remove the thousands separators (write 1000, not 1,000)"
                     if any(_THOUSANDS.fullmatch(c.strip()) for c in cells) else "")
             diags.append(where.diag(code, f"{what} {_q(name)} in {_q(shown)} is not numeric at "
-                                    f"{_rows_text(text_rows + 1)} (values {examples})", span, hint, rows=True))
+                                    f"{_rows_text(text_rows + 1 + first_row)} (values {examples})", span, hint, rows=True))
         floats[name] = values
 
     for p in picks:
@@ -739,23 +776,23 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
             drop |= bad
         else:
             diags.append(where.diag("T120", f"{what.rstrip(',')} {_q(name)} in {_q(shown)} has missing or infinite "
-                                    f"values at {_rows_text(np.flatnonzero(bad) + 1)}", span,
+                                    f"values at {_rows_text(np.flatnonzero(bad) + 1 + first_row)}", span,
                                     "fix the data, or write `missing drop` in the table block to skip those rows",
                                     rows=True))
     _raise_all(diags)
     keep = np.flatnonzero(~drop)
     warnings: list[Diagnostic] = []
     if drop.any():
-        if not len(keep):
+        if not len(keep) and whole_table:
             raise where.error("T121", f"every row of {_q(shown)} has a missing value in a column the spec uses",
                               binding.span)
         warnings.append(where.diag("T191", f"dropped {int(drop.sum())} of {n_all} rows of {_q(shown)} with "
-                                   f"missing values ({_rows_text(np.flatnonzero(drop) + 1)})", binding.span,
+                                   f"missing values ({_rows_text(np.flatnonzero(drop) + 1 + first_row)})", binding.span,
                                    rows=True, severity="warning"))
     if skipped:
         warnings.append(where.diag("T190", "`all` passed over non-numeric column(s) "
                                    + ", ".join(_q(s) for s in skipped), inputs_span, severity="warning"))
-    rows = keep.astype(np.int64) + 1
+    rows = keep.astype(np.int64) + 1 + first_row
     n = len(keep)
 
     # ---- stage 4: target and weights
@@ -778,7 +815,7 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
             diags.append(where.diag("T140", f"row-weight column {_q(binding.row_weight)} in {_q(shown)} is "
                                     f"negative at {_rows_text(rows[negative])}", weight_span,
                                     "row weights must be zero or more", rows=True))
-        elif not (rw > 0).any():
+        elif not (rw > 0).any() and whole_table:
             diags.append(where.diag("T141", f"every row weight in {_q(binding.row_weight)} of {_q(shown)} is zero",
                                     weight_span))
         weights = weights * rw
@@ -1153,6 +1190,16 @@ def _fit_stats(X: np.ndarray, names: tuple[str, ...], spans: Sequence[Span], whe
     """What `standardize` fits on these rows (`standard_scales`), also on a fold's or a holdout's rows;
     a column it cannot scale is T150 at its span."""
     means, scales, problems = standard_scales(X, [name in unscaled for name in names])
+    return stats_from_scales(names, spans, means, scales, problems, X[0] if len(X) else None, where, rows_label,
+                             hint)
+
+
+def stats_from_scales(names: tuple[str, ...], spans: Sequence[Span], means: np.ndarray, scales: np.ndarray,
+                      problems: list, first_values: np.ndarray | None, where: _Where, rows_label: str = "",
+                      hint: str = "leave it out of the inputs") -> Standardization:
+    """The standardization of these means and scales, or T150 for each problem `standard_scales` found
+    (also from a chunked table's streaming statistics); `first_values`: the first row, which a constant
+    column holds throughout."""
     on = f" on {rows_label}" if rows_label else ""
     diags = []
     for j, why, top in problems:
@@ -1162,7 +1209,7 @@ def _fit_stats(X: np.ndarray, names: tuple[str, ...], spans: Sequence[Span], whe
                                     "rescale the column (e.g. a feature dividing it by a power of ten)"))
         else:
             diags.append(where.diag("T150", f"input {_q(names[j])} of {_q(where.file)} is constant{on} "
-                                    f"(every value is {_value(X[0, j])}); `standardize` would divide by "
+                                    f"(every value is {_value(first_values[j])}); `standardize` would divide by "
                                     "zero", spans[j], hint))
     _raise_all(diags)
     return Standardization(names, tuple(float(m) for m in means), tuple(float(s) for s in scales))

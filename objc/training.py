@@ -85,23 +85,72 @@ def task_of(checked: CheckedObjective) -> tables.Task:
     return "margin" if tb is not None and tb.label_map is not None else "residual"
 
 
+Engine = Literal["memory", "chunks", "cluster"]
+ENGINES: tuple[str, ...] = ("memory", "chunks", "cluster")
+
+
 def bind_training(checked: CheckedObjective, spec_dir: Path, data_path: Path | None = None,
-                  frame: pd.DataFrame | None = None) -> tuple[tables.BoundData, tables.BoundData | None, str]:
+                  frame: pd.DataFrame | None = None, engine: Engine = "memory", budget: int | None = None,
+                  progress: Callable[[int, int | None], None] | None = None, client=None,
+                  scratch_dir: Path | None = None) -> tuple[tables.BoundData, tables.BoundData | None, str]:
     """(training rows, held-out rows or None, a phrase saying where the held-out rows came from).
-    `frame` (a pandas DataFrame) replaces the spec's table file, like `data_path`."""
+    `frame` (a pandas DataFrame) replaces the spec's table file, like `data_path`. `engine="chunks"` reads
+    the tables in chunks (objc/chunked_tables.py) and holds at most `budget` bytes of them at once;
+    `progress(rows read, rows in all)` follows the reading. `engine="cluster"` binds them the same way,
+    then hands the bound rows to the workers of `client` (a dask.distributed Client, objc/cluster_rows.py),
+    which read them from `scratch_dir` (a folder they share; default: the system's temporary folder)."""
+    if engine not in ENGINES:
+        raise ValueError(f"engine must be one of {', '.join(ENGINES)}, not {engine!r}")
+    if engine == "cluster" and client is None:
+        raise ValueError("engine='cluster' needs a dask.distributed Client (objc.cluster_rows.connect)")
     try:
+        if engine != "memory":
+            if frame is not None:
+                raise ValueError("a DataFrame is already in memory: train it with engine='memory'")
+            train, held, label = _bind_in_chunks(checked, spec_dir, data_path, budget, progress, scratch_dir)
+            if engine == "cluster":
+                from objc import cluster_rows
+                train = cluster_rows.on_cluster(train, client)
+                held = None if held is None else cluster_rows.on_cluster(held, client)
+            return train, held, label
         return _bind_training(checked, spec_dir, data_path, frame)
     except SpecError as err:  # show the spec line the data problem belongs to
         raise SpecError(err.diagnostics, err.source or checked.source) from None
 
 
-def _bind_training(checked: CheckedObjective, spec_dir: Path, data_path: Path | None, frame=None
-                   ) -> tuple[tables.BoundData, tables.BoundData | None, str]:
+def _table_binding(checked: CheckedObjective):
     tb = checked.spec.table
     if tb is None:
         raise SpecError((Diagnostic("E401", "the spec binds no table to train on", NO_SPAN,
                                     hint='add: table NAME from "file.csv"', source_name=checked.source.name),),
                         checked.source)
+    return tb
+
+
+def _bind_in_chunks(checked: CheckedObjective, spec_dir: Path, data_path: Path | None, budget: int | None,
+                    progress, scratch_dir: Path | None) -> tuple[tables.BoundData, tables.BoundData | None, str]:
+    from objc import chunked_tables
+    tb = _table_binding(checked)
+    task = task_of(checked)
+    if task == "multiclass":
+        raise SpecError((Diagnostic("E409", "the chunked engine trains +1/-1 and real targets; this spec's target "
+                                    "has classes", tb.target_span or tb.span, hint="train it in memory "
+                                    "(--engine memory)", source_name=checked.source.name),), checked.source)
+    size = chunked_tables.DEFAULT_BUDGET if budget is None else int(budget)
+    data = chunked_tables.bind_in_chunks(tb, spec_dir, task, source_name=checked.source.name, data_path=data_path,
+                                         budget=size, progress=progress, scratch_dir=scratch_dir)
+    if tb.validation_path is None:
+        return data, None, ""
+    held = chunked_tables.bind_in_chunks(tb, spec_dir, task, source_name=checked.source.name,
+                                         data_path=spec_dir / tb.validation_path, file_span=tb.validation_span,
+                                         standardization=data.standardization, input_names=data.input_names,
+                                         both_classes=False, budget=size, scratch_dir=scratch_dir)
+    return data, held, f"the validation table {tb.validation_path}"
+
+
+def _bind_training(checked: CheckedObjective, spec_dir: Path, data_path: Path | None, frame=None
+                   ) -> tuple[tables.BoundData, tables.BoundData | None, str]:
+    tb = _table_binding(checked)
     task = task_of(checked)
     # with a holdout, `standardize` is fitted on the training part alone (tables.split_rows)
     data = tables.bind_table(tb, spec_dir, task, source_name=checked.source.name, data_path=data_path, frame=frame,
@@ -144,6 +193,11 @@ def run_backend(checked: CheckedObjective, data: tables.BoundData, backend: Back
                          f"got {param_tol!r}")
     if backend not in ("numpy", "cvxpy"):
         raise ValueError(f"backend must be 'numpy' or 'cvxpy', not {backend!r}")
+    if backend == "cvxpy" and _read_in_blocks(data.X):
+        raise SpecError((Diagnostic("E409", "the cvxpy backend holds the whole problem in memory; a table read in "
+                                    "chunks trains with the NumPy backend", NO_SPAN, hint="drop --backend cvxpy, or "
+                                    "train in memory (--engine memory)", source_name=checked.source.name),),
+                        checked.source)
     if backend == "cvxpy":
         if certify_only:
             raise ValueError("certify_only is the NumPy backend's (the cvxpy backend always solves)")
@@ -573,17 +627,20 @@ class TrainedModel:
 
 def fit_spec(spec: str | Path, *, data: str | Path | pd.DataFrame | None = None, backend: Backend = "numpy",
              tunables: dict[str, float] | None = None, tol: float = 1e-6, solver: str | None = None,
-             allow_nonconvex: bool = False, param_tol: float | None = 1e-6) -> TrainedModel:
+             allow_nonconvex: bool = False, param_tol: float | None = 1e-6, engine: Engine = "memory",
+             budget: int | None = None) -> TrainedModel:
     """Check a spec file, bind its table (or `data`), train, and evaluate on the training rows and
     the held-out part. Raises SpecError for a wrong spec or table. `param_tol` (NumPy backend): stop
-    only once the parameters are within it of the optimum; None switches that stop off."""
+    only once the parameters are within it of the optimum; None switches that stop off. `engine="chunks"`
+    reads the table in chunks, at most `budget` bytes of it at once (see `bind_training`)."""
     from objc.frontend import check_file
     spec_path = Path(spec)
     checked = check_file(spec_path)
     require_trainable(checked, allow_nonconvex)
     values = tunable_values(checked, tunables)
     if data is None or isinstance(data, (str, Path)):
-        train, held, held_label = bind_training(checked, spec_path.parent, Path(data) if data else None)
+        train, held, held_label = bind_training(checked, spec_path.parent, Path(data) if data else None,
+                                                engine=engine, budget=budget)
     else:  # a DataFrame in place of the spec's table file
         train, held, held_label = bind_training(checked, spec_path.parent, frame=data)
     result = run_backend(checked, train, backend, values, tol=tol, solver=solver, allow_nonconvex=allow_nonconvex,
@@ -651,3 +708,8 @@ def sweep(checked: CheckedObjective, spec_dir: Path, tunable: str, values: list[
     return selection.one_tunable_sweep(checked, spec_dir, tunable, values, backend=backend, data_path=data_path,
                                        tunables=tunables, tol=tol, solver=solver, progress=progress,
                                        param_tol=param_tol)
+
+
+def _read_in_blocks(X: object) -> bool:
+    from objc.chunked_tables import is_chunked
+    return is_chunked(X)

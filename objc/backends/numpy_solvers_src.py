@@ -46,8 +46,17 @@ def _is_sparse(X):
     return hasattr(X, "tocsr") and hasattr(X, "nnz")
 
 
+def _is_chunked(X):
+    """A table read block by block (objc's chunked engine: `X @ w`, `X.T @ u`, row slices and gathers,
+    `weighted_square_sums`, `squared_norm`), never an array whole."""
+    return hasattr(X, "blocks") and hasattr(X, "take") and hasattr(X, "weighted_square_sums")
+
+
 def as_data_matrix(X):
-    """X as float64 (dense, any memory order, or CSR), copying at most once (float32 -> float64)."""
+    """X as float64 (dense, any memory order, or CSR), copying at most once (float32 -> float64). A chunked
+    table passes as it is: its binding checked every value chunk by chunk."""
+    if _is_chunked(X):
+        return X
     if _is_sparse(X):
         X = X.tocsr()
         if X.dtype != np.float64:
@@ -128,7 +137,7 @@ class _RowTerm:
         self.positive = rho > 0.0
         self.all_positive = bool(np.all(self.positive))
         # a margin row's label, with 1 where it is 0 (such a row's phi is constant): formed once, not per call
-        self.safe_y = np.where(y != 0.0, y, 1.0) if self.role == "margin" else None
+        self.safe_y = (np.where(y != 0.0, y, 1.0) if not np.all(y != 0.0) else y) if self.role == "margin" else None
         # a `mean` or `sum` without row weights has one rho for every row: a scalar saves a row-sized
         # product per sum (at 1e6 rows a fresh temporary costs about as much as the product)
         self.uniform = float(rho[0]) if self.all_positive and rho.size and bool(np.all(rho == rho[0])) else None
@@ -246,7 +255,10 @@ def _dropout_ridge(pb, table, idx, coef, c):
         raise SolverInputError(f"spec line {table['line']}: the drop probability must lie in (0, 1), got {p:g}")
     start = pb.slots[table["param"]][0]
     cols = idx - start
-    X = pb.X if cols.size == pb.p and np.array_equal(cols, np.arange(pb.p)) else pb.X[:, cols]
+    every = cols.size == pb.p and np.array_equal(cols, np.arange(pb.p))
+    if _is_chunked(pb.X):  # one pass over every column, then the ones the penalty weighs
+        return coef * table["factor"](p) * table["moments"](pb.X, c, table["rows"])[cols]
+    X = pb.X if every else pb.X[:, cols]
     return coef * table["factor"](p) * table["moments"](X, c, table["rows"])
 
 
@@ -414,11 +426,16 @@ def build_problem(spec, X, y, weights, input_names, tunables=None, prepared=None
     # ---- terms
     pb.row_terms, pb.penalties, pb.constant = [], [], 0.0
     total_c = float(np.sum(c))
+    # one weight on every row (no row or class weights): each term's rho is one number, held as a read-only
+    # view of it with the rows' shape (no row-sized array: at 1e7 rows 80 MB a term)
+    same_c = c.strides == (0,) or bool(c[0] == c[-1] and np.all(c == c[0]))
     for table in spec["terms"]:
         coef = float(table["coefficient"](pb.tun))
         if table["kind"] == "rows":
             rho = coef * c / total_c if table["aggregate"] == "mean" else (
-                coef * c / n if table["aggregate"] == "perrow" else coef * c)
+                coef * c / n if table["aggregate"] == "perrow" else coef * c) if not same_c else \
+                np.broadcast_to(np.float64(coef * c[0] / (total_c if table["aggregate"] == "mean" else n
+                                                          if table["aggregate"] == "perrow" else 1.0)), (n,))
             pb.row_terms.append(_RowTerm(table, rho, y))
             pb.row_terms[-1].rho_coefficient, pb.row_terms[-1].aggregate = coef, table["aggregate"]
             # settings given by tunables (huber's d = delta, ...) at this fit's values
@@ -954,8 +971,12 @@ def gap_safe_screen(spec, X, y, weights, input_names, tunables, theta, curvature
     key = ("column norms", id(pb.X), _fingerprint(R), bool(pb.balance))
     norms = None if prepared is None else prepared.get(key)
     if norms is None:
-        Xsq = np.einsum("ij,ij,i->j", pb.X, pb.X, R) if not _is_sparse(pb.X) else \
-            np.asarray(pb.X.multiply(pb.X).T @ R, dtype=np.float64).ravel()
+        if _is_chunked(pb.X):
+            Xsq = pb.X.weighted_square_sums(R)
+        elif _is_sparse(pb.X):
+            Xsq = np.asarray(pb.X.multiply(pb.X).T @ R, dtype=np.float64).ravel()
+        else:
+            Xsq = np.einsum("ij,ij,i->j", pb.X, pb.X, R)
         pb.passes += 1
         if pb.balance:
             XR = np.asarray(pb.X.T @ R, dtype=np.float64).ravel()
@@ -1082,6 +1103,21 @@ def _analysis_frame(pb, s):
         if not total > 0.0:
             d_ref = None
     X = pb.X
+    if _is_chunked(X):  # the same sums, computed by the table (block by block, or on a cluster's workers)
+        if d_ref is not None:
+            m = pb.center if pb.center is not None else np.zeros(pb.p)
+            sq, acc = X.centred_rows(m, d_ref)
+            c = acc / total
+            gap_mc = float(np.sqrt(np.dot(m - c, m - c)))
+            xnorm = np.sqrt(sq) + gap_mc * (1.0 + 1e-15) + 1e-15 * np.sqrt(sq)
+        else:
+            sq = X.centred_rows(None)[0]
+            xnorm = np.sqrt(sq)
+        pb.passes += 1
+        frame = {"c": c, "d_ref": d_ref, "xnorm": xnorm,
+                 "reach": np.sqrt(xnorm * xnorm + (1.0 if pb.b_index is not None else 0.0))}
+        pb.frame = frame
+        return frame
     if d_ref is not None and not _is_sparse(X):
         # one pass for both: X^T d_ref block by block, and ||x_i - m|| about the solver's own centre m,
         # then ||x_i - c|| <= ||x_i - m|| + ||m - c|| (triangle inequality). Every use of the row norms
@@ -1297,13 +1333,27 @@ def _sample_hessian(pb, rows, d):
     sampled rows once."""
     w, m, X = pb.w_index, pb.center, pb.X
     k = pb.n if rows is None else len(rows)
-    Mww, h, sq = np.zeros((pb.p, pb.p)), np.zeros(pb.p), np.empty(k)
-    # S^T S with S = D^1/2 (X_S - 1 m^T), one block of about 1 MB at a time in one reused buffer: the
-    # product then runs as a symmetric rank-k update on cached rows (measured: about six times faster than
-    # (B * d)^T B over 8 MB blocks at 1e6 x 50 on a busy machine)
     root = np.sqrt(d)
-    chunk = _hessian_block_rows(pb.p)
-    buf = np.empty((min(chunk, k), pb.p))
+    if _is_chunked(X):
+        Mww, h, sq = X.sampled_gram(rows, root, m)
+    else:
+        Mww, h, sq = _sample_gram_in_memory(X, rows, root, m, k, pb.p)
+    pb.row_reads += k
+    H = np.zeros((pb.size, pb.size))
+    H[np.ix_(w, w)] = Mww
+    if pb.b_index is not None:
+        H[w, pb.b_index] = H[pb.b_index, w] = h
+        H[pb.b_index, pb.b_index] = float(np.sum(d))
+    return H, sq
+
+
+def _sample_gram_in_memory(X, rows, root, m, k, p):
+    """S^T S with S = D^1/2 (X_S - 1 m^T), S^T root and the rows' ||x_i - m||^2, one block of about 1 MB at a
+    time in one reused buffer: the product then runs as a symmetric rank-k update on cached rows (measured:
+    about six times faster than (B * d)^T B over 8 MB blocks at 1e6 x 50 on a busy machine)."""
+    Mww, h, sq = np.zeros((p, p)), np.zeros(p), np.empty(k)
+    chunk = _hessian_block_rows(p)
+    buf = np.empty((min(chunk, k), p))
     with _OneBlasThread():
         for first in range(0, k, chunk):
             last = min(first + chunk, k)
@@ -1321,13 +1371,7 @@ def _sample_hessian(pb, rows, d):
             block *= r[:, None]
             Mww += block.T @ block
             h += block.T @ r
-    pb.row_reads += k
-    H = np.zeros((pb.size, pb.size))
-    H[np.ix_(w, w)] = Mww
-    if pb.b_index is not None:
-        H[w, pb.b_index] = H[pb.b_index, w] = h
-        H[pb.b_index, pb.b_index] = float(np.sum(d))
-    return H, sq
+    return Mww, h, sq
 
 
 def _sampled_curvature(pb, s):
@@ -1427,6 +1471,8 @@ def _table_norm(pb):
         X = pb.X
         if _is_sparse(X):
             total = float(np.dot(X.data, X.data))
+        elif _is_chunked(X):
+            total = X.squared_norm()
         elif X.flags.c_contiguous or X.flags.f_contiguous:
             flat = X.ravel(order="K")  # a view for a contiguous table
             total = float(np.dot(flat, flat))
@@ -2676,6 +2722,8 @@ def _kinks_between(pb, term, a, b, rows, slope_a):
 
 def _data_bytes(pb):
     X = pb.X
+    if _is_chunked(X):
+        return 8.0 * X.shape[0] * X.shape[1]
     return float(X.data.nbytes + X.indices.nbytes + X.indptr.nbytes) if _is_sparse(X) else float(X.nbytes)
 
 
@@ -3006,7 +3054,7 @@ def _nonconvex_starts(pb):
     starts.append(("a seeded random point", r / spread if spread > 0 else r))
     y = pb.y
     # dense tables only: a sparse one would have to be copied densely for the solve
-    if pb.standard and not _is_sparse(pb.X) and np.all(np.isfinite(y)) and np.any(y != 0):
+    if pb.standard and not _is_sparse(pb.X) and not _is_chunked(pb.X) and np.all(np.isfinite(y)) and np.any(y != 0):
         A = pb.X if pb.b_index is None else np.column_stack([pb.X, np.ones(pb.n)])
         pb.passes += 2
         sw = np.sqrt(pb.c)
