@@ -628,24 +628,34 @@ class TrainedModel:
 def fit_spec(spec: str | Path, *, data: str | Path | pd.DataFrame | None = None, backend: Backend = "numpy",
              tunables: dict[str, float] | None = None, tol: float = 1e-6, solver: str | None = None,
              allow_nonconvex: bool = False, param_tol: float | None = 1e-6, engine: Engine = "memory",
-             budget: int | None = None) -> TrainedModel:
+             budget: int | None = None, cluster: str = "local", workers: int | None = None) -> TrainedModel:
     """Check a spec file, bind its table (or `data`), train, and evaluate on the training rows and
     the held-out part. Raises SpecError for a wrong spec or table. `param_tol` (NumPy backend): stop
     only once the parameters are within it of the optimum; None switches that stop off. `engine="chunks"`
-    reads the table in chunks, at most `budget` bytes of it at once (see `bind_training`)."""
+    reads the table in chunks, at most `budget` bytes of it at once (see `bind_training`); `engine="cluster"`
+    also trains on the Dask scheduler at `cluster` ("local": a cluster of `workers` processes started here and
+    closed after the fit; objc/cluster_rows.py)."""
     from objc.frontend import check_file
     spec_path = Path(spec)
     checked = check_file(spec_path)
     require_trainable(checked, allow_nonconvex)
     values = tunable_values(checked, tunables)
-    if data is None or isinstance(data, (str, Path)):
-        train, held, held_label = bind_training(checked, spec_path.parent, Path(data) if data else None,
-                                                engine=engine, budget=budget)
-    else:  # a DataFrame in place of the spec's table file
-        train, held, held_label = bind_training(checked, spec_path.parent, frame=data)
-    result = run_backend(checked, train, backend, values, tol=tol, solver=solver, allow_nonconvex=allow_nonconvex,
-                         param_tol=param_tol)
-    doc = evaluated_document(checked, spec_path, train, held, held_label, result, values)
+    client = None
+    if engine == "cluster":
+        from objc import cluster_rows
+        client = cluster_rows.connect(cluster, workers)
+    try:
+        if data is None or isinstance(data, (str, Path)):
+            train, held, held_label = bind_training(checked, spec_path.parent, Path(data) if data else None,
+                                                    engine=engine, budget=budget, client=client)
+        else:  # a DataFrame in place of the spec's table file
+            train, held, held_label = bind_training(checked, spec_path.parent, frame=data, engine=engine)
+        result = run_backend(checked, train, backend, values, tol=tol, solver=solver,
+                             allow_nonconvex=allow_nonconvex, param_tol=param_tol)
+        doc = evaluated_document(checked, spec_path, train, held, held_label, result, values)
+    finally:
+        if client is not None:
+            cluster_rows.close(client)
     return TrainedModel(doc, dict(result.params), checked)
 
 

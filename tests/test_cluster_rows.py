@@ -104,3 +104,13 @@ def test_cli_cluster_engine_writes_the_model(tmp_path, capsys):
 def test_cli_cluster_flags_need_the_cluster_engine(capsys):
     assert main(["fit", str(SPECS / "parcel_svm.objc"), "--cluster", "tcp://127.0.0.1:1"]) == 2
     assert "--engine cluster" in capsys.readouterr().err
+
+
+def test_fit_spec_trains_on_a_cluster_it_starts(tmp_path):
+    from objc import fit_spec
+    frame = pd.read_csv(SPECS / "data" / "croissants.csv")
+    frame.to_parquet(tmp_path / "days.parquet", row_group_size=64)
+    on = fit_spec(SPECS / "croissant_lasso.objc", data=tmp_path / "days.parquet", engine="cluster", workers=1)
+    mem = fit_spec(SPECS / "croissant_lasso.objc")
+    gap = on.document["fit"]["certificate"]["distance"] + mem.document["fit"]["certificate"]["distance"]
+    assert np.max(np.abs(np.asarray(on.params["w"]) - np.asarray(mem.params["w"]))) <= gap

@@ -685,3 +685,32 @@ def test_bound_arrays_are_read_only(tmp_path):
     for arr in (data.X, data.y, data.weights, data.rows):
         with pytest.raises(ValueError):
             arr[0] = 0
+
+
+# ---------------------------------------------------------------- a folder of Parquet files
+
+def _parquet_folder(tmp_path: Path, frames: list[pd.DataFrame]) -> Path:
+    folder = tmp_path / "rows"
+    (folder / "deeper").mkdir(parents=True)
+    for k, f in enumerate(frames):  # the last file one folder down: a dataset is searched to any depth
+        f.to_parquet((folder / "deeper" if k == len(frames) - 1 else folder) / f"p{k}.parquet")
+    return folder
+
+
+def test_a_folder_of_parquet_files_is_one_table_in_path_order(tmp_path):
+    a = pd.DataFrame({"x": [1.0, 2.0], "y": [1, -1]})
+    b = pd.DataFrame({"x": [3.0, 4.0, 5.0], "y": [1, 1, -1]})
+    _parquet_folder(tmp_path, [a, b])
+    data = bind(tmp_path, binding("rows", target="y", inputs=columns("x")))
+    # by path: "deeper/p1.parquet" comes before "p0.parquet"
+    np.testing.assert_array_equal(data.X[:, 0], [3.0, 4.0, 5.0, 1.0, 2.0])
+    np.testing.assert_array_equal(data.rows, [1, 2, 3, 4, 5])
+
+
+def test_a_parquet_folder_with_other_columns_or_no_files_is_refused(tmp_path):
+    _parquet_folder(tmp_path, [pd.DataFrame({"x": [1.0], "y": [1]}), pd.DataFrame({"x": [2.0], "z": [1]})])
+    d = error_of(lambda: bind(tmp_path, binding("rows", target="y", inputs=columns("x"))), "T102")
+    assert "p0.parquet" in d.message and "deeper/p1.parquet" not in d.message and "same columns" in d.hint
+    (tmp_path / "empty").mkdir()
+    d = error_of(lambda: bind(tmp_path, binding("empty", target="y", inputs=columns("x"))), "T102")
+    assert "folder" in d.message

@@ -160,6 +160,14 @@ class _RowTerm:
         positive = self.positive[rows]
         return float(np.dot(rho[positive], value[positive]))  # 0 x inf stays 0
 
+    def value_sum(self, s, cols, tun):
+        """sum_i rho_i phi(s_i), by blocks of rows like `sum_and_derivative` (no row-sized temporaries)."""
+        total = 0.0
+        for rows in _row_blocks(s.shape[0]):
+            value, _slope = self.fn(s[rows], self.y[rows], _BlockColumns(cols, rows), tun)
+            total += self.weighted_sum(np.broadcast_to(np.asarray(value, dtype=np.float64), s[rows].shape), rows)
+        return total
+
     def sum_and_derivative(self, s, cols, tun):
         """(sum_i rho_i phi(s_i), phi'(s)) at s, computed by blocks of rows (`_ROW_BLOCK`)."""
         n = s.shape[0]
@@ -375,7 +383,8 @@ def _checked_rows(spec, X, y, weights):
         raise SolverInputError(f"the target has {y.shape[0]} values for {n} rows")
     if spec["needs_target"] and not np.all(np.isfinite(y)):
         raise SolverInputError("the target holds NaN or infinity")
-    c = np.ones(n) if weights is None else np.asarray(weights, dtype=np.float64).ravel()
+    # reshape(-1), not ravel: a broadcast view of one weight (objc's chunked tables) stays a view
+    c = np.ones(n) if weights is None else np.asarray(weights, dtype=np.float64).reshape(-1)
     if c.shape[0] != n:
         raise SolverInputError(f"{c.shape[0]} row weights for {n} rows")
     if not (np.all(np.isfinite(c)) and np.all(c >= 0.0)):
@@ -432,10 +441,8 @@ def build_problem(spec, X, y, weights, input_names, tunables=None, prepared=None
     for table in spec["terms"]:
         coef = float(table["coefficient"](pb.tun))
         if table["kind"] == "rows":
-            rho = coef * c / total_c if table["aggregate"] == "mean" else (
-                coef * c / n if table["aggregate"] == "perrow" else coef * c) if not same_c else \
-                np.broadcast_to(np.float64(coef * c[0] / (total_c if table["aggregate"] == "mean" else n
-                                                          if table["aggregate"] == "perrow" else 1.0)), (n,))
+            scale = {"mean": total_c, "perrow": float(n)}.get(table["aggregate"], 1.0)
+            rho = np.broadcast_to(np.float64(coef * float(c[0]) / scale), (n,)) if same_c else coef * c / scale
             pb.row_terms.append(_RowTerm(table, rho, y))
             pb.row_terms[-1].rho_coefficient, pb.row_terms[-1].aggregate = coef, table["aggregate"]
             # settings given by tunables (huber's d = delta, ...) at this fit's values
@@ -603,7 +610,7 @@ def rows_part(pb, s, mu=0.0):
 
 
 def true_rows_value(pb, s):
-    return sum(term.weighted_sum(term.value_and_derivative(s, pb.cols, pb.tun)[0]) for term in pb.row_terms)
+    return sum(term.value_sum(s, pb.cols, pb.tun) for term in pb.row_terms)
 
 
 def smooth_penalties(pb, theta):
@@ -650,7 +657,7 @@ def term_values(pb, theta, s=None):
         s = score(pb, theta)
     out = {}
     for term in pb.row_terms:
-        out[term.index] = term.weighted_sum(term.value_and_derivative(s, pb.cols, pb.tun)[0])
+        out[term.index] = term.value_sum(s, pb.cols, pb.tun)
     for pen in pb.penalties:
         out[pen.index] = pen.value_and_gradient(theta, pb.tun)[0]
     for table in pb.spec["terms"]:
