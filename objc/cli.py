@@ -490,9 +490,13 @@ def cmd_eval(args) -> int:
     model = load_model(Path(args.model))
     doc = model.document
     checked = training.checked_for_saved(model)
+    _engine_options(args)
     if args.table:
-        data = training.bind_for_model(checked, doc, Path(args.table), need_target=True)
+        data = training.bind_for_model(checked, doc, Path(args.table), need_target=True, engine=args.engine,
+                                       budget=args.memory)
         where = args.table
+    elif args.engine != "memory":
+        raise UsageError("--engine chunks reads the table given: name it (objc eval MODEL TABLE --engine chunks)")
     else:
         train, held, held_label = training.bind_training(checked, training.spec_dir_of(doc))
         if held is not None:
@@ -512,17 +516,36 @@ def cmd_eval(args) -> int:
 
 def cmd_predict(args) -> int:
     from objc import training
-    from objc.model_io import _atomic_write, load_model
+    from objc.model_io import atomic_write_files, load_model
     model = load_model(Path(args.model))
     doc = model.document
     checked = training.checked_for_saved(model)
-    data = training.bind_for_model(checked, doc, Path(args.table), need_target=False)
+    _engine_options(args)
+    data = training.bind_for_model(checked, doc, Path(args.table), need_target=False, engine=args.engine,
+                                   budget=args.memory)
     form = training.form_for(checked, tuple(doc["schema"]["inputs"]))
     s = training.scores(form, model.params, data.X, None)
     out = Path(args.output)
+    atomic_write_files([(out, lambda f: _write_predictions(f, doc, checked, data, s))])
+    if args.json:
+        _emit_json({"command": "predict", "ok": True, "model": str(model.path), "table": args.table,
+                    "output": str(out), "rows": int(len(s))})
+    else:
+        print(f"wrote {len(s)} predictions to {out}")
+    return EXIT_OK
+
+
+def _engine_options(args) -> None:
+    if args.memory is not None and args.engine == "memory":
+        raise UsageError("--memory bounds a table read in chunks: give it with --engine chunks")
+
+
+def _write_predictions(f, doc: dict, checked, data, s) -> None:
+    """The predictions' CSV into the binary file f, row by row (a table of 1e7 rows is never one string)."""
     import csv
     import io
-    buf = io.StringIO()
+    from objc import training
+    buf = io.TextIOWrapper(f, encoding="utf-8", newline="")
     writer = csv.writer(buf, lineterminator="\n")
     if doc["task"] == "multiclass":
         labels = training.predicted_labels(doc, s)
@@ -547,13 +570,8 @@ def cmd_predict(args) -> int:
         writer.writerow(["row", "prediction"])
         for r, v in zip(data.rows, s):
             writer.writerow([int(r), repr(float(v))])
-    _atomic_write(out, buf.getvalue().encode("utf-8"))
-    if args.json:
-        _emit_json({"command": "predict", "ok": True, "model": str(model.path), "table": args.table,
-                    "output": str(out), "rows": int(len(s))})
-    else:
-        print(f"wrote {len(s)} predictions to {out}")
-    return EXIT_OK
+    buf.flush()
+    buf.detach()  # f stays open: the staging closes it
 
 
 # ---------------------------------------------------------------- sweep / plot
@@ -812,6 +830,12 @@ def _parser() -> argparse.ArgumentParser:
     def common(sp):
         sp.add_argument("--json", action="store_true", help="print one JSON document instead of the report")
 
+    def read_options(sp):
+        sp.add_argument("--engine", choices=["memory", "chunks"], default="memory",
+                        help="chunks: read a Parquet file or folder, or a .npy, in chunks (as `fit --engine chunks`)")
+        sp.add_argument("--memory", type=_memory_budget, metavar="SIZE",
+                        help="with --engine chunks: bytes of the table held at once (default 256M)")
+
     c = sub.add_parser("check", help="parse a spec and certify its convexity")
     c.add_argument("spec")
     c.add_argument("--local-ok", action="store_true",
@@ -861,11 +885,13 @@ def _parser() -> argparse.ArgumentParser:
     e = sub.add_parser("eval", help="evaluate a saved model on a table")
     e.add_argument("model")
     e.add_argument("table", nargs="?", help="default: the spec's held-out rows, else its training table")
+    read_options(e)
     common(e)
     pr = sub.add_parser("predict", help="score every row of a table with a saved model")
     pr.add_argument("model")
     pr.add_argument("table")
     pr.add_argument("-o", "--output", required=True, help="CSV file to write")
+    read_options(pr)
     common(pr)
     sw = sub.add_parser("sweep", help="fit over a grid of one or more tunables; rank by folds or held-out rows")
     sw.add_argument("spec")

@@ -14,7 +14,7 @@ import tempfile
 import threading
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
+from typing import Any, Callable
 
 import numpy as np
 
@@ -67,8 +67,9 @@ def _write_failed(path: Path, err: OSError) -> SpecError:
                                  hint=hint, source_name=str(path)),))
 
 
-def _staged(path: Path, data: bytes) -> str:
-    """`data` in a hidden temporary file beside `path`, flushed to disk; its name."""
+def _staged(path: Path, data) -> str:
+    """`data` (bytes, or a function that writes to a binary file: output too large to hold at once) in a
+    hidden temporary file beside `path`, flushed to disk; its name."""
     if path.is_dir():
         raise IsADirectoryError(errno.EISDIR, "Is a directory", str(path))
     if path.exists() and not path.is_file():
@@ -81,7 +82,10 @@ def _staged(path: Path, data: bytes) -> str:
         # user's umask gives a new file, as open() would
         os.fchmod(fd, 0o666 & ~_current_umask())
         with os.fdopen(fd, "wb") as f:
-            f.write(data)
+            if callable(data):
+                data(f)
+            else:
+                f.write(data)
             f.flush()
             os.fsync(f.fileno())
     except BaseException:
@@ -113,7 +117,7 @@ def _signals_held():
             signal.raise_signal(pending[0])  # now delivered to the handler that was in force
 
 
-def atomic_write_files(items: list[tuple[Path, bytes]]) -> None:
+def atomic_write_files(items: list[tuple[Path, Any]]) -> None:
     """Write every file or none: each is staged in full first, then all are renamed into place in
     order, so an interruption (Ctrl-C, a full disk) before the renames leaves nothing new. A SIGKILL
     cannot be caught: it may leave a hidden `.NAME.*.tmp` file, never a file under the output name."""

@@ -519,9 +519,10 @@ def _fourier_draws(checked: CheckedObjective, data: tables.BoundData) -> dict:
     return {"fourier_draws": draws} if draws else {}
 
 
-def bind_for_model(checked: CheckedObjective, document: dict, table: Path, *, need_target: bool
-                   ) -> tables.BoundData:
-    """Bind another table by a saved model's schema: same inputs in the same order, stored stats."""
+def bind_for_model(checked: CheckedObjective, document: dict, table: Path, *, need_target: bool,
+                   engine: Engine = "memory", budget: int | None = None) -> tables.BoundData:
+    """Bind another table by a saved model's schema: same inputs in the same order, stored stats.
+    `engine="chunks"` reads it in chunks (at most `budget` bytes of it at once), as `bind_training` does."""
     tb = checked.spec.table
     assert tb is not None  # a model is only ever saved from a spec with a table
     schema = document["schema"]
@@ -531,6 +532,19 @@ def bind_for_model(checked: CheckedObjective, document: dict, table: Path, *, ne
                                      tuple(schema["standardization"]["scales"]))
     if not need_target:
         tb = replace(tb, row_weight=None, row_weight_span=None, class_weights=())
+    if engine == "chunks":
+        from objc import chunked_tables
+        if document["task"] == "multiclass":
+            raise SpecError((Diagnostic("E409", "the chunked engine reads +1/-1 and real targets; this model's "
+                                        "target has classes", tb.target_span or tb.span,
+                                        hint="read the table in memory (--engine memory)",
+                                        source_name=str(document["spec"]["path"])),), checked.source)
+        # a holdout split belongs to training: a table read for a model has none
+        return chunked_tables.bind_in_chunks(replace(tb, holdout=None), Path("."), document["task"],
+                                             source_name=str(document["spec"]["path"]), data_path=table,
+                                             standardization=std, input_names=tuple(schema["inputs"]),
+                                             need_target=need_target, both_classes=False,
+                                             budget=chunked_tables.DEFAULT_BUDGET if budget is None else budget)
     # the spans are the stored spec's, so the location names the spec (the message names the table)
     return tables.bind_table(tb, Path("."), document["task"], source_name=str(document["spec"]["path"]),
                              data_path=table,

@@ -358,3 +358,29 @@ def test_in_memory_tables_are_what_they_were(tmp_path):
     checked = check_text(text, source_name="s.objc")
     data = tables.bind_table(checked.spec.table, tmp_path, "margin")
     assert data.rows[0] == 1 and data.n_rows == 20
+
+
+def test_cli_eval_and_predict_read_a_table_in_chunks(tmp_path, capsys):
+    _rows_dataset(tmp_path, [_frame(60, 1), _frame(40, 2)])
+    spec = tmp_path / "s.objc"
+    spec.write_text(LOGIT.format(extra="  standardize\n"))
+    model = tmp_path / "m.json"
+    assert main(["fit", str(spec), "-o", str(model)]) == 0
+    capsys.readouterr()
+    evals = []
+    for engine in ("memory", "chunks"):
+        extra = ["--engine", "chunks", "--memory", "4k"] if engine == "chunks" else []
+        assert main(["predict", str(model), str(tmp_path / "rows"), "-o", str(tmp_path / f"{engine}.csv")]
+                    + extra) == 0
+        capsys.readouterr()
+        assert main(["eval", str(model), str(tmp_path / "rows"), "--json"] + extra) == 0
+        evals.append(json.loads(capsys.readouterr().out))
+    mem, chunked = (e["metrics"] for e in evals)
+    assert mem["confusion"] == chunked["confusion"] and mem["zero_one_error"] == chunked["zero_one_error"]
+    for name, value in mem["mean_losses"].items():  # the scores' sums in another order: rounding apart
+        assert chunked["mean_losses"][name] == pytest.approx(value, rel=1e-12)
+    a, b = (pd.read_csv(tmp_path / f"{e}.csv") for e in ("memory", "chunks"))
+    assert list(a.columns) == ["row", "score", "label"] and list(a["row"]) == list(range(1, 101))
+    np.testing.assert_array_equal(a["label"], b["label"])
+    np.testing.assert_allclose(a["score"], b["score"], rtol=0, atol=1e-12)
+    assert main(["eval", str(model), "--engine", "chunks"]) == 2  # chunks read the table named
