@@ -2907,7 +2907,12 @@ def _box_qp(A, g, kink, lo, hi, beta, tol, x0=None):
         polished[inside] = np.linalg.lstsq(A_in @ A_in.T, rhs, rcond=None)[0]
         if np.all(polished >= low - 1e-12) and np.all(polished <= high + 1e-12):
             polished = np.clip(polished, low, high)
-            if fun(polished)[0] <= fun(x)[0]:
+            # within rounding of the iterate's value counts as no worse: near the optimum the two values
+            # differ in their last digits either way, and the solved point is the exact one (at --tol 1e-8 on
+            # bike_dock_classweight a strict test kept L-BFGS-B's point: whole-problem gap 2.7e-11 and a
+            # certified distance 3.7e-5, against 1e-15 and 2e-8 from the solved point)
+            f_x = fun(x)[0]
+            if fun(polished)[0] <= f_x + 1e-12 * max(1.0, abs(f_x)):
                 x = polished
     v = x * width
     return -(g + A.T @ v) / beta, v, x
