@@ -27,6 +27,7 @@ table into memory fails loudly instead of quietly exceeding the budget.
 
 from __future__ import annotations
 
+import fnmatch
 import mmap
 import shutil
 import tempfile
@@ -311,8 +312,9 @@ def is_chunked(X: object) -> bool:
 # ---------------------------------------------------------------- the sources
 
 def _source_chunks(path: Path, shown: str, where: tables._Where, span: Span, budget: int
-                   ) -> tuple[list[str], int | None, Iterator[pd.DataFrame]]:
-    """(column names, rows in all, the chunks as DataFrames) of a Parquet file or folder or a .npy."""
+                   ) -> tuple[list[str], int, Callable[[list[str]], Iterator[pd.DataFrame]]]:
+    """(column names, rows in all, chunks(columns): the chunks as DataFrames of those columns) of a Parquet
+    file or folder or a .npy."""
     name = path.name.lower()
     if name.endswith(".npy"):
         try:
@@ -326,8 +328,10 @@ def _source_chunks(path: Path, shown: str, where: tables._Where, span: Span, bud
             raise where.error("T102", f"cannot read {tables._q(shown)} in chunks: it holds a "
                               f"{array.ndim}-D {array.dtype} array, not a 2-D numeric one", span)
         names = [f"c{j}" for j in range(array.shape[1])]
-        rows = max(1, budget // (_BINDING_COPIES * 8 * max(1, array.shape[1])))
-        return names, int(array.shape[0]), _npy_chunks(array, names, rows)
+
+        def npy_chunks(columns: list[str]) -> Iterator[pd.DataFrame]:
+            return _npy_chunks(array, columns, max(1, budget // (_BINDING_COPIES * 8 * max(1, len(columns)))))
+        return names, int(array.shape[0]), npy_chunks
     if path.is_dir() or name.endswith((".parquet", ".pq")):
         import pyarrow.parquet as pq
         files = tables.parquet_dataset_files(path)
@@ -346,17 +350,47 @@ def _source_chunks(path: Path, shown: str, where: tables._Where, span: Span, bud
                                   f"{tables._q(shown)} has columns {list(s.names)}, the first file "
                                   f"{names}", span, "every file of a dataset must have the same columns in the "
                                   "same order")
-        rows = max(1, budget // (_BINDING_COPIES * 8 * max(1, len(names))))
-        return names, total, _parquet_chunks(files, rows, where, shown, span)
+        def parquet_chunks(columns: list[str]) -> Iterator[pd.DataFrame]:
+            rows = max(1, budget // (_BINDING_COPIES * 8 * max(1, len(columns))))
+            return _parquet_chunks(files, columns, rows, where, shown, span)
+        return names, total, parquet_chunks
     raise where.error("T180", f"the chunked engine reads Parquet (a .parquet or .pq file, or a folder of them) "
                       f"and .npy tables, not {tables._q(shown)}", span,
                       "convert the table to Parquet, or train in memory (--engine memory)")
 
 
+def _columns_read(binding: TableBinding, names: list[str], input_names: tuple[str, ...] | None,
+                  need_target: bool) -> list[str]:
+    """The columns of the source the binding can read, in the source's order: the target, the row weights,
+    the inputs named or matched by a pattern, the columns a feature reads, those `except` names (a wide table
+    is read a few columns at a time). Every column for `all`, or where a name is not in the source, so that
+    the message about it (and its did-you-mean) is the in-memory one."""
+    from objc.feature_formula import check_formula
+    named = [binding.row_weight] + ([binding.target] if need_target else [])
+    named += [e.text for e in binding.excluded] + [nm.id for f in binding.features for nm in check_formula(f.expr).reads]
+    if input_names is not None:
+        named += [n for n in input_names if n not in {f.name for f in binding.features}]
+    else:
+        for item in binding.inputs:
+            if item.kind == "all":
+                return list(names)
+            if item.kind == "column":
+                named.append(item.text)
+            else:
+                named += [c for c in names if fnmatch.fnmatchcase(c, item.text)]
+    feature_names = {f.name for f in binding.features}
+    wanted = {n for n in named if n is not None and n not in feature_names}
+    if not wanted <= set(names):
+        return list(names)
+    return [c for c in names if c in wanted]
+
+
 def _npy_chunks(array: np.memmap, names: list[str], rows: int) -> Iterator[pd.DataFrame]:
     handle = getattr(array, "_mmap", None)
+    picked = [int(n[1:]) for n in names]  # the columns c0, c1, ... asked for
+    every = picked == list(range(array.shape[1]))
     for first in range(0, array.shape[0], rows):
-        block = np.array(array[first:first + rows], dtype=np.float64)
+        block = np.array(array[first:first + rows] if every else array[first:first + rows, picked], dtype=np.float64)
         # the mapped pages stay in the system's file cache; dropping them from this process keeps its
         # resident memory at one block
         if handle is not None and hasattr(handle, "madvise") and hasattr(mmap, "MADV_DONTNEED"):
@@ -364,7 +398,7 @@ def _npy_chunks(array: np.memmap, names: list[str], rows: int) -> Iterator[pd.Da
         yield pd.DataFrame(block, columns=names, copy=False)
 
 
-def _parquet_chunks(files: list[Path], rows: int, where: tables._Where, shown: str, span: Span
+def _parquet_chunks(files: list[Path], columns: list[str], rows: int, where: tables._Where, shown: str, span: Span
                     ) -> Iterator[pd.DataFrame]:
     import pyarrow.parquet as pq
     for f in files:
@@ -373,7 +407,7 @@ def _parquet_chunks(files: list[Path], rows: int, where: tables._Where, shown: s
             # ahead, 490 MB, where this holds one group of 131072 rows), cut into chunks of `rows`
             handle = pq.ParquetFile(f)
             for group in range(handle.num_row_groups):
-                table = handle.read_row_group(group)
+                table = handle.read_row_group(group, columns=columns)
                 for batch in table.to_batches(max_chunksize=rows):
                     yield batch.to_pandas()
                 del table
@@ -444,10 +478,12 @@ def bind_in_chunks(binding: TableBinding, spec_dir: Path, task: tables.Task, *, 
         raise where.error("T100", f"data file {tables._q(shown)} not found", span,
                           "check the path given with the command" if data_path is not None
                           else "paths in a spec are relative to the spec file's folder")
-    names, total, chunks = _source_chunks(path, shown, where, span, budget)
-    if budget < 8 * max(1, len(names)) * _BINDING_COPIES:
+    names, total, open_chunks = _source_chunks(path, shown, where, span, budget)
+    needed = _columns_read(binding, names, input_names, need_target)
+    if budget < 8 * max(1, len(needed)) * _BINDING_COPIES:
         raise where.error("T182", f"a memory budget of {budget} bytes cannot hold one row of {tables._q(shown)} "
-                          f"({len(names)} columns) while it is bound", span, "give a budget of a megabyte or more")
+                          f"({len(needed)} columns) while it is bound", span, "give a budget of a megabyte or more")
+    chunks = open_chunks(needed)
     folder = Path(tempfile.mkdtemp(prefix="objc-chunks-", dir=scratch_dir))
     matrix_path = folder / "rows.f64"
     try:

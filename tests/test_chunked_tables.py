@@ -384,3 +384,22 @@ def test_cli_eval_and_predict_read_a_table_in_chunks(tmp_path, capsys):
     np.testing.assert_array_equal(a["label"], b["label"])
     np.testing.assert_allclose(a["score"], b["score"], rtol=0, atol=1e-12)
     assert main(["eval", str(model), "--engine", "chunks"]) == 2  # chunks read the table named
+
+
+def test_only_the_columns_the_spec_reads_are_read(tmp_path):
+    names = ["a", "b", "junk", "label", "wide1", "wide2", "c"]
+
+    def read(extra: str, inputs: str = "a, b") -> list[str]:
+        text = LOGIT.format(extra=extra).replace("  inputs a, b\n", f"  inputs {inputs}\n")
+        return chunked_tables._columns_read(check_text(text, source_name="s.objc").spec.table, names, None, True)
+    assert read("") == ["a", "b", "label"]  # in the table's order
+    assert read("  rowweight c\n") == ["a", "b", "label", "c"]
+    assert read("", inputs='like "wide*"') == ["label", "wide1", "wide2"]
+    assert read("  feature ab = a * junk\n") == ["a", "b", "junk", "label"]
+    assert read("", inputs="all except junk") == names  # `all` reads every column
+    assert read("", inputs="a, nothere") == names  # a missing name: every column, for the in-memory message
+    # the fit from the columns read equals the fit from the table with its other columns
+    frames = [_frame(60, 1).assign(junk="text", wide1=0.0), _frame(40, 2).assign(junk="more", wide1=1.0)]
+    _rows_dataset(tmp_path, frames)
+    checked, data = _bind(tmp_path)
+    assert data.input_names == ("a", "b") and data.n_rows == 100
