@@ -304,6 +304,8 @@ def cmd_fit(args) -> int:
         from objc import cluster_rows
         try:
             client = cluster_rows.connect(args.cluster or cluster_rows.LOCAL, args.workers)
+        except cluster_rows.DaskMissing as exc:
+            raise UsageError(str(exc)) from None
         except (RuntimeError, OSError, ValueError, TimeoutError) as exc:
             raise UsageError(f"cannot reach the cluster {args.cluster or cluster_rows.LOCAL!r}: "
                              f"{str(exc).splitlines()[0] if str(exc) else type(exc).__name__}") from None

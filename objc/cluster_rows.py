@@ -177,6 +177,10 @@ class ClusterRows(RowTable):
         return np.sum([M for M, _h, _s in pieces], axis=0), np.sum([h for _M, h, _s in pieces], axis=0), sq
 
 
+class DaskMissing(RuntimeError):
+    """dask.distributed is not installed (an optional extra)."""
+
+
 def connect(address: str, workers: int | None = None):
     """A dask.distributed Client: to the scheduler at `address` (e.g. tcp://10.0.0.5:8786), or for
     `local` to a LocalCluster started here (`workers` processes of one thread, loopback only, no
@@ -184,7 +188,8 @@ def connect(address: str, workers: int | None = None):
     try:
         from distributed import Client, LocalCluster
     except ImportError:
-        raise RuntimeError('the cluster engine needs Dask: pip install "dask[array]" distributed') from None
+        raise DaskMissing('--engine cluster needs Dask, which is not installed: pip install "dask[array]" '
+                          "distributed (or objc's extra: pip install -e '.[cluster]')") from None
     if address == LOCAL:
         cluster = LocalCluster(n_workers=workers or 2, threads_per_worker=1, processes=True, host="127.0.0.1",
                                dashboard_address=None)

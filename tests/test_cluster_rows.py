@@ -114,3 +114,11 @@ def test_fit_spec_trains_on_a_cluster_it_starts(tmp_path):
     mem = fit_spec(SPECS / "croissant_lasso.objc")
     gap = on.document["fit"]["certificate"]["distance"] + mem.document["fit"]["certificate"]["distance"]
     assert np.max(np.abs(np.asarray(on.params["w"]) - np.asarray(mem.params["w"]))) <= gap
+
+
+def test_without_dask_the_cluster_engine_says_how_to_install_it(monkeypatch, capsys):
+    import sys
+    monkeypatch.setitem(sys.modules, "distributed", None)  # `import distributed` now fails, as when not installed
+    assert main(["fit", str(SPECS / "parcel_svm.objc"), "--engine", "cluster"]) == 2
+    err = capsys.readouterr().err
+    assert "needs Dask" in err and "pip install" in err and "Traceback" not in err
