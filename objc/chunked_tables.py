@@ -20,7 +20,7 @@ table into memory fails loudly instead of quietly exceeding the budget.
 
 | code | problem |
 | --- | --- |
-| T180 | the table is not one the chunked engine reads (Parquet file or folder, `.npy`) |
+| T180 | a table read in chunks is not Parquet (a file or a folder) or `.npy` |
 | T181 | the spec asks for what needs every row at once: a feature map (`onehot`, `spline`, `fourier`, ...), a `holdout` |
 | T182 | the memory budget cannot hold one row of the table |
 """
@@ -354,8 +354,8 @@ def _source_chunks(path: Path, shown: str, where: tables._Where, span: Span, bud
             rows = max(1, budget // (_BINDING_COPIES * 8 * max(1, len(columns))))
             return _parquet_chunks(files, columns, rows, where, shown, span)
         return names, total, parquet_chunks
-    raise where.error("T180", f"the chunked engine reads Parquet (a .parquet or .pq file, or a folder of them) "
-                      f"and .npy tables, not {tables._q(shown)}", span,
+    raise where.error("T180", f"a table read in chunks (--engine chunks or cluster) is Parquet (a .parquet or .pq file, or a folder of them) "
+                      f"or .npy, not {tables._q(shown)}", span,
                       "convert the table to Parquet, or train in memory (--engine memory)")
 
 
@@ -446,11 +446,11 @@ def _refuse_whole_table_needs(binding: TableBinding, where: tables._Where) -> No
     diags = []
     for m in binding.maps:
         diags.append(where.diag("T181", f"`{m.kind}` is fitted on every row of the table at once (its categories, "
-                                "knots or draws), which the chunked engine does not do", m.span,
+                                "knots or draws), which a table read in chunks cannot give", m.span,
                                 "compute the map's columns into the table, or train in memory (--engine memory)"))
     if binding.holdout is not None:
-        diags.append(where.diag("T181", "a `holdout` draws its rows from the whole table at once, which the chunked "
-                                "engine does not do", binding.holdout_span or binding.span,
+        diags.append(where.diag("T181", "a `holdout` draws its rows from the whole table at once, which a table read "
+                                "in chunks cannot give", binding.holdout_span or binding.span,
                                 "write the held-out rows to a table of their own and name it with `validate on`"))
     if diags:
         raise SpecError(tuple(diags))

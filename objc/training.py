@@ -133,7 +133,7 @@ def _bind_in_chunks(checked: CheckedObjective, spec_dir: Path, data_path: Path |
     tb = _table_binding(checked)
     task = task_of(checked)
     if task == "multiclass":
-        raise SpecError((Diagnostic("E409", "the chunked engine trains +1/-1 and real targets; this spec's target "
+        raise SpecError((Diagnostic("E409", "a table read in chunks trains +1/-1 and real targets; this spec's target "
                                     "has classes", tb.target_span or tb.span, hint="train it in memory "
                                     "(--engine memory)", source_name=checked.source.name),), checked.source)
     size = chunked_tables.DEFAULT_BUDGET if budget is None else int(budget)
@@ -535,7 +535,7 @@ def bind_for_model(checked: CheckedObjective, document: dict, table: Path, *, ne
     if engine == "chunks":
         from objc import chunked_tables
         if document["task"] == "multiclass":
-            raise SpecError((Diagnostic("E409", "the chunked engine reads +1/-1 and real targets; this model's "
+            raise SpecError((Diagnostic("E409", "a table read in chunks holds +1/-1 and real targets; this model's "
                                         "target has classes", tb.target_span or tb.span,
                                         hint="read the table in memory (--engine memory)",
                                         source_name=str(document["spec"]["path"])),), checked.source)
