@@ -557,12 +557,7 @@ def _bind_chunks(binding, spec_dir, task, source_name, path, shown, span, standa
     fitted = False
     if moments is not None:
         scales = np.sqrt(np.maximum(moments.m2, 0.0) / n)
-        problems = []
-        for j in range(p):
-            if not (np.isfinite(scales[j]) and np.isfinite(moments.mean[j])):
-                problems.append((j, "overflow", float(moments.top[j])))
-            elif not scales[j] > 1e-12 * moments.top[j]:
-                problems.append((j, "constant", float(moments.top[j])))
+        problems = tables.scale_problems(moments.mean, scales, moments.top)
         standardization = tables.stats_from_scales(first_bound.input_names, [span] * p, moments.mean, scales,
                                                    problems, moments.first, where)
         _scale_in_place(matrix_path, n, p, budget, np.asarray(standardization.means),

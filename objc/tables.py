@@ -1163,26 +1163,36 @@ def _matches(raw: np.ndarray, value: str | float) -> np.ndarray:
 
 def standard_scales(X, unscaled=None):
     """(means, scales, problems) of `standardize` on the rows X: each column's mean and population
-    standard deviation (ddof 0, as scikit-learn's StandardScaler), and the columns it cannot scale as
-    (column index, "overflow" or "constant", largest |value|). "overflow": values near the float limit,
-    whose spread overflows (dividing by inf would zero the column); "constant": zero spread or only
-    rounding noise (std <= 1e-12 max |x|). Columns flagged in `unscaled` (onehot indicators) keep mean 0
-    and scale 1: they stay 0/1, and a category absent from a fold's rows is no constant column.
+    standard deviation (ddof 0, as scikit-learn's StandardScaler), and the columns it cannot scale
+    (`scale_problems`). Columns flagged in `unscaled` (onehot indicators) keep mean 0 and scale 1: they
+    stay 0/1, and a category absent from a fold's rows is no constant column.
     The one rule for objc and every generated module, which copies this function by source."""
     X = np.asarray(X, dtype=np.float64)
     with np.errstate(over="ignore", invalid="ignore"):
         means, scales = X.mean(axis=0), X.std(axis=0)
-    problems = []
+    skip = [unscaled is not None and bool(unscaled[j]) for j in range(X.shape[1])]
     for j in range(X.shape[1]):
-        if unscaled is not None and unscaled[j]:
+        if skip[j]:
             means[j], scales[j] = 0.0, 1.0
+    tops = [float(np.max(np.abs(X[:, j]))) if len(X) and not skip[j] else 0.0 for j in range(X.shape[1])]
+    return means, scales, scale_problems(means, scales, tops, skip)
+
+
+def scale_problems(means, scales, tops, skip=None):
+    """The columns `standardize` cannot scale, as (column index, "overflow" or "constant", largest |value|):
+    "overflow", values near the float limit, whose spread overflows (dividing by inf would zero the column);
+    "constant", zero spread or only rounding noise (std <= 1e-12 max |x|). `skip` flags columns left as
+    they are. Shared by `standard_scales` and the streaming statistics of a table read in chunks; copied
+    by source into every generated module with it."""
+    problems = []
+    for j in range(len(scales)):
+        if skip is not None and skip[j]:
             continue
-        top = float(np.max(np.abs(X[:, j]))) if len(X) else 0.0
         if not (np.isfinite(scales[j]) and np.isfinite(means[j])):
-            problems.append((j, "overflow", top))
-        elif not scales[j] > 1e-12 * top:
-            problems.append((j, "constant", top))
-    return means, scales, problems
+            problems.append((j, "overflow", float(tops[j])))
+        elif not scales[j] > 1e-12 * tops[j]:
+            problems.append((j, "constant", float(tops[j])))
+    return problems
 
 
 def _fit_stats(X: np.ndarray, names: tuple[str, ...], spans: Sequence[Span], where: _Where, rows_label: str = "",

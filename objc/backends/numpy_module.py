@@ -1328,7 +1328,7 @@ def _scaling_copies(multiclass: bool = False) -> list[_Copied]:
     wording of a refusal (a binary module has the whole estimator file already)."""
     from objc import tables
     from objc.backends import numpy_estimator_src as estimator_src
-    return [_definition_copy(tables.standard_scales)] + (
+    return [_definition_copy(tables.scale_problems), _definition_copy(tables.standard_scales)] + (
         [_definition_copy(estimator_src._scaling_refusal)] if multiclass else [])
 
 
