@@ -137,7 +137,8 @@ class _RowTerm:
         self.positive = rho > 0.0
         self.all_positive = bool(np.all(self.positive))
         # a margin row's label, with 1 where it is 0 (such a row's phi is constant): formed once, not per call
-        self.safe_y = (np.where(y != 0.0, y, 1.0) if not np.all(y != 0.0) else y) if self.role == "margin" else None
+        # (y itself when no label is 0: no row-sized copy)
+        self.safe_y = None if self.role != "margin" else y if np.all(y != 0.0) else np.where(y != 0.0, y, 1.0)
         # a `mean` or `sum` without row weights has one rho for every row: a scalar saves a row-sized
         # product per sum (at 1e6 rows a fresh temporary costs about as much as the product)
         self.uniform = float(rho[0]) if self.all_positive and rho.size and bool(np.all(rho == rho[0])) else None
@@ -263,10 +264,9 @@ def _dropout_ridge(pb, table, idx, coef, c):
         raise SolverInputError(f"spec line {table['line']}: the drop probability must lie in (0, 1), got {p:g}")
     start = pb.slots[table["param"]][0]
     cols = idx - start
-    every = cols.size == pb.p and np.array_equal(cols, np.arange(pb.p))
     if _is_chunked(pb.X):  # one pass over every column, then the ones the penalty weighs
         return coef * table["factor"](p) * table["moments"](pb.X, c, table["rows"])[cols]
-    X = pb.X if every else pb.X[:, cols]
+    X = pb.X if cols.size == pb.p and np.array_equal(cols, np.arange(pb.p)) else pb.X[:, cols]
     return coef * table["factor"](p) * table["moments"](X, c, table["rows"])
 
 
@@ -1110,64 +1110,57 @@ def _analysis_frame(pb, s):
         if not total > 0.0:
             d_ref = None
     X = pb.X
-    if _is_chunked(X):  # the same sums, computed by the table (block by block, or on a cluster's workers)
-        if d_ref is not None:
-            m = pb.center if pb.center is not None else np.zeros(pb.p)
-            sq, acc = X.centred_rows(m, d_ref)
+    if not _is_sparse(X):
+        # one pass for both: X^T d_ref, and ||x_i - m|| about the solver's own centre m, then ||x_i - c|| <=
+        # ||x_i - m|| + ||m - c|| (triangle inequality). Every use of the row norms wants an upper bound
+        # (sigma, gamma and the reach only grow with them), so the bound stays valid
+        m = None if d_ref is None else pb.center if pb.center is not None else np.zeros(pb.p)
+        sq, acc = _centred_rows(X, m, d_ref)
+        pb.passes += 1
+        if d_ref is None:
+            xnorm, reach_sq = np.sqrt(sq), sq
+        else:
             c = acc / total
             gap_mc = float(np.sqrt(np.dot(m - c, m - c)))
-            xnorm = np.sqrt(sq) + gap_mc * (1.0 + 1e-15) + 1e-15 * np.sqrt(sq)
-        else:
-            sq = X.centred_rows(None)[0]
-            xnorm = np.sqrt(sq)
-        pb.passes += 1
+            xnorm = np.sqrt(sq) + gap_mc * (1.0 + 1e-15) + 1e-15 * np.sqrt(sq)  # the sums' rounding, allowed for
+            reach_sq = xnorm * xnorm
         frame = {"c": c, "d_ref": d_ref, "xnorm": xnorm,
-                 "reach": np.sqrt(xnorm * xnorm + (1.0 if pb.b_index is not None else 0.0))}
-        pb.frame = frame
-        return frame
-    if d_ref is not None and not _is_sparse(X):
-        # one pass for both: X^T d_ref block by block, and ||x_i - m|| about the solver's own centre m,
-        # then ||x_i - c|| <= ||x_i - m|| + ||m - c|| (triangle inequality). Every use of the row norms
-        # wants an upper bound (sigma, gamma and the reach only grow with them), so the bound stays valid
-        m = pb.center if pb.center is not None else np.zeros(pb.p)
-        acc, sq = np.zeros(pb.p), np.empty(pb.n)
-        chunk = max(1, (8 << 20) // (8 * pb.p))
-        for first in range(0, pb.n, chunk):
-            block = X[first:first + chunk]
-            acc += block.T @ d_ref[first:first + chunk]
-            block = block - m
-            sq[first:first + chunk] = np.einsum("ij,ij->i", block, block)
-        pb.passes += 1
-        c = acc / total
-        gap_mc = float(np.sqrt(np.dot(m - c, m - c)))
-        xnorm = np.sqrt(sq) + gap_mc * (1.0 + 1e-15) + 1e-15 * np.sqrt(sq)  # the sums' rounding, allowed for
-        frame = {"c": c, "d_ref": d_ref, "xnorm": xnorm,
-                 "reach": np.sqrt(xnorm * xnorm + (1.0 if pb.b_index is not None else 0.0))}
+                 "reach": np.sqrt(reach_sq + (1.0 if pb.b_index is not None else 0.0))}
         pb.frame = frame
         return frame
     if d_ref is not None:
         pb.passes += 1
         c = np.asarray(X.T @ d_ref, dtype=np.float64).ravel() / total
-    if _is_sparse(X):
-        sq = np.asarray(X.multiply(X).sum(axis=1), dtype=np.float64).ravel()
-        if c is not None:  # the expansion can cancel: add its rounding allowance so it stays an upper bound
-            xc = np.asarray(X @ c, dtype=np.float64).ravel()
-            cc = float(np.dot(c, c))
-            sq = np.maximum(sq - 2.0 * xc + cc, 0.0) + 1e-14 * (sq + 2.0 * np.abs(xc) + cc)
-            pb.passes += 1
-    else:  # centred block by block: nothing cancels, and no copy of the whole table
-        sq = np.empty(pb.n)
-        chunk = max(1, (8 << 20) // (8 * pb.p))
-        for first in range(0, pb.n, chunk):
-            block = X[first:first + chunk]
-            if c is not None:
-                block = block - c
-            sq[first:first + chunk] = np.einsum("ij,ij->i", block, block)
+    sq = np.asarray(X.multiply(X).sum(axis=1), dtype=np.float64).ravel()
+    if c is not None:  # the expansion can cancel: add its rounding allowance so it stays an upper bound
+        xc = np.asarray(X @ c, dtype=np.float64).ravel()
+        cc = float(np.dot(c, c))
+        sq = np.maximum(sq - 2.0 * xc + cc, 0.0) + 1e-14 * (sq + 2.0 * np.abs(xc) + cc)
+        pb.passes += 1
     pb.passes += 1
     frame = {"c": c, "d_ref": d_ref, "xnorm": np.sqrt(sq),
              "reach": np.sqrt(sq + (1.0 if pb.b_index is not None else 0.0))}
     pb.frame = frame
     return frame
+
+
+def _centred_rows(X, center, weights):
+    """(||x_i - center||^2 per row, X^T weights or None; center None: no shift) in one read of a dense
+    table: block by block for an array (no copy of the whole table), by the table itself for one read in
+    blocks (objc's chunked tables: the same sums, block by block or on a cluster's workers)."""
+    if _is_chunked(X):
+        return X.centred_rows(center, weights)
+    n, p = X.shape
+    acc, sq = None if weights is None else np.zeros(p), np.empty(n)
+    chunk = max(1, (8 << 20) // (8 * p))
+    for first in range(0, n, chunk):
+        block = X[first:first + chunk]
+        if acc is not None:
+            acc += block.T @ weights[first:first + chunk]
+        if center is not None:
+            block = block - center
+        sq[first:first + chunk] = np.einsum("ij,ij->i", block, block)
+    return sq, acc
 
 
 def _row_curvature(pb, s, reach, rows=None):
