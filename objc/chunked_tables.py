@@ -100,9 +100,6 @@ class RowTable:
             raise IndexError(f"row index out of range for a table of {self.n} rows")
         return np.where(rows < 0, rows + self.n, rows)
 
-    def dot(self, v):
-        return self @ v
-
     @property
     def T(self) -> "_TransposedRows":
         return _TransposedRows(self)
@@ -169,9 +166,6 @@ class _TransposedRows:
         if u.shape[0] != self.base.n:
             raise ValueError(f"matmul: the transpose of a {self.base.n}-row table times {u.shape[0]} rows")
         return self.base.transposed_product(u)
-
-    def dot(self, u):
-        return self @ u
 
 
 class ChunkedRows(RowTable):
@@ -344,12 +338,7 @@ def _source_chunks(path: Path, shown: str, where: tables._Where, span: Span, bud
             raise where.error("T102", f"cannot read {tables._q(shown)} as Parquet: {str(exc).splitlines()[0]}",
                               span) from None
         names = list(schemas[0].names)
-        for f, s in zip(files[1:], schemas[1:]):
-            if list(s.names) != names:
-                raise where.error("T102", f"the Parquet file {tables._q(str(f.relative_to(path)))} of "
-                                  f"{tables._q(shown)} has columns {list(s.names)}, the first file "
-                                  f"{names}", span, "every file of a dataset must have the same columns in the "
-                                  "same order")
+        tables.same_parquet_columns(path, shown, files, [list(s.names) for s in schemas], where, span)
         def parquet_chunks(columns: list[str]) -> Iterator[pd.DataFrame]:
             rows = max(1, budget // (_BINDING_COPIES * 8 * max(1, len(columns))))
             return _parquet_chunks(files, columns, rows, where, shown, span)
@@ -472,6 +461,9 @@ def bind_in_chunks(binding: TableBinding, spec_dir: Path, task: tables.Task, *, 
         path, shown = Path(spec_dir) / binding.path, binding.path
     where = tables._Where(shown, source_name)
     span = file_span or binding.span
+    if task == "multiclass":
+        raise where.error("E409", "a table read in chunks holds +1/-1 or real targets; this one's target has classes",
+                          binding.target_span or binding.span, "read it in memory (--engine memory)")
     if file_span is None:
         _refuse_whole_table_needs(binding, where)
     if not path.exists():
@@ -536,17 +528,12 @@ def _bind_chunks(binding, spec_dir, task, source_name, path, shown, span, standa
     rows, y, c = rows_all[:n], y_all[:n], c_all[:n]
     p, n_all = first_bound.n_inputs, first_row
     if not n:
-        raise where.error("T121", f"every row of {tables._q(shown)} has a missing value in a column the spec uses",
-                          binding.span)
+        raise SpecError((tables.no_row_left(where, binding),))
     diags = []
     if binding.row_weight is not None and not (c > 0).any():
-        diags.append(where.diag("T141", f"every row weight in {tables._q(binding.row_weight)} of "
-                                f"{tables._q(shown)} is zero", binding.row_weight_span or binding.span))
-    if both_classes and task == "margin" and need_target and len(np.unique(y)) < 2:
-        only = "+1" if y[0] > 0 else "-1"
-        diags.append(where.diag("T132", f"target {tables._q(binding.target)} in {tables._q(shown)} has one class "
-                                f"only (every row is {only}); a margin loss needs both +1 and -1",
-                                binding.target_span or binding.span))
+        diags.append(tables.weights_all_zero(where, binding))
+    if both_classes and task == "margin" and need_target:
+        diags += [d for d in (tables.one_class(where, binding, y),) if d is not None]
     tables._raise_all(diags)
     warnings = [w for w in first_bound.warnings if w.code != "T191"]
     if n < n_all:

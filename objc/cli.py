@@ -289,8 +289,7 @@ def cmd_fit(args) -> int:
     from objc.frontend import check_file
     from objc import training
     spec_path = Path(args.spec)
-    if args.memory is not None and args.engine == "memory":
-        raise UsageError("--memory bounds a table read in chunks: give it with --engine chunks or cluster")
+    _engine_options(args)
     if (args.cluster is not None or args.workers is not None) and args.engine != "cluster":
         raise UsageError("--cluster and --workers choose the cluster of --engine cluster")
     if args.scratch is not None and args.engine == "memory":
@@ -299,21 +298,18 @@ def cmd_fit(args) -> int:
     checked = check_file(spec_path)
     training.require_trainable(checked, args.local_ok)
     tunables = _parse_settings(args.set, checked)
-    client = None
-    if args.engine == "cluster":
-        from objc import cluster_rows
-        try:
-            client = cluster_rows.connect(args.cluster or cluster_rows.LOCAL, args.workers)
-        except cluster_rows.DaskMissing as exc:
-            raise UsageError(str(exc)) from None
-        except (RuntimeError, OSError, ValueError, TimeoutError) as exc:
-            raise UsageError(f"cannot reach the cluster {args.cluster or cluster_rows.LOCAL!r}: "
-                             f"{str(exc).splitlines()[0] if str(exc) else type(exc).__name__}") from None
-    try:
+    with contextlib.ExitStack() as stack:
+        client = None
+        if args.engine == "cluster":
+            from objc import cluster_rows
+            try:
+                client = stack.enter_context(cluster_rows.connected(args.cluster or cluster_rows.LOCAL, args.workers))
+            except cluster_rows.DaskMissing as exc:
+                raise UsageError(str(exc)) from None
+            except (RuntimeError, OSError, ValueError, TimeoutError) as exc:
+                raise UsageError(f"cannot reach the cluster {args.cluster or cluster_rows.LOCAL!r}: "
+                                 f"{str(exc).splitlines()[0] if str(exc) else type(exc).__name__}") from None
         return _fit_with(args, spec_path, checked, tunables, client)
-    finally:
-        if client is not None:
-            cluster_rows.close(client)
 
 
 def _fit_with(args, spec_path: Path, checked, tunables: dict, client) -> int:
@@ -539,7 +535,8 @@ def cmd_predict(args) -> int:
 
 def _engine_options(args) -> None:
     if args.memory is not None and args.engine == "memory":
-        raise UsageError("--memory bounds a table read in chunks: give it with --engine chunks")
+        engines = "chunks or cluster" if args.command == "fit" else "chunks"
+        raise UsageError(f"--memory bounds a table read in chunks: give it with --engine {engines}")
 
 
 def _write_predictions(f, doc: dict, checked, data, s) -> None:

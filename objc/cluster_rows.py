@@ -14,6 +14,7 @@ Dask is optional: `pip install "dask[array]" distributed`.
 
 from __future__ import annotations
 
+import contextlib
 from typing import Iterator
 
 import numpy as np
@@ -197,6 +198,16 @@ def connect(address: str, workers: int | None = None):
         client._objc_cluster = cluster  # closed with the client by `close`
         return client
     return Client(address)
+
+
+@contextlib.contextmanager
+def connected(address: str, workers: int | None = None):
+    """`connect`, closed (and a cluster it started, stopped) when the block ends."""
+    client = connect(address, workers)
+    try:
+        yield client
+    finally:
+        close(client)
 
 
 def close(client) -> None:

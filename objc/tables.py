@@ -274,6 +274,16 @@ def parquet_dataset_files(path: Path) -> list[Path]:
     return [path]
 
 
+def same_parquet_columns(path: Path, shown: str, files: list[Path], names: list[list[str]], where: _Where,
+                         span: Span) -> None:
+    """T102 unless every file of a Parquet dataset has the first file's columns, in its order."""
+    for f, cols in zip(files[1:], names[1:]):
+        if cols != names[0]:
+            raise where.error("T102", f"the Parquet file {_q(str(f.relative_to(path)))} of {_q(shown)} has columns "
+                              f"{cols}, the first file {names[0]}", span,
+                              "every file of a dataset must have the same columns in the same order")
+
+
 def _read_parquet_folder(path: Path, shown: str, where: _Where, span: Span) -> dict[str, np.ndarray]:
     files = parquet_dataset_files(path)
     if not files:
@@ -284,12 +294,7 @@ def _read_parquet_folder(path: Path, shown: str, where: _Where, span: Span) -> d
     except (ValueError, OSError) as exc:
         raise where.error("T102", f"cannot read {_q(shown)} as Parquet: {str(exc).strip().splitlines()[0]}",
                           span) from None
-    first = [str(c) for c in frames[0].columns]
-    for f, frame in zip(files[1:], frames[1:]):
-        if [str(c) for c in frame.columns] != first:
-            raise where.error("T102", f"the Parquet file {_q(str(f.relative_to(path)))} of {_q(shown)} has columns "
-                              f"{[str(c) for c in frame.columns]}, the first file {first}", span,
-                              "every file of a dataset must have the same columns in the same order")
+    same_parquet_columns(path, shown, files, [[str(c) for c in f.columns] for f in frames], where, span)
     columns = _frame_columns(pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0], where, span)
     if not columns or min(len(a) for a in columns.values()) == 0:
         raise where.error("T103", f"the Parquet files of {_q(shown)} have no data rows" if columns
@@ -784,8 +789,7 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
     warnings: list[Diagnostic] = []
     if drop.any():
         if not len(keep) and whole_table:
-            raise where.error("T121", f"every row of {_q(shown)} has a missing value in a column the spec uses",
-                              binding.span)
+            raise SpecError((no_row_left(where, binding),))
         warnings.append(where.diag("T191", f"dropped {int(drop.sum())} of {n_all} rows of {_q(shown)} with "
                                    f"missing values ({_rows_text(np.flatnonzero(drop) + 1 + first_row)})", binding.span,
                                    rows=True, severity="warning"))
@@ -816,8 +820,7 @@ def bind_table(binding: TableBinding, spec_dir: Path, task: Task, *, source_name
                                     f"negative at {_rows_text(rows[negative])}", weight_span,
                                     "row weights must be zero or more", rows=True))
         elif not (rw > 0).any() and whole_table:
-            diags.append(where.diag("T141", f"every row weight in {_q(binding.row_weight)} of {_q(shown)} is zero",
-                                    weight_span))
+            diags.append(weights_all_zero(where, binding))
         weights = weights * rw
     if binding.class_label_weights and task == "multiclass" and target is not None:
         index = {_class_key(c): k for k, c in enumerate(binding.classes)}
@@ -1114,12 +1117,32 @@ def _margin_target(raw: np.ndarray, rows: np.ndarray, target: str, binding: Tabl
             return y
         y = values
     if both_classes:
-        present = set(np.unique(y).tolist())
-        if len(present) < 2:
-            only = "+1" if 1.0 in present else "-1"
-            diags.append(where.diag("T132", f"target {_q(target)} in {_q(where.file)} has one class only (every row "
-                                    f"is {only}); a margin loss needs both +1 and -1", span))
+        problem = one_class(where, binding, y)
+        if problem is not None:
+            diags.append(problem)
     return y
+
+
+# the checks that need every row of the table (a table read in chunks makes them once all chunks are in)
+
+def no_row_left(where: _Where, binding: TableBinding) -> Diagnostic:
+    return where.diag("T121", f"every row of {_q(where.file)} has a missing value in a column the spec uses",
+                      binding.span)
+
+
+def weights_all_zero(where: _Where, binding: TableBinding) -> Diagnostic:
+    return where.diag("T141", f"every row weight in {_q(binding.row_weight)} of {_q(where.file)} is zero",
+                      binding.row_weight_span or binding.span)
+
+
+def one_class(where: _Where, binding: TableBinding, y: np.ndarray) -> Diagnostic | None:
+    """T132 when a margin target's labels y (+1/-1) hold one class only."""
+    present = set(np.unique(y).tolist())
+    if len(present) >= 2:
+        return None
+    only = "+1" if 1.0 in present else "-1"
+    return where.diag("T132", f"target {_q(binding.target)} in {_q(where.file)} has one class only (every row "
+                      f"is {only}); a margin loss needs both +1 and -1", binding.target_span or binding.span)
 
 
 def _class_key(v: str | float) -> tuple[str, str | float]:

@@ -5,6 +5,7 @@ No math of losses here: metrics call catalog kernels; solving is the backends' j
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import time
 from dataclasses import replace
@@ -13,7 +14,7 @@ from typing import TYPE_CHECKING, Callable, Literal
 
 import numpy as np
 
-from objc import tables
+from objc import chunked_tables, tables
 from objc.catalog import CATALOG
 from objc.checker import CheckedObjective
 from objc.diagnostics import Diagnostic, SpecError
@@ -129,13 +130,8 @@ def _table_binding(checked: CheckedObjective):
 
 def _bind_in_chunks(checked: CheckedObjective, spec_dir: Path, data_path: Path | None, budget: int | None,
                     progress, scratch_dir: Path | None) -> tuple[tables.BoundData, tables.BoundData | None, str]:
-    from objc import chunked_tables
     tb = _table_binding(checked)
     task = task_of(checked)
-    if task == "multiclass":
-        raise SpecError((Diagnostic("E409", "a table read in chunks trains +1/-1 and real targets; this spec's target "
-                                    "has classes", tb.target_span or tb.span, hint="train it in memory "
-                                    "(--engine memory)", source_name=checked.source.name),), checked.source)
     size = chunked_tables.DEFAULT_BUDGET if budget is None else int(budget)
     data = chunked_tables.bind_in_chunks(tb, spec_dir, task, source_name=checked.source.name, data_path=data_path,
                                          budget=size, progress=progress, scratch_dir=scratch_dir)
@@ -193,7 +189,7 @@ def run_backend(checked: CheckedObjective, data: tables.BoundData, backend: Back
                          f"got {param_tol!r}")
     if backend not in ("numpy", "cvxpy"):
         raise ValueError(f"backend must be 'numpy' or 'cvxpy', not {backend!r}")
-    if backend == "cvxpy" and _read_in_blocks(data.X):
+    if backend == "cvxpy" and chunked_tables.is_chunked(data.X):
         raise SpecError((Diagnostic("E409", "the cvxpy backend holds the whole problem in memory; a table read in "
                                     "chunks trains with the NumPy backend", NO_SPAN, hint="drop --backend cvxpy, or "
                                     "train in memory (--engine memory)", source_name=checked.source.name),),
@@ -533,12 +529,6 @@ def bind_for_model(checked: CheckedObjective, document: dict, table: Path, *, ne
     if not need_target:
         tb = replace(tb, row_weight=None, row_weight_span=None, class_weights=())
     if engine == "chunks":
-        from objc import chunked_tables
-        if document["task"] == "multiclass":
-            raise SpecError((Diagnostic("E409", "a table read in chunks holds +1/-1 and real targets; this model's "
-                                        "target has classes", tb.target_span or tb.span,
-                                        hint="read the table in memory (--engine memory)",
-                                        source_name=str(document["spec"]["path"])),), checked.source)
         # a holdout split belongs to training: a table read for a model has none
         return chunked_tables.bind_in_chunks(replace(tb, holdout=None), Path("."), document["task"],
                                              source_name=str(document["spec"]["path"]), data_path=table,
@@ -654,11 +644,11 @@ def fit_spec(spec: str | Path, *, data: str | Path | pd.DataFrame | None = None,
     checked = check_file(spec_path)
     require_trainable(checked, allow_nonconvex)
     values = tunable_values(checked, tunables)
-    client = None
-    if engine == "cluster":
-        from objc import cluster_rows
-        client = cluster_rows.connect(cluster, workers)
-    try:
+    with contextlib.ExitStack() as stack:
+        client = None
+        if engine == "cluster":
+            from objc import cluster_rows
+            client = stack.enter_context(cluster_rows.connected(cluster, workers))
         if data is None or isinstance(data, (str, Path)):
             train, held, held_label = bind_training(checked, spec_path.parent, Path(data) if data else None,
                                                     engine=engine, budget=budget, client=client)
@@ -667,9 +657,6 @@ def fit_spec(spec: str | Path, *, data: str | Path | pd.DataFrame | None = None,
         result = run_backend(checked, train, backend, values, tol=tol, solver=solver,
                              allow_nonconvex=allow_nonconvex, param_tol=param_tol)
         doc = evaluated_document(checked, spec_path, train, held, held_label, result, values)
-    finally:
-        if client is not None:
-            cluster_rows.close(client)
     return TrainedModel(doc, dict(result.params), checked)
 
 
@@ -732,8 +719,3 @@ def sweep(checked: CheckedObjective, spec_dir: Path, tunable: str, values: list[
     return selection.one_tunable_sweep(checked, spec_dir, tunable, values, backend=backend, data_path=data_path,
                                        tunables=tunables, tol=tol, solver=solver, progress=progress,
                                        param_tol=param_tol)
-
-
-def _read_in_blocks(X: object) -> bool:
-    from objc.chunked_tables import is_chunked
-    return is_chunked(X)
